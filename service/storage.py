@@ -1,0 +1,365 @@
+"""The one storage module: database tables, connection lifetime and the raw-file blob folder.
+
+Everything the service keeps goes through here. Tables are declared with SQLAlchemy Core so the
+same statements run on the embedded default (SQLite in WAL mode inside the instance folder) and on
+a PostgreSQL server chosen by a database URL; nothing outside this module knows which one it is.
+
+Raw bytes (uploaded measurement files) do not go into the database. They live in a blob folder,
+one file per content, named by its SHA-256, so identical uploads share one copy and a stored file
+can always be checked against its name. A blob is written to a temporary file in the same folder,
+flushed to disk (fsync) and then renamed into place: a crash leaves either the whole file or
+nothing, never a partial blob under a valid name (POSIX rename is atomic within one file system).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import logging
+import os
+import tempfile
+from collections.abc import Iterator
+from datetime import UTC, datetime
+from pathlib import Path
+
+from sqlalchemy import (
+    Boolean,
+    Column,
+    Connection,
+    Engine,
+    Float,
+    ForeignKey,
+    Index,
+    Integer,
+    MetaData,
+    String,
+    Table,
+    Text,
+    create_engine,
+    event,
+)
+
+logger = logging.getLogger(__name__)
+
+metadata = MetaData()
+
+#: People and their roles (comma-separated subset of auth.ROLES).
+users = Table(
+    "users",
+    metadata,
+    Column("id", Integer, primary_key=True),
+    Column("username", String(80), nullable=False, unique=True),
+    Column("display_name", String(200), nullable=False, default=""),
+    Column("password_hash", String(255), nullable=True),
+    Column("roles", String(200), nullable=False),
+    Column("active", Boolean, nullable=False, default=True),
+    Column("created_at", String(40), nullable=False),
+)
+
+#: API tokens; only the SHA-256 of each token is kept, the token itself is shown once.
+api_tokens = Table(
+    "api_tokens",
+    metadata,
+    Column("id", Integer, primary_key=True),
+    Column("user_id", Integer, ForeignKey("users.id"), nullable=False),
+    Column("token_sha256", String(64), nullable=False, unique=True),
+    Column("label", String(200), nullable=False, default=""),
+    Column("created_at", String(40), nullable=False),
+    Column("revoked_at", String(40), nullable=True),
+)
+
+#: Registry of stored raw files (the bytes are in the blob folder).
+blobs = Table(
+    "blobs",
+    metadata,
+    Column("sha256", String(64), primary_key=True),
+    Column("size", Integer, nullable=False),
+    Column("stored_at", String(40), nullable=False),
+)
+
+#: An accepted upload: a validated run folder.
+runs = Table(
+    "runs",
+    metadata,
+    Column("id", String(40), primary_key=True),
+    Column("kind", String(40), nullable=False),
+    Column("item", String(400), nullable=False, default=""),
+    Column("submitted_by", Integer, ForeignKey("users.id"), nullable=False),
+    Column("submitted_at", String(40), nullable=False),
+    Column("manifest_json", Text, nullable=False),
+    Column("seed", Integer, nullable=False),
+    Column("replaces", String(60), nullable=True),
+    Column("amendment_reason", Text, nullable=True),
+)
+
+run_files = Table(
+    "run_files",
+    metadata,
+    Column("run_id", String(40), ForeignKey("runs.id"), primary_key=True),
+    Column("name", String(400), primary_key=True),
+    Column("sha256", String(64), ForeignKey("blobs.sha256"), nullable=False),
+    Column("size", Integer, nullable=False),
+)
+
+#: Background work: a fit that drafts a certificate, or a re-run for an audit.
+jobs = Table(
+    "jobs",
+    metadata,
+    Column("id", String(40), primary_key=True),
+    Column("purpose", String(20), nullable=False),  # "certify" or "reproduce"
+    Column("run_id", String(40), ForeignKey("runs.id"), nullable=False),
+    Column("certificate_id", String(60), nullable=True),
+    Column("requested_by", Integer, ForeignKey("users.id"), nullable=False),
+    Column("status", String(20), nullable=False),  # queued, running, done, failed
+    Column("fraction", Float, nullable=False, default=0.0),
+    Column("step", Text, nullable=False, default=""),
+    Column("error", Text, nullable=True),
+    Column("attempts", Integer, nullable=False, default=0),
+    Column("claimed_by", String(120), nullable=True),
+    Column("heartbeat_at", String(40), nullable=True),
+    Column("created_at", String(40), nullable=False),
+    Column("started_at", String(40), nullable=True),
+    Column("finished_at", String(40), nullable=True),
+    Column("result_json", Text, nullable=True),
+)
+Index("ix_jobs_status", jobs.c.status, jobs.c.created_at)
+
+#: Certificates in every state. ``record_json`` is the canonical JSON of the document; once a
+#: certificate is issued its authoritative, signed copy is the chain entry, and this row only
+#: tracks the lifecycle state for searching.
+certificates = Table(
+    "certificates",
+    metadata,
+    Column("id", String(60), primary_key=True),
+    Column("number", String(40), nullable=False),
+    Column("revision", Integer, nullable=False),
+    Column("run_id", String(40), ForeignKey("runs.id"), nullable=False),
+    Column("kind", String(40), nullable=False),
+    Column("item", String(400), nullable=False, default=""),
+    Column("state", String(20), nullable=False),  # draft, issued, superseded, withdrawn
+    Column("record_json", Text, nullable=False),
+    Column("seed", Integer, nullable=False),
+    Column("software_json", Text, nullable=False),
+    Column("submitted_by", Integer, ForeignKey("users.id"), nullable=False),
+    Column("created_at", String(40), nullable=False),
+    Column("replaces", String(60), nullable=True),
+    Column("amendment_reason", Text, nullable=True),
+    Column("superseded_by", String(60), nullable=True),
+    Column("issued_by", Integer, ForeignKey("users.id"), nullable=True),
+    Column("issued_at", String(40), nullable=True),
+    Column("sequence", Integer, nullable=True, unique=True),
+    Column("withdrawn_reason", Text, nullable=True),
+    Column("withdrawn_at", String(40), nullable=True),
+)
+Index(
+    "ix_certificates_search", certificates.c.state, certificates.c.kind, certificates.c.created_at
+)
+
+#: The signed hash chain. Each entry's canonical JSON names the SHA-256 of the entry before it.
+chain = Table(
+    "chain",
+    metadata,
+    Column("sequence", Integer, primary_key=True, autoincrement=False),
+    Column("entry_type", String(20), nullable=False),  # "issue" or "withdrawal"
+    Column("certificate_id", String(60), nullable=False),
+    Column("entry_json", Text, nullable=False),
+    Column("sha256", String(64), nullable=False, unique=True),
+    Column("previous_sha256", String(64), nullable=False),
+    Column("signature", String(128), nullable=False),
+    Column("key_id", String(64), nullable=False),
+    Column("recorded_at", String(40), nullable=False),
+)
+Index("ix_chain_certificate", chain.c.certificate_id)
+
+#: Who did what, when. Append-only (enforced by triggers on SQLite).
+events = Table(
+    "events",
+    metadata,
+    Column("id", Integer, primary_key=True, autoincrement=True),
+    Column("at", String(40), nullable=False),
+    Column("actor", String(80), nullable=False),
+    Column("action", String(60), nullable=False),
+    Column("subject", String(120), nullable=False, default=""),
+    Column("detail_json", Text, nullable=False, default="{}"),
+)
+
+#: Named counters (certificate numbers, chain sequence lock row).
+counters = Table(
+    "counters",
+    metadata,
+    Column("name", String(60), primary_key=True),
+    Column("value", Integer, nullable=False),
+)
+
+# Rows that must never change once written. SQLite triggers turn an UPDATE or DELETE into an
+# error, so even a bug (or a careless hand in the database shell) cannot rewrite history
+# silently; verify() still catches edits made with the triggers dropped.
+_APPEND_ONLY_TABLES = ("chain", "events")
+
+
+def utc_now() -> str:
+    """ISO 8601 UTC timestamp with microseconds, the one time format of the store."""
+    return datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+
+
+def sha256_hex(data: bytes) -> str:
+    return hashlib.sha256(data).hexdigest()
+
+
+class BlobStore:
+    """Content-addressed raw files under ``root``: ``root/ab/cd/abcd…`` named by SHA-256."""
+
+    def __init__(self, root: str | os.PathLike[str]) -> None:
+        self.root = Path(root)
+        (self.root / "tmp").mkdir(parents=True, exist_ok=True)
+
+    def path(self, digest: str) -> Path:
+        if len(digest) != 64 or any(c not in "0123456789abcdef" for c in digest):
+            raise ValueError(f"not a SHA-256 hex digest: {digest!r}")
+        return self.root / digest[:2] / digest[2:4] / digest
+
+    def put(self, data: bytes) -> str:
+        """Store ``data`` unchanged; return its SHA-256. Idempotent and crash-safe."""
+        digest = sha256_hex(data)
+        final = self.path(digest)
+        if final.exists() and final.stat().st_size == len(data):
+            return digest
+        final.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp_name = tempfile.mkstemp(dir=self.root / "tmp", prefix=digest[:12], suffix=".part")
+        try:
+            with os.fdopen(fd, "wb") as handle:
+                handle.write(data)
+                handle.flush()
+                os.fsync(handle.fileno())
+            os.replace(tmp_name, final)
+        except BaseException:
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(tmp_name)
+            raise
+        _fsync_directory(final.parent)
+        return digest
+
+    def get(self, digest: str) -> bytes:
+        try:
+            return self.path(digest).read_bytes()
+        except FileNotFoundError:
+            raise KeyError(
+                f"raw file {digest} is missing from the blob folder {self.root}"
+            ) from None
+
+    def exists(self, digest: str) -> bool:
+        return self.path(digest).is_file()
+
+    def digest_on_disk(self, digest: str) -> str | None:
+        """SHA-256 of what is actually stored under ``digest`` (None if the file is missing)."""
+        path = self.path(digest)
+        if not path.is_file():
+            return None
+        hasher = hashlib.sha256()
+        with path.open("rb") as handle:
+            for chunk in iter(lambda: handle.read(1 << 20), b""):
+                hasher.update(chunk)
+        return hasher.hexdigest()
+
+
+def _fsync_directory(path: Path) -> None:
+    # The rename is durable only once the directory entry is on disk (POSIX; a no-op elsewhere).
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
+
+
+class Storage:
+    """Database engine plus blob folder for one service instance."""
+
+    def __init__(self, database_url: str, blob_root: str | os.PathLike[str]) -> None:
+        self.database_url = database_url
+        self.engine: Engine = _make_engine(database_url)
+        self.blobs = BlobStore(blob_root)
+
+    @property
+    def is_sqlite(self) -> bool:
+        return self.engine.dialect.name == "sqlite"
+
+    def create_schema(self) -> None:
+        metadata.create_all(self.engine)
+        if self.is_sqlite:
+            with self.engine.begin() as conn:
+                for table in _APPEND_ONLY_TABLES:
+                    for verb in ("UPDATE", "DELETE"):
+                        conn.exec_driver_sql(
+                            f"CREATE TRIGGER IF NOT EXISTS {table}_no_{verb.lower()} "
+                            f"BEFORE {verb} ON {table} BEGIN "
+                            f"SELECT RAISE(ABORT, '{table} is append-only'); END"
+                        )
+
+    @contextlib.contextmanager
+    def read(self) -> Iterator[Connection]:
+        """A read transaction."""
+        with self.engine.connect() as conn, conn.begin():
+            yield conn
+
+    @contextlib.contextmanager
+    def write(self) -> Iterator[Connection]:
+        """A write transaction, taking the write lock up front.
+
+        On SQLite this is ``BEGIN IMMEDIATE``: a deferred transaction that reads first and writes
+        later can fail with "database is locked" when another process commits in between, which
+        the busy timeout does not cover. On other databases it is an ordinary transaction; code
+        that must serialise (the chain) also locks a counter row.
+        """
+        with self.engine.connect() as conn:
+            conn = conn.execution_options(coldcert_immediate=True)
+            with conn.begin():
+                yield conn
+
+    def next_counter(self, conn: Connection, name: str) -> int:
+        """Increment and return a named counter inside the caller's write transaction."""
+        row = conn.execute(
+            counters.select().where(counters.c.name == name).with_for_update()
+        ).first()
+        if row is None:
+            conn.execute(counters.insert().values(name=name, value=1))
+            return 1
+        value = row.value + 1
+        conn.execute(counters.update().where(counters.c.name == name).values(value=value))
+        return value
+
+    def dispose(self) -> None:
+        self.engine.dispose()
+
+
+def _make_engine(database_url: str) -> Engine:
+    if not database_url.startswith("sqlite"):
+        return create_engine(database_url, pool_pre_ping=True)
+    engine = create_engine(database_url, connect_args={"timeout": 60, "check_same_thread": False})
+
+    @event.listens_for(engine, "connect")
+    def _on_connect(dbapi_conn, _record) -> None:  # pragma: no cover - driver callback
+        # Let SQLAlchemy's "begin" event issue BEGIN itself (the pysqlite driver would otherwise
+        # start transactions lazily, defeating BEGIN IMMEDIATE).
+        dbapi_conn.isolation_level = None
+        cursor = dbapi_conn.cursor()
+        cursor.execute("PRAGMA journal_mode=WAL")
+        cursor.execute("PRAGMA synchronous=FULL")
+        cursor.execute("PRAGMA foreign_keys=ON")
+        cursor.execute("PRAGMA busy_timeout=60000")
+        cursor.close()
+
+    @event.listens_for(engine, "begin")
+    def _on_begin(conn: Connection) -> None:  # pragma: no cover - driver callback
+        immediate = conn.get_execution_options().get("coldcert_immediate", False)
+        conn.exec_driver_sql("BEGIN IMMEDIATE" if immediate else "BEGIN")
+
+    return engine
+
+
+def default_database_url(instance_path: str | os.PathLike[str]) -> str:
+    return f"sqlite:///{Path(instance_path).resolve() / 'coldcert.sqlite3'}"
