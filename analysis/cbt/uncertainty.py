@@ -1,0 +1,125 @@
+"""GUM budget of a CBT electron temperature.
+
+The measurand is T, the electron temperature during the sweep. The posterior standard deviation
+is the statistical (Type A) row; the Type B rows are the instrument and device effects that the
+fit cannot see: the bias-voltage scale (a gain error δ stretches the voltage axis, and T from the
+width scales with it: ∂T/∂δ = T), the lock-in excitation amplitude (it broadens the dip; PHYSICS.md
+1.4), junction-resistance non-uniformity (FWHM × (1 − 0.7343 σ_R²): T from the width reads low by
+0.734 σ_R², PHYSICS.md 1.4, after Pekola et al., arXiv:2112.13830 (2021) on the error scaling with
+the variance), series resistance (T high by about R_s G_T when uncorrected) and the model's own
+truncation error (HigherOrderShape.relative_width_error).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from analysis.budget import Budget, BudgetRow, combine, standard_uncertainty_from_half_width
+from analysis.cbt.fit import SweepFit, fwhm_volts
+from analysis.cbt.models import DipShape, SweepSetup
+
+#: FWHM × (1 − c σ²) for junction-resistance spread σ (relative standard deviation), first order;
+#: derived in PHYSICS.md 1.4 (checked there by an exact master equation at N = 2: −0.738).
+NON_UNIFORMITY_WIDTH_COEFFICIENT = 0.7343
+
+
+@dataclass(frozen=True)
+class TypeBInputs:
+    """What the lab states about its instruments and device (from the run manifest).
+
+    Relative standard uncertainties are dimensionless. ``*_stated`` flags say whether the lab
+    supplied the value or a documented default was used; the certificate lists defaults as
+    deviations.
+    """
+
+    bias_scale_relative_u: float = 1e-3
+    bias_scale_stated: bool = False
+    excitation_relative_u: float = 0.05
+    excitation_stated: bool = False
+    resistance_spread: float = 0.02
+    resistance_spread_stated: bool = False
+    series_resistance_ohm: float = 0.0
+    series_resistance_u_ohm: float = 0.0
+    coverage_probability: float = 0.95
+
+
+def temperature_budget(
+    fit: SweepFit, shape: DipShape, setup: SweepSetup, inputs: TypeBInputs
+) -> tuple[Budget, float]:
+    """Budget rows for T and the corrected temperature.
+
+    Returns the Budget (whose estimate is the corrected temperature) and the applied
+    non-uniformity correction factor. The correction for a stated resistance spread σ_R is
+    1 + 0.7343 σ_R² on T; its standard uncertainty is taken as the whole correction divided by √3
+    (rectangular on [0, 2 × correction]), because σ_R is itself an estimate.
+    """
+    T = fit.temperature
+    rows: list[BudgetRow] = []
+    n_post = fit.posterior.effective_sample_size
+    rows.append(
+        BudgetRow(
+            "temperature from the fit (posterior)", T, fit.temperature_std, "K", "A", "posterior",
+            1.0, degrees_of_freedom=max(1.0, fit.corrected_bias.size - 4.0), sensitivity_unit="1",
+            note=f"posterior standard deviation, {fit.posterior.walkers} walkers, "
+            f"effective sample size {n_post:.0f}",
+        )
+    )
+    rows.append(
+        BudgetRow(
+            "bias-voltage scale factor", 1.0, inputs.bias_scale_relative_u, "1", "B",
+            "normal" if inputs.bias_scale_stated else "rectangular", T, sensitivity_unit="K",
+            note="stated by the lab" if inputs.bias_scale_stated else "not stated; default assumed",
+        )
+    )
+    if setup.excitation_rms_V > 0:
+        a = setup.excitation_rms_V
+        da = 1e-3 * a
+        up = SweepSetup(setup.junctions_in_series, a + da)
+        dn = SweepSetup(setup.junctions_in_series, a - da)
+        dw_da = (fwhm_volts(shape, up, T, fit.u) - fwhm_volts(shape, dn, T, fit.u)) / (2 * da)
+        dT = 1e-4 * T
+        dw_dT = (fwhm_volts(shape, setup, T + dT, fit.u) - fwhm_volts(shape, setup, T - dT, fit.u)) / (2 * dT)
+        c = -dw_da / dw_dT
+        rows.append(
+            BudgetRow(
+                "lock-in excitation amplitude (rms)", a, inputs.excitation_relative_u * a, "V", "B",
+                "normal" if inputs.excitation_stated else "rectangular", c, sensitivity_unit="K/V",
+                note="excitation averaging is in the model; this row is its amplitude's uncertainty",
+            )
+        )
+    sigma = inputs.resistance_spread
+    corr = NON_UNIFORMITY_WIDTH_COEFFICIENT * sigma**2
+    rows.append(
+        BudgetRow(
+            "junction-resistance non-uniformity correction", corr,
+            standard_uncertainty_from_half_width(corr, "rectangular"), "1", "B", "rectangular", T,
+            sensitivity_unit="K",
+            note=f"relative spread {sigma:g} "
+            + ("(stated)" if inputs.resistance_spread_stated else "(not stated; default assumed)"),
+        )
+    )
+    if inputs.series_resistance_ohm > 0 or inputs.series_resistance_u_ohm > 0:
+        rows.append(
+            BudgetRow(
+                "series (lead) resistance", inputs.series_resistance_ohm,
+                inputs.series_resistance_u_ohm, "ohm", "B", "normal",
+                T * fit.asymptotic_conductance, sensitivity_unit="K/ohm",
+                note="corrected in the data; T shifts by about R_s G_T when R_s is wrong",
+            )
+        )
+    bound = shape.relative_width_error(fit.u)
+    rows.append(
+        BudgetRow(
+            "model truncation", 0.0, standard_uncertainty_from_half_width(bound * T, "rectangular"),
+            "K", "B", "rectangular", 1.0, sensitivity_unit="1",
+            note=f"{shape.name}: width error bound {bound:.2e} relative at u = {fit.u:.3f}",
+        )
+    )
+    corrected = T * (1.0 + corr)
+    budget = combine(
+        "electron temperature", "K", corrected, rows,
+        coverage_probability=inputs.coverage_probability,
+    )
+    return budget, 1.0 + corr
+
+
