@@ -93,10 +93,7 @@ def melting_pressure_slope(temperature: float | np.ndarray) -> float | np.ndarra
     """dp/dT in Pa/K, the term-by-term derivative of Rusby et al. (2002) eq. (1)."""
     t = np.asarray(temperature, dtype=float)
     _check_temperature(t)
-    d = (
-        np.sum(_COEFFICIENTS_MPA * _EXPONENTS * np.power.outer(t, _EXPONENTS - 1), axis=-1)
-        * 1e6
-    )
+    d = np.sum(_COEFFICIENTS_MPA * _EXPONENTS * np.power.outer(t, _EXPONENTS - 1), axis=-1) * 1e6
     return float(d) if d.ndim == 0 else d
 
 
@@ -104,7 +101,9 @@ def _find_minimum() -> tuple[float, float]:
     # The minimum of the polynomial itself (not the rounded tabulated value), so that the two
     # branches meet exactly and the inversion is consistent with melting_pressure().
     res = minimize_scalar(
-        lambda t: melting_pressure(t), bounds=(0.25, 0.40), method="bounded",
+        lambda t: melting_pressure(t),
+        bounds=(0.25, 0.40),
+        method="bounded",
         options={"xatol": 1e-12},
     )
     return float(res.x), float(res.fun)
@@ -141,8 +140,9 @@ def _resolve_branch(branch: Branch | None, temperature_hint: float | None) -> Br
         raise ValueError(f"branch must be 'low' or 'high', got {branch!r}")
     if temperature_hint is not None:
         if not (math.isfinite(temperature_hint) and temperature_hint > 0):
-            raise ValueError(f"temperature hint must be a positive number of kelvin, got "
-                             f"{temperature_hint!r}")
+            raise ValueError(
+                f"temperature hint must be a positive number of kelvin, got {temperature_hint!r}"
+            )
         hinted: Branch = "low" if temperature_hint < T_MINIMUM else "high"
         if branch is not None and branch != hinted:
             raise ValueError(
