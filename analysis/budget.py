@@ -274,14 +274,18 @@ def coverage_intervals(values: np.ndarray, p: float) -> tuple[tuple[float, float
     """Probabilistically symmetric and shortest coverage intervals (JCGM 101 7.7.1, 7.7.2)."""
     y = np.sort(np.asarray(values, dtype=float))
     m = y.size
+    if m < 2:
+        raise ValueError("coverage intervals need at least two values")
     q = int(p * m + 0.5)  # JCGM 101 7.7.1: q = pM rounded to an integer
-    q = min(max(q, 1), m)
+    q = min(max(q, 1), m - 1)
+    # JCGM 101 7.7.1: the interval is [y_(r), y_(r+q)], r = 1..M−q; with G(y_(r)) = (r − 1/2)/M
+    # (7.5.1) it holds probability q/M = p.
     r_sym = int((m - q) / 2 + 0.5)
-    r_sym = min(max(r_sym, 1), m - q + 1)
-    symmetric = (float(y[r_sym - 1]), float(y[r_sym + q - 2]))
-    widths = y[q - 1 :] - y[: m - q + 1]
+    r_sym = min(max(r_sym, 1), m - q)
+    symmetric = (float(y[r_sym - 1]), float(y[r_sym + q - 1]))
+    widths = y[q:] - y[: m - q]
     r = int(np.argmin(widths))
-    shortest = (float(y[r]), float(y[r + q - 1]))
+    shortest = (float(y[r]), float(y[r + q]))
     return symmetric, shortest
 
 
