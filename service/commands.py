@@ -29,9 +29,9 @@ def add_commands(sub) -> None:
 class ProgressBar:
     """A one-line progress bar on stderr, only when stderr is a terminal."""
 
-    def __init__(self, stream=sys.stderr):
-        self.stream = stream
-        self.tty = stream.isatty()
+    def __init__(self, stream=None):
+        self.stream = stream if stream is not None else sys.stderr
+        self.tty = self.stream.isatty()
         self.last = -1
 
     def __call__(self, fraction: float, step: str) -> None:

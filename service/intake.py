@@ -387,7 +387,7 @@ def detect_kind(files: list[DataFile], manifest: dict) -> str:
         return stated
     if any("pump_on" in f.columns or "gate_V" in f.columns for f in files):
         return KIND_PUMP
-    sweeps = [f for f in files if is_cbt_sweep(f)]
+    sweeps = [f for f in files if "bias_V" in f.columns]
     if sweeps and all("sensor_resistance_ohm" in f.metadata for f in sweeps):
         return KIND_SENSOR
     if sweeps:
@@ -414,6 +414,18 @@ def load_files(named: dict[str, bytes]) -> Run:
         raise IntakeError("the run holds no .csv data files")
     kind = detect_kind(files, manifest)
     if kind in (KIND_CBT, KIND_SENSOR):
+        for f in files:
+            if "bias_V" in f.columns and not is_cbt_sweep(f):
+                raise IntakeError(
+                    "a sweep needs a conductance_S column (lock-in) or a current_A column (DC I–V) "
+                    f"beside bias_V; found {', '.join(f.columns)}",
+                    file=f.name, line=f.header_line, field="conductance_S",
+                )
+            if kind == KIND_CBT and not is_cbt_sweep(f):
+                raise IntakeError(
+                    f"not a CBT sweep: expected columns bias_V,conductance_S; found {', '.join(f.columns)}",
+                    file=f.name, line=f.header_line,
+                )
         sweeps = [f for f in files if is_cbt_sweep(f)]
         if not sweeps:
             raise IntakeError("a thermometry run needs at least one sweep with columns bias_V and conductance_S (or current_A)")

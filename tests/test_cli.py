@@ -1,0 +1,79 @@
+"""The CLI end to end on the bundled example run, and its refusals."""
+
+import json
+import shutil
+from pathlib import Path
+
+import pytest
+
+from service.cli import main
+
+EXAMPLE = Path(__file__).resolve().parent.parent / "example_runs" / "cbt-hollowmere"
+
+
+@pytest.mark.slow
+def test_certify_example_run(tmp_path, capsys):
+    out = tmp_path / "cert"
+    assert main(["certify", str(EXAMPLE), "--out", str(out)]) == 0
+    record = json.loads((out / "certificate.json").read_text())
+    html = (out / "certificate.html").read_text()
+    assert record["state"] == "draft" and record["job"] == "cbt_thermometry"
+    assert len(record["results"]) == 5
+    for r in record["results"]:
+        for key in ("name", "sweep", "value", "unit", "standard_uncertainty", "expanded_uncertainty",
+                    "coverage_factor", "coverage_probability", "budget"):
+            assert key in r
+        assert r["unit"] == "K" and r["diagnostics"]["posterior"]["converged"]
+        assert r["expanded_uncertainty"] == pytest.approx(r["coverage_factor"] * r["standard_uncertainty"])
+        assert r["sweep"] in html
+    # ISO/IEC 17025 7.8.2: unique id on the document, laboratory, customer, item, dates, statements.
+    assert record["certificate_id"] in html and html.count(record["certificate_id"]) >= 2
+    for key in ("laboratory", "customer", "item", "dates", "method", "traceability", "statements"):
+        assert record[key]
+    assert any("relate only to the item" in s for s in record["statements"])
+    assert any("not an accreditation" in s for s in record["statements"])
+    assert "<svg" in html
+    assert "CC-" in capsys.readouterr().out
+
+
+def test_same_run_same_bytes(tmp_path):
+    run = tmp_path / "run"
+    run.mkdir()
+    shutil.copy(EXAMPLE / "sweep_03_60mK.csv", run)
+    a, b = tmp_path / "a", tmp_path / "b"
+    assert main(["certify", str(run), "--out", str(a), "--quick", "--seed", "7"]) == 0
+    assert main(["certify", str(run), "--out", str(b), "--quick", "--seed", "7"]) == 0
+    assert (a / "certificate.json").read_bytes() == (b / "certificate.json").read_bytes()
+    assert (a / "certificate.html").read_bytes() == (b / "certificate.html").read_bytes()
+    rec = json.loads((a / "certificate.json").read_text())
+    assert rec["reproducibility"]["seed"] == 7
+    assert any("quick-look" in d for d in rec["deviations"])
+
+
+def test_bad_input_exits_nonzero_with_one_line_and_writes_nothing(tmp_path, capsys):
+    run = tmp_path / "run"
+    run.mkdir()
+    lines = ["# junctions_in_series: 33", "bias_V,conductance_S"] + [f"{i * 1e-5},3e-6" for i in range(40)]
+    lines[10] = "2e-4,oops"
+    (run / "bad.csv").write_text("\n".join(lines) + "\n")
+    out = tmp_path / "out"
+    assert main(["certify", str(run), "--out", str(out)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.count("\n") == 0
+    assert "bad.csv:11" in err and "conductance_S" in err and "oops" in err
+    assert not out.exists()
+
+
+def test_narrow_sweep_refused_with_file_and_field(tmp_path, capsys):
+    from analysis.cbt.simulate import simulate_sweep
+
+    bias, g, _ = simulate_sweep(33, 0.05, 0.01, 3e-6, seed=2, range_half_widths=2.0)
+    run = tmp_path / "run"
+    run.mkdir()
+    (run / "narrow.csv").write_text(
+        "# junctions_in_series: 33\nbias_V,conductance_S\n"
+        + "".join(f"{float(v)!r},{float(c)!r}\n" for v, c in zip(bias, g, strict=True))
+    )
+    assert main(["certify", str(run), "--out", str(tmp_path / "o")]) == 2
+    err = capsys.readouterr().err
+    assert "narrow.csv" in err and "bias_V" in err and "V_1/2" in err
