@@ -69,7 +69,7 @@ class FitSettings:
     block: int = 100
     max_steps: int = 20_000
     min_tau_multiple: float = 50.0
-    tau_tolerance: float = 0.02
+    tau_tolerance: float = 0.05
 
 
 @dataclass(frozen=True)
