@@ -35,7 +35,7 @@ from typing import Literal
 
 import numpy as np
 from numpy.polynomial import chebyshev as cheb
-from scipy import optimize
+from scipy import optimize, stats
 from scipy.linalg import solve_triangular
 
 from analysis import budget as gum
@@ -793,6 +793,9 @@ def fit_calibration_curve(
     birge = ls.birge_ratio
     dof = ls.degrees_of_freedom
     if dof > 0 and birge > 1:
+        # The enlargement applies whenever B > 1 (conservative); a warning only when the excess
+        # is significant at the 5 % level (chi-squared test, common practice).
+        significant = ls.chi_squared > stats.chi2.ppf(0.95, dof)
         if residual_scaling == "if_larger":
             cov_parts.append(
                 CovariancePart(
@@ -803,15 +806,16 @@ def fit_calibration_curve(
                     note=f"Birge ratio {birge:.3g}: independent parts scaled by its square",
                 )
             )
-        warnings.append(
-            f"the points scatter more than their uncertainties allow (Birge ratio "
-            f"{birge:.3g}, chi2 = {ls.chi_squared:.3g} for {dof} degrees of freedom)"
-            + (
-                "; the curve's uncertainty is enlarged accordingly"
-                if residual_scaling == "if_larger"
-                else ""
+        if significant:
+            warnings.append(
+                f"the points scatter more than their uncertainties allow (Birge ratio "
+                f"{birge:.3g}, chi2 = {ls.chi_squared:.3g} for {dof} degrees of freedom)"
+                + (
+                    "; the curve's uncertainty is enlarged accordingly"
+                    if residual_scaling == "if_larger"
+                    else ""
+                )
             )
-        )
     if best.degree == top and degree is None and top > 1:
         warnings.append(
             f"the criterion chose the highest degree allowed ({top}); more points "

@@ -10,7 +10,7 @@ import argparse
 import importlib
 import sys
 
-COMMAND_MODULES: tuple[str, ...] = ("service.commands",)
+COMMAND_MODULES: tuple[str, ...] = ("service.commands", "service.sensor_run")
 
 
 class CommandError(Exception):
