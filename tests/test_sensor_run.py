@@ -307,3 +307,108 @@ def test_certify_minimal_sensor_run_and_convert_log(tmp_path, capsys):
     t = np.array([float(row[2]) for row in inside])
     big_u = np.array([float(row[4]) for row in inside])
     assert np.all(np.abs(t - EXAMPLE_SENSOR.temperature(r)) <= 3 * big_u)
+
+
+# ------------------------------------------------------------------------------------------
+# The job with time-matched logs (CBT analysis replaced by a stand-in to keep this fast)
+
+
+def _fake_cbt(truth: dict[str, float]):
+    from service.thermometry import JobOutcome
+
+    def analyse(run, seed, progress=None, fast=False):
+        results = []
+        for name, t in truth.items():
+            results.append(
+                {
+                    "name": "electron temperature",
+                    "sweep": name,
+                    "value": t,
+                    "unit": "K",
+                    "standard_uncertainty": 0.002 * t,
+                    "expanded_uncertainty": 0.004 * t,
+                    "coverage_factor": 2.0,
+                    "coverage_probability": 0.95,
+                    "budget": {
+                        "rows": [
+                            {"quantity": "posterior", "type": "A", "contribution": 0.002 * t},
+                            {
+                                "quantity": "bias-voltage scale factor",
+                                "type": "B",
+                                "contribution": 3e-4 * t,
+                            },
+                        ]
+                    },
+                }
+            )
+        return JobOutcome(results=results, method={"description": "stand-in"})
+
+    return analyse
+
+
+def test_job_with_resistance_and_pressure_logs(monkeypatch):
+    from service.intake import load_files
+
+    temps = np.geomspace(0.02, 0.8, 8)
+    named = {
+        "run.toml": b'[run]\nkind = "sensor_calibration"\n[sensor]\ntable_points = 9\n'
+        b"[instruments]\nmelting_pressure_u_Pa = 25\n"
+    }
+    truth = {}
+    r_rows, p_rows = [], []
+    rows = "\n".join(f"{v:.3e},1.0e-5" for v in np.linspace(-1e-3, 1e-3, 31))
+    for k, t in enumerate(temps):
+        name = f"sweep_{k}.csv"
+        truth[name] = float(t)
+        start = 3600 * k
+        named[name] = (
+            f"# junctions_in_series: 10\n# sweep_started: 2026-11-23T{8 + k:02d}:00:00Z\n"
+            f"# sweep_ended: 2026-11-23T{8 + k:02d}:30:00Z\nbias_V,conductance_S\n{rows}\n"
+        ).encode()
+        r = float(EXAMPLE_SENSOR.resistance(t))
+        for j, s in enumerate(range(start, start + 1800, 300)):
+            r_rows.append(f"{s},{r * (1 + 1e-4 * (-1) ** j):.6f}")
+        if k in (1, 6):
+            p_rows.append(f"{start + 600},{float(scales.melting_pressure(t)):.1f}")
+        r_rows.append(f"{start + 2400},{r * 1.5:.6f}")  # between sweeps: must be ignored
+    header = "# time_origin: 2026-11-23T08:00:00Z\n"
+    named["bridge_log.csv"] = (header + "time_s,resistance_ohm\n" + "\n".join(r_rows)).encode()
+    named["melting.csv"] = (header + "time_s,pressure_Pa\n" + "\n".join(p_rows)).encode()
+    run = load_files(named)
+    assert run.kind == "sensor_calibration"
+    monkeypatch.setattr(sr.thermometry, "analyse", _fake_cbt(truth))
+    outcome = sr.analyse(run, seed=1)
+    section = outcome.sections["sensor_calibration"]
+    for p, t in zip(section["points"], temps, strict=True):
+        assert p["resistance_source"].startswith("bridge_log.csv (6 readings)")
+        assert p["resistance_ohm"] == pytest.approx(float(EXAMPLE_SENSOR.resistance(t)), rel=1e-9)
+        assert p["resistance_relative_u"] == pytest.approx(math.hypot(1.095e-4, 1e-4), rel=0.01)
+    cross = section["plts2000_cross_check"]
+    assert [c["sweep"] for c in cross] == ["sweep_1.csv", "sweep_6.csv"]
+    assert all(abs(c["relative_difference"]) < 1e-6 for c in cross)
+    assert cross[0]["pressure_standard_uncertainty_Pa"] == 25
+    table = outcome.extra_files["calibration_table.csv"].decode().splitlines()
+    assert table[0] == sr.TABLE_HEADER and len(table) == 10
+    assert any("bridge resistance-scale" in d for d in outcome.deviations)
+    assert "<svg" in outcome.plots["sensor calibration curve and normalised residuals"]
+
+
+def test_job_refuses_stray_file_and_too_few_sweeps(monkeypatch):
+    from service.intake import load_files
+
+    rows = "\n".join(f"{v:.3e},1.0e-5" for v in np.linspace(-1e-3, 1e-3, 31))
+    named = {
+        f"s{k}.csv": (
+            f"# junctions_in_series: 10\n# sensor_resistance_ohm: {1000 + k}\n"
+            f"bias_V,conductance_S\n{rows}\n"
+        ).encode()
+        for k in range(3)
+    }
+    with pytest.raises(IntakeError, match="at least 4 CBT sweeps"):
+        sr.analyse(load_files(named), seed=1)
+    named["s3.csv"] = named["s0.csv"].replace(b"1000\n", b"1003\n")
+    named["notes.csv"] = b"gate_V,current_A\n0,1\n"
+    run = load_files({**named, "run.toml": b'[run]\nkind = "sensor_calibration"\n'})
+    with pytest.raises(IntakeError, match="not a CBT sweep") as exc:
+        sr.analyse(run, seed=1)
+    assert exc.value.file == "notes.csv"
