@@ -239,6 +239,23 @@ def render_html(record: dict, plots: dict[str, str] | None = None, extra_section
     for key, svg in plots.items():
         if not key.startswith("fit-"):
             parts.append(f"<figure>{svg}<figcaption class=small>{_e(key)}</figcaption></figure>")
+    gf = record.get("sections", {}).get("global_fit")
+    if gf:
+        rows = "".join(
+            f"<tr><td>{_e(name)}</td><td class=num>{_g(gf['independent_charging_energy_K'][name] * 1e3, 5)} ± "
+            f"{_g(gf['independent_charging_energy_std_K'][name] * 1e3, 2)}</td>"
+            f"<td class=num>{_g(gf['tightening_factor'][name], 3)}</td></tr>"
+            for name in gf["tightening_factor"]
+        )
+        parts.append(
+            "<h2>Global fit (shared charging energy)</h2>"
+            f"<p>ΔE/k_B = {_g(gf['charging_energy_K'] * 1e3, 6)} mK ± {_g(gf['charging_energy_std_K'] * 1e3, 2)} mK "
+            f"from all sweeps together; consistency χ² = {_g(gf['consistency_chi2'], 3)} for "
+            f"{gf['consistency_degrees_of_freedom']} degrees of freedom. The temperatures above come from this "
+            "joint posterior; their correlations through ΔE are in the record.</p>"
+            "<table><tr><th>sweep</th><th>independent ΔE/k_B (mK)</th><th>σ(T) independent / global</th></tr>"
+            f"{rows}</table>"
+        )
     for s in extra_sections or []:
         parts.append(s)
     parts.append("<h2>Conditions of measurement</h2>")

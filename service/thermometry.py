@@ -10,11 +10,14 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
+
+from scipy import stats
 
 from analysis.budget import round_for_report
 from analysis.cbt.fit import FitSettings, SweepData, SweepError, SweepFit, fit_sweep
-from analysis.cbt.models import SweepSetup, correct_series_resistance, higher_order_shape
+from analysis.cbt.global_fit import GlobalFit, fit_global
+from analysis.cbt.models import DipShape, SweepSetup, correct_series_resistance, higher_order_shape
 from analysis.cbt.uncertainty import TypeBInputs, temperature_budget
 from service.intake import IntakeError, Run, check_cbt_sweep, is_cbt_sweep, manifest_number
 from service.plots import sweep_fit_svg
@@ -71,19 +74,28 @@ def fit_settings(manifest: dict, fast: bool) -> FitSettings:
     return FitSettings()
 
 
-def analyse_sweep(f, seed: int, settings: FitSettings, inputs: TypeBInputs,
-                  progress: Progress | None = None) -> tuple[SweepFit, dict, str, list[str]]:
-    """Fit one accepted sweep file; returns the fit, the result entry, the plot and warnings."""
+@dataclass
+class SweepWork:
+    """One sweep on its way to a result: the accepted file, its data and its fit."""
+
+    file: object
+    data: SweepData
+    rs: float
+    fit: SweepFit
+    warnings: list[str]
+
+
+def fit_file(f, seed: int, settings: FitSettings, shape: DipShape,
+             progress: Progress | None = None) -> SweepWork:
+    """Fit one accepted sweep file independently; applies the certification rules."""
     bias, g = check_cbt_sweep(f)
     md = f.metadata
     setup = SweepSetup(md["junctions_in_series"], md.get("excitation_rms_V", 0.0))
     rs = md.get("series_resistance_ohm", 0.0)
     if rs:
         bias, g = correct_series_resistance(bias, g, rs)
-        inputs = TypeBInputs(**{**inputs.__dict__, "series_resistance_ohm": rs})
     sigma = f.columns.get("conductance_uncertainty_S")
     data = SweepData(bias, g, setup, conductance_uncertainty=sigma)
-    shape = higher_order_shape
     try:
         fit = fit_sweep(data, seed=seed, shape=shape, settings=settings, progress=progress)
     except SweepError as exc:
@@ -91,7 +103,9 @@ def analyse_sweep(f, seed: int, settings: FitSettings, inputs: TypeBInputs,
     warnings: list[str] = []
     reach = fit.diagnostics["bias_reach_half_widths"]
     if reach < WARN_RANGE_HALF_WIDTHS:
-        warnings.append(f"bias range reaches only ±{reach:.1f} V_1/2; ±{WARN_RANGE_HALF_WIDTHS:g} or more fixes G_T better")
+        warnings.append(
+            f"bias range reaches only ±{reach:.1f} V_1/2; ±{WARN_RANGE_HALF_WIDTHS:g} or more fixes G_T better"
+        )
     if abs(fit.lag1_residual_correlation) > RESIDUAL_CORRELATION_LIMIT:
         warnings.append(
             f"residuals are correlated (lag-1 {fit.lag1_residual_correlation:.2f}): the model or the "
@@ -108,7 +122,18 @@ def analyse_sweep(f, seed: int, settings: FitSettings, inputs: TypeBInputs,
             f"{f.name}: u = ΔE/k_BT = {fit.u:.2f} lies beyond the validated range of the "
             f"{shape.name} model (u ≤ {shape.max_u:g}); a full tunnelling model is needed"
         )
-    budget, _ = temperature_budget(fit, shape, setup, inputs)
+    return SweepWork(f, data, rs, fit, warnings)
+
+
+def result_entry(work: SweepWork, shape: DipShape, inputs: TypeBInputs,
+                 global_note: str | None = None) -> tuple[dict, str]:
+    """The certificate's result entry and fit plot for one sweep (independent or global)."""
+    f, fit, data = work.file, work.fit, work.data
+    md = f.metadata
+    setup = data.setup
+    if work.rs:
+        inputs = replace(inputs, series_resistance_ohm=work.rs)
+    budget, _ = temperature_budget(fit, shape, setup, inputs, posterior_note=global_note)
     value_s, u_s = round_for_report(budget.estimate, budget.combined_standard_uncertainty)
     _, U_s = round_for_report(budget.estimate, budget.expanded_uncertainty)
     entry = {
@@ -130,7 +155,7 @@ def analyse_sweep(f, seed: int, settings: FitSettings, inputs: TypeBInputs,
             "junctions_in_series": setup.junctions_in_series,
             "parallel_rows": md.get("parallel_rows", 1),
             "excitation_rms_V": setup.excitation_rms_V,
-            "series_resistance_ohm": rs,
+            "series_resistance_ohm": work.rs,
             "posterior_mean_temperature_K": fit.temperature,
             "posterior_std_temperature_K": fit.temperature_std,
             "credible_interval_95_K": list(fit.temperature_interval95),
@@ -144,19 +169,68 @@ def analyse_sweep(f, seed: int, settings: FitSettings, inputs: TypeBInputs,
             "half_width_voltage_V": fit.half_width_voltage,
             "noise_std_S": fit.noise_std,
             "least_squares": fit.least_squares,
-            "points": int(bias.size),
+            "points": int(data.bias.size),
         },
         "diagnostics": {
             "posterior": fit.posterior.diagnostics(),
-            "bias_reach_half_widths": reach,
+            "bias_reach_half_widths": fit.diagnostics["bias_reach_half_widths"],
             "lag1_residual_correlation": fit.lag1_residual_correlation,
             "model_validated_up_to_u": shape.max_u,
-            "warnings": warnings,
+            "warnings": work.warnings,
         },
     }
     title = f"{f.name}: T = {value_s} K, u = {fit.u:.3f}"
-    svg = sweep_fit_svg(bias, g, fit.model_curve, title)
-    return fit, entry, svg, warnings
+    svg = sweep_fit_svg(data.bias, data.conductance, fit.model_curve, title)
+    return entry, svg
+
+
+def one_device(works: list[SweepWork]) -> bool:
+    """Sweeps belong to one device when N agrees and any stated device identifiers agree."""
+    ns = {w.data.setup.junctions_in_series for w in works}
+    ids = {w.file.metadata.get("device") for w in works}
+    return len(works) >= 2 and len(ns) == 1 and (len(ids) == 1)
+
+
+def apply_global(works: list[SweepWork], shape: DipShape) -> tuple[GlobalFit, list[str]]:
+    """Replace each independent fit's temperature by the shared-ΔE posterior's."""
+    g = fit_global([w.data for w in works], [w.fit for w in works], shape)
+    notes = []
+    for k, w in enumerate(works):
+        T = float(g.temperatures[k])
+        w.fit = replace(
+            w.fit,
+            temperature=T,
+            temperature_std=float(g.temperature_std[k]),
+            temperature_interval95=(float(g.temperature_intervals95[k, 0]), float(g.temperature_intervals95[k, 1])),
+            charging_energy=g.charging_energy,
+            charging_energy_std=g.charging_energy_std,
+            u=g.charging_energy / T,
+        )
+        notes.append(
+            f"global fit of {len(works)} sweeps with a shared charging energy; independent-fit "
+            f"standard deviation {g.independent_temperature_std[k]:.3g} K (tightened {g.tightening[k]:.2f}×)"
+        )
+    return g, notes
+
+
+def global_section(g: GlobalFit, works: list[SweepWork]) -> dict:
+    names = [w.file.name for w in works]
+    return {
+        "description": "all sweeps fitted together with one charging energy (numerical integration "
+        "of the joint posterior; analysis.cbt.global_fit)",
+        "charging_energy_K": g.charging_energy,
+        "charging_energy_std_K": g.charging_energy_std,
+        "independent_charging_energy_K": dict(zip(names, map(float, g.independent_charging_energy), strict=True)),
+        "independent_charging_energy_std_K": dict(
+            zip(names, map(float, g.independent_charging_energy_std), strict=True)
+        ),
+        "consistency_chi2": g.consistency_chi2,
+        "consistency_degrees_of_freedom": g.consistency_dof,
+        "tightening_factor": dict(zip(names, map(float, g.tightening), strict=True)),
+        "correlation_order": [*names, "charging_energy"],
+        "temperature_correlation": [[float(x) for x in row] for row in g.correlation],
+        "covariance_K2": [[float(x) for x in row] for row in g.covariance],
+    }
 
 
 def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = False) -> JobOutcome:
@@ -166,15 +240,40 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
     inputs = type_b_inputs(manifest, p)
     settings = fit_settings(manifest, fast)
     sweeps = [f for f in run.files if is_cbt_sweep(f)]
+    shape = higher_order_shape
     outcome = JobOutcome(results=[])
+    works = []
     for k, f in enumerate(sweeps):
         def sub(frac: float, step: str, k=k, name=f.name) -> None:
             if progress:
-                progress((k + frac) / len(sweeps), f"{name}: {step}")
+                progress(0.95 * (k + frac) / len(sweeps), f"{name}: {step}")
 
-        fit, entry, svg, warnings = analyse_sweep(f, seed + k, settings, inputs, sub)
+        works.append(fit_file(f, seed + k, settings, shape, sub))
+    notes: list[str | None] = [None] * len(works)
+    if one_device(works):
+        if progress:
+            progress(0.96, "global fit with a shared charging energy")
+        try:
+            g, notes = apply_global(works, shape)
+        except ValueError as exc:
+            outcome.deviations.append(f"global fit not applied ({exc}); temperatures are from independent fits")
+        else:
+            outcome.sections["global_fit"] = global_section(g, works)
+            p_val = float(stats.chi2.sf(g.consistency_chi2, g.consistency_dof))
+            if p_val < 1e-3:
+                outcome.deviations.append(
+                    f"the independent charging energies disagree (chi2 = {g.consistency_chi2:.1f} for "
+                    f"{g.consistency_dof} degrees of freedom, p = {p_val:.1e}); ΔE may have drifted between sweeps"
+                )
+    for w, note in zip(works, notes, strict=True):
+        if w.fit.u > shape.max_u:
+            raise CertificationRefused(
+                f"{w.file.name}: u = {w.fit.u:.2f} after the global fit lies beyond the validated range of "
+                f"the {shape.name} model (u ≤ {shape.max_u:g})"
+            )
+        entry, svg = result_entry(w, shape, inputs, note)
         outcome.results.append(entry)
-        outcome.plots[f"fit-{f.name}"] = svg
+        outcome.plots[f"fit-{w.file.name}"] = svg
     outcome.diagnostics["convergence_rule"] = {
         "min_autocorrelation_times": settings.min_tau_multiple,
         "tau_tolerance": settings.tau_tolerance,

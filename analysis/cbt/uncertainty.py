@@ -44,7 +44,7 @@ class TypeBInputs:
 
 
 def temperature_budget(
-    fit: SweepFit, shape: DipShape, setup: SweepSetup, inputs: TypeBInputs
+    fit: SweepFit, shape: DipShape, setup: SweepSetup, inputs: TypeBInputs, posterior_note: str | None = None
 ) -> tuple[Budget, float]:
     """Budget rows for T and the corrected temperature.
 
@@ -60,7 +60,7 @@ def temperature_budget(
         BudgetRow(
             "temperature from the fit (posterior)", T, fit.temperature_std, "K", "A", "posterior",
             1.0, degrees_of_freedom=max(1.0, fit.corrected_bias.size - 4.0), sensitivity_unit="1",
-            note=f"posterior standard deviation, {fit.posterior.walkers} walkers, "
+            note=posterior_note or f"posterior standard deviation, {fit.posterior.walkers} walkers, "
             f"effective sample size {n_post:.0f}",
         )
     )
