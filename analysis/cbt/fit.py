@@ -65,7 +65,7 @@ class SweepData:
 class FitSettings:
     """Sampler settings. Defaults give certificate-grade chains; tests may use lighter ones."""
 
-    walkers: int = 16
+    walkers: int = 12
     block: int = 100
     max_steps: int = 20_000
     min_tau_multiple: float = 50.0

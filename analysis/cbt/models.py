@@ -190,7 +190,7 @@ def lockin_nodes_for(alpha_max: float) -> int:
     if alpha_max <= 0:
         return 0
     if alpha_max < 0.3:
-        return 4
+        return 3
     if alpha_max < 1.0:
         return 8
     if alpha_max < 2.5:
