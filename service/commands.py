@@ -21,6 +21,14 @@ def add_commands(sub) -> None:
                    help="quick-look convergence rule (20 autocorrelation times); marked on the certificate")
     p.set_defaults(handler=cmd_certify)
 
+    z = sub.add_parser("secondary", help="zero-bias conductance log -> temperatures, using a CBT certificate")
+    z.add_argument("certificate", help="certificate.json of a primary (preferably global) CBT fit")
+    z.add_argument("log", help="CSV with columns time_s,conductance_S (optional conductance_uncertainty_S)")
+    z.add_argument("--out", required=True, help="CSV to write: time_s,temperature_K,standard_uncertainty_K")
+    z.add_argument("--max-age-days", type=float, default=90.0,
+                   help="warn when the certificate's measurement date is older than this (charging energy drifts)")
+    z.set_defaults(handler=cmd_secondary)
+
     c = sub.add_parser("check", help="validate a run folder without analysing it")
     c.add_argument("run")
     c.set_defaults(handler=cmd_check)
@@ -102,4 +110,78 @@ def cmd_check(args) -> int:
     except IntakeError as exc:
         raise CommandError(exc.describe()) from None
     print(f"{args.run}: {run.kind}, {len(run.files)} data file(s) accepted")
+    return 0
+
+
+def secondary_calibration_from_record(record: dict):
+    """ΔE and G_T (with uncertainties) from a thermometry certificate record."""
+    from analysis.cbt.secondary import SecondaryCalibration
+
+    if record.get("job") not in ("cbt_thermometry", "sensor_calibration"):
+        raise CommandError("the certificate is not from a CBT thermometry run")
+    fits = [r["fit"] for r in record.get("results", []) if "fit" in r]
+    if not fits:
+        raise CommandError("the certificate holds no CBT fit results")
+    gf = record.get("sections", {}).get("global_fit")
+    if gf:
+        E, uE = gf["charging_energy_K"], gf["charging_energy_std_K"]
+    else:
+        best = min(fits, key=lambda f: f["charging_energy_std_K"] / f["charging_energy_K"])
+        E, uE = best["charging_energy_K"], best["charging_energy_std_K"]
+    gts = [f["asymptotic_conductance_S"] for f in fits]
+    gt = sum(gts) / len(gts)
+    spread = (sum((g - gt) ** 2 for g in gts) / (len(gts) - 1)) ** 0.5 if len(gts) > 1 else 0.0
+    u_gt = max(spread, max(f["asymptotic_conductance_std_S"] for f in fits))
+    return SecondaryCalibration(E, uE, gt, u_gt)
+
+
+def cmd_secondary(args) -> int:
+    import datetime as dt
+    import json
+
+    import numpy as np
+
+    from analysis.cbt.secondary import temperatures_from_zero_bias
+    from service.intake import parse_csv
+
+    try:
+        record = json.loads(Path(args.certificate).read_text(encoding="utf-8"))
+    except (OSError, json.JSONDecodeError) as exc:
+        raise CommandError(f"{args.certificate}: cannot read the certificate ({exc})") from None
+    cal = secondary_calibration_from_record(record)
+    path = Path(args.log)
+    try:
+        f = parse_csv(path.name, path.read_bytes())
+    except OSError as exc:
+        raise CommandError(f"{path}: {exc}") from None
+    except IntakeError as exc:
+        raise CommandError(exc.describe()) from None
+    for col in ("time_s", "conductance_S"):
+        if col not in f.columns:
+            raise CommandError(f"{path.name}:{f.header_line}: {col}: missing column (expected time_s,conductance_S)")
+    g_u = f.columns.get("conductance_uncertainty_S", 0.0)
+    try:
+        res = temperatures_from_zero_bias(f.columns["conductance_S"], cal, g_u)
+    except ValueError as exc:
+        msg = str(exc)
+        if msg.startswith("reading "):
+            i = int(msg.split()[1].rstrip(":")) - 1
+            raise CommandError(f"{path.name}:{f.line_of_row(i)}: conductance_S: {msg.split(':', 1)[1].strip()}") from None
+        raise CommandError(f"{path.name}: {msg}") from None
+    measured = record.get("dates", {}).get("measured")
+    if measured:
+        try:
+            age = (dt.date.today() - dt.date.fromisoformat(str(measured)[:10])).days
+        except ValueError:
+            age = None
+        if age is not None and age > args.max_age_days:
+            print(f"coldcert: warning: the charging energy was measured {age} days ago; it can drift "
+                  "(refit it with a primary sweep)", file=sys.stderr)
+    lines = ["time_s,conductance_S,temperature_K,standard_uncertainty_K"]
+    for t, g, T, u in zip(f.columns["time_s"], f.columns["conductance_S"], res.temperature,
+                          res.standard_uncertainty, strict=True):
+        lines.append(f"{float(t)!r},{float(g)!r},{float(T)!r},{float(u)!r}")
+    write_atomically(Path(args.out).parent, {Path(args.out).name: ("\n".join(lines) + "\n").encode()})
+    print(f"{len(lines) - 1} readings -> {args.out} (T from {np.min(res.temperature):.5g} to "
+          f"{np.max(res.temperature):.5g} K; ΔE/k_B = {cal.charging_energy * 1e3:.4g} mK)")
     return 0

@@ -77,3 +77,34 @@ def test_narrow_sweep_refused_with_file_and_field(tmp_path, capsys):
     assert main(["certify", str(run), "--out", str(tmp_path / "o")]) == 2
     err = capsys.readouterr().err
     assert "narrow.csv" in err and "bias_V" in err and "V_1/2" in err
+
+
+def test_secondary_command_round_trip(tmp_path, capsys):
+    # A certificate record with a global fit; zero-bias readings made from the depth series
+    # (Farhangfar et al. 1997) at known temperatures must come back as those temperatures.
+    from analysis.cbt.models import depth_series
+
+    E, gt = 0.0072, 1.5e-5
+    record = {
+        "job": "cbt_thermometry",
+        "dates": {"measured": "2099-01-01"},
+        "sections": {"global_fit": {"charging_energy_K": E, "charging_energy_std_K": 1e-5}},
+        "results": [{"fit": {"asymptotic_conductance_S": gt, "asymptotic_conductance_std_S": 1e-10,
+                             "charging_energy_K": E, "charging_energy_std_K": 1e-5}}],
+    }
+    cert = tmp_path / "certificate.json"
+    cert.write_text(json.dumps(record))
+    temps = [0.012, 0.03, 0.09]
+    log = tmp_path / "log.csv"
+    log.write_text("time_s,conductance_S\n" + "".join(
+        f"{60.0 * i},{gt * (1 - float(depth_series(E / T)))!r}\n" for i, T in enumerate(temps)))
+    out = tmp_path / "T.csv"
+    assert main(["secondary", str(cert), str(log), "--out", str(out)]) == 0
+    rows = out.read_text().splitlines()
+    assert rows[0] == "time_s,conductance_S,temperature_K,standard_uncertainty_K"
+    got = [float(r.split(",")[2]) for r in rows[1:]]
+    assert got == pytest.approx(temps, rel=1e-9)
+    # A reading outside the validated depth range is refused with its line and column.
+    log.write_text("time_s,conductance_S\n0,1.0e-5\n")
+    assert main(["secondary", str(cert), str(log), "--out", str(out)]) == 2
+    assert "log.csv:2: conductance_S" in capsys.readouterr().err
