@@ -615,7 +615,9 @@ def _covariances(
     """
     parts: list[tuple[str, np.ndarray, CorrelatedComponent | None]] = [
         (
-            "reference temperatures (independent)",
+            "reference temperatures (posterior)"
+            if data.ln_temperature_covariance is not None
+            else "reference temperatures (independent)",
             data.independent_ln_temperature_covariance(),
             None,
         ),
@@ -776,14 +778,21 @@ def fit_calibration_curve(
         c = m @ v @ m.T
         if comp is None:
             independent = independent + c
+            reference = name.startswith("reference temperatures")
+            correlated = reference and data.ln_temperature_covariance is not None
             cov_parts.append(
                 CovariancePart(
                     name,
                     c,
-                    kind="A" if "temperature" in name else "B",
-                    note="from the CBT posterior"
-                    if "temperature" in name
-                    else "spread and noise of the bridge readings",
+                    kind="A" if reference else "B",
+                    correlated_across_points=correlated,
+                    note=(
+                        "reference posteriors, with their correlation between points"
+                        if correlated
+                        else "reference posteriors"
+                        if reference
+                        else "spread and noise of the resistance readings"
+                    ),
                 )
             )
         else:

@@ -252,13 +252,16 @@ def points_from_cbt(
     entries: dict[str, dict],
     readings: dict[str, SensorReading],
     bridge_relative_u: float,
+    posterior_correlation: np.ndarray | None = None,
 ) -> sensors.CalibrationData:
     """Calibration points with the CBT budget split into independent and common parts.
 
-    The Type A row of each sweep's budget (the posterior) is independent from sweep to sweep.
-    Every Type B row describes the same instrument, device or model for all sweeps (bias scale,
-    excitation amplitude, junction non-uniformity, series resistance, model truncation) and is
-    carried as one component fully correlated across the points, each point with its own size.
+    The Type A rows of the sweeps' budgets (the posteriors) are independent from sweep to sweep,
+    unless ``posterior_correlation`` (in sweep order) says otherwise: a global fit that shares
+    the charging energy correlates the temperatures, and that correlation is kept. Every Type B
+    row describes the same instrument, device or model for all sweeps (bias scale, excitation
+    amplitude, junction non-uniformity, series resistance, model truncation) and is carried as
+    one component fully correlated across the points, each point with its own size.
     """
     names = [f.name for f in sweeps]
     temperature = np.array([entries[n]["value"] for n in names])
@@ -287,10 +290,17 @@ def points_from_cbt(
             "calibration of the resistance bridge, common to every reading",
         )
     )
+    covariance = None
+    if posterior_correlation is not None:
+        rho = np.asarray(posterior_correlation, dtype=float)
+        if rho.shape != (len(names), len(names)):
+            raise ValueError(f"posterior correlation must be {len(names)}x{len(names)}")
+        covariance = rho * np.outer(independent, independent)
     return sensors.CalibrationData(
         resistance_ohm=[readings[n].resistance_ohm for n in names],
         temperature_K=temperature,
         u_ln_temperature=independent,
+        ln_temperature_covariance=covariance,
         u_ln_resistance=[readings[n].u_ln_resistance for n in names],
         components=tuple(components),
         labels=tuple(names),
@@ -508,6 +518,18 @@ def plts_cross_check(
     return rows
 
 
+def _global_correlation(section: dict | None, names: list[str]) -> np.ndarray | None:
+    """Correlation of the sweeps' posterior temperatures from the CBT global fit, if any."""
+    if not section:
+        return None
+    order = list(section.get("correlation_order", []))
+    matrix = np.asarray(section.get("temperature_correlation", []), dtype=float)
+    if matrix.ndim != 2 or matrix.shape[0] != len(order) or not set(names) <= set(order):
+        return None
+    idx = [order.index(n) for n in names]
+    return matrix[np.ix_(idx, idx)]
+
+
 def analyse(
     run: Run, seed: int, progress: Progress | None = None, fast: bool = False
 ) -> SensorOutcome:
@@ -565,7 +587,11 @@ def analyse(
     if progress:
         progress(0.92, "fitting the calibration curve")
     data = points_from_cbt(
-        sweeps, entries, readings, DEFAULT_BRIDGE_RELATIVE_U if bridge_u is None else bridge_u
+        sweeps,
+        entries,
+        readings,
+        DEFAULT_BRIDGE_RELATIVE_U if bridge_u is None else bridge_u,
+        _global_correlation(cbt.sections.get("global_fit"), [f.name for f in sweeps]),
     )
     try:
         fit = sensors.fit_calibration_curve(data, degree=degree, criterion=criterion)
@@ -707,7 +733,12 @@ def analyse(
         },
         "plts2000_cross_check": cross,
     }
-    outcome.sections = {"sensor_calibration": section}
+    section["posterior_correlation"] = (
+        "from the CBT global fit (shared charging energy)"
+        if data.ln_temperature_covariance is not None
+        else "none: independent fits"
+    )
+    outcome.sections = {**cbt.sections, "sensor_calibration": section}
     outcome.plots = dict(cbt.plots)
     title = (
         f"sensor calibration: degree {fit.degree}, {data.n_points} points, "

@@ -412,3 +412,23 @@ def test_job_refuses_stray_file_and_too_few_sweeps(monkeypatch):
     with pytest.raises(IntakeError, match="not a CBT sweep") as exc:
         sr.analyse(run, seed=1)
     assert exc.value.file == "notes.csv"
+
+
+def test_global_fit_correlation_carried_into_points():
+    names = ["s1.csv", "s2.csv", "s3.csv", "s4.csv"]
+    sweeps = [
+        _sweep(n, f"# sensor_resistance_ohm: {1000 * (i + 1)}\n") for i, n in enumerate(names)
+    ]
+    entries = {n: _entry(0.1 / (i + 1), 0.002, 3e-4, 1e-4) for i, n in enumerate(names)}
+    readings = {f.name: sr.sensor_reading(f, None, 1e-4) for f in sweeps}
+    # The global-fit section lists temperatures in its own order, then the charging energy.
+    order = ["s3.csv", "s1.csv", "s4.csv", "s2.csv", "charging_energy"]
+    corr = np.full((5, 5), 0.3) + 0.7 * np.eye(5)
+    corr[0, 1] = corr[1, 0] = 0.8  # s3 with s1
+    section = {"correlation_order": order, "temperature_correlation": corr.tolist()}
+    rho = sr._global_correlation(section, names)
+    assert rho[0, 2] == pytest.approx(0.8) and rho[1, 3] == pytest.approx(0.3)
+    data = sr.points_from_cbt(sweeps, entries, readings, 2e-4, rho)
+    assert data.ln_temperature_covariance[0, 2] == pytest.approx(0.8 * 0.002**2)
+    assert sr._global_correlation(None, names) is None
+    assert sr._global_correlation({**section, "correlation_order": order[:3]}, names) is None

@@ -386,3 +386,32 @@ def test_simulation_is_reproducible_from_seed():
     assert np.array_equal(a.data.resistance_ohm, b.data.resistance_ohm)
     back = SENSOR.temperature(SENSOR.resistance(TEMPERATURES))
     assert np.allclose(back, TEMPERATURES, rtol=1e-12)
+
+
+def test_correlated_reference_posteriors_enter_the_fit():
+    # References from a global fit are correlated; the fit must use their full covariance (the
+    # Aitken estimator with that covariance, written out directly, is the reference).
+    rng = np.random.default_rng(21)
+    t = np.geomspace(0.01, 1.0, 12)
+    r = SENSOR.resistance(t)
+    u = np.full(12, 0.004)
+    rho = 0.6 + 0.4 * np.eye(12)
+    cov = rho * np.outer(u, u)
+    t_obs = t * np.exp(rng.multivariate_normal(np.zeros(12), cov))
+    data = s.CalibrationData(
+        resistance_ohm=r,
+        temperature_K=t_obs,
+        u_ln_temperature=u,
+        u_ln_resistance=np.zeros(12),
+        ln_temperature_covariance=cov,
+    )
+    fit = s.fit_calibration_curve(data, degree=4, residual_scaling="never", hopping_check=False)
+    x = s.normalise_log_resistance(r, np.log(r).min(), np.log(r).max())
+    design = np.polynomial.chebyshev.chebvander(x, 4)
+    w = np.linalg.inv(cov)
+    c = np.linalg.inv(design.T @ w @ design)
+    assert np.allclose(fit.curve.coefficients, c @ design.T @ w @ np.log(t_obs), atol=1e-10)
+    assert np.allclose(fit.curve.covariance, c, rtol=1e-8, atol=1e-14)
+    posterior = fit.curve.covariance_parts[0]
+    assert posterior.name == "reference temperatures (posterior)"
+    assert posterior.correlated_across_points
