@@ -15,9 +15,22 @@ from dataclasses import dataclass, field, replace
 from scipy import stats
 
 from analysis.budget import round_for_report
-from analysis.cbt.fit import FitSettings, SweepData, SweepError, SweepFit, fit_sweep
+from analysis.cbt.fit import (
+    FitSettings,
+    SweepData,
+    SweepError,
+    SweepFit,
+    estimate_asymptote,
+    fit_sweep,
+)
 from analysis.cbt.global_fit import GlobalFit, fit_global
-from analysis.cbt.models import DipShape, SweepSetup, correct_series_resistance, higher_order_shape
+from analysis.cbt.models import (
+    DipShape,
+    HeatingModel,
+    SweepSetup,
+    correct_series_resistance,
+    higher_order_shape,
+)
 from analysis.cbt.uncertainty import TypeBInputs, temperature_budget
 from service.intake import IntakeError, Run, check_cbt_sweep, is_cbt_sweep, manifest_number
 from service.plots import sweep_fit_svg
@@ -29,6 +42,8 @@ Progress = Callable[[float, str], None]
 WARN_RANGE_HALF_WIDTHS = 4.0
 #: Lag-1 autocorrelation of residuals above which the fit is flagged as structured.
 RESIDUAL_CORRELATION_LIMIT = 0.3
+#: Relative electron heating at the half-depth bias above which a sweep is flagged.
+HEATING_WARNING = 0.10
 
 
 class CertificationRefused(Exception):
@@ -47,6 +62,30 @@ class JobOutcome:
     method: dict = field(default_factory=dict)
     conditions: dict = field(default_factory=dict)
     extra_files: dict[str, bytes] = field(default_factory=dict)
+
+
+def heating_model(manifest: dict) -> tuple[HeatingModel | None, float]:
+    """The electron-phonon heat balance from run.toml [device], if the lab describes it.
+
+    Either ``coupling_W_per_K5`` (Σ Ω directly) or ``electron_phonon_constant_W_per_K5_m3`` (Σ)
+    with ``island_volume_m3`` (Ω); ``coupling_relative_u`` (default 0.3: Σ is rarely known
+    better, common practice, no source) and ``heat_leak_W`` (default 0).
+    """
+    coupling = manifest_number(manifest, "device.coupling_W_per_K5", None, 0.0)
+    sigma = manifest_number(manifest, "device.electron_phonon_constant_W_per_K5_m3", None, 0.0)
+    volume = manifest_number(manifest, "device.island_volume_m3", None, 0.0)
+    if coupling is None and sigma is not None and volume is not None:
+        coupling = sigma * volume
+    if coupling is None:
+        if (sigma is None) != (volume is None):
+            raise IntakeError("give both electron_phonon_constant_W_per_K5_m3 and island_volume_m3, or "
+                              "coupling_W_per_K5", file="run.toml", field="device")
+        return None, 0.0
+    if coupling <= 0:
+        raise IntakeError("expected a positive coupling", file="run.toml", field="device.coupling_W_per_K5")
+    leak = manifest_number(manifest, "device.heat_leak_W", 0.0, 0.0)
+    rel = manifest_number(manifest, "device.coupling_relative_u", 0.3, 0.0, 1.0)
+    return HeatingModel(coupling, 0.0, leak), rel
 
 
 def type_b_inputs(manifest: dict, coverage_probability: float) -> TypeBInputs:
@@ -86,7 +125,7 @@ class SweepWork:
 
 
 def fit_file(f, seed: int, settings: FitSettings, shape: DipShape,
-             progress: Progress | None = None) -> SweepWork:
+             progress: Progress | None = None, heating: HeatingModel | None = None) -> SweepWork:
     """Fit one accepted sweep file independently; applies the certification rules."""
     bias, g = check_cbt_sweep(f)
     md = f.metadata
@@ -96,6 +135,11 @@ def fit_file(f, seed: int, settings: FitSettings, shape: DipShape,
         bias, g = correct_series_resistance(bias, g, rs)
     sigma = f.columns.get("conductance_uncertainty_S")
     data = SweepData(bias, g, setup, conductance_uncertainty=sigma)
+    if heating is not None:
+        # R_T of one junction from the asymptote: G_T = M/(N R_T).
+        r_t = md.get("parallel_rows", 1) / (setup.junctions_in_series * estimate_asymptote(data))
+        setup = replace(setup, heating=replace(heating, junction_resistance_ohm=r_t))
+        data = replace(data, setup=setup)
     try:
         fit = fit_sweep(data, seed=seed, shape=shape, settings=settings, progress=progress)
     except SweepError as exc:
@@ -110,6 +154,16 @@ def fit_file(f, seed: int, settings: FitSettings, shape: DipShape,
         warnings.append(
             f"residuals are correlated (lag-1 {fit.lag1_residual_correlation:.2f}): the model or the "
             "noise description may be incomplete"
+        )
+    if fit.heating_at_half_width > HEATING_WARNING:
+        warnings.append(
+            f"self-heating dominates: electrons are {100 * fit.heating_at_half_width:.0f} % above the bath at the "
+            "half-depth bias; the result rests on the heating model and its coupling constant"
+        )
+    if heating is None and abs(fit.lag1_residual_correlation) > RESIDUAL_CORRELATION_LIMIT:
+        warnings.append(
+            "structured residuals in a fit without a heating model: at low temperature this is the signature "
+            "of self-heating; give the island volume and coupling constant in run.toml [device]"
         )
     if not fit.posterior.converged:
         raise CertificationRefused(
@@ -133,7 +187,7 @@ def result_entry(work: SweepWork, shape: DipShape, inputs: TypeBInputs,
     setup = data.setup
     if work.rs:
         inputs = replace(inputs, series_resistance_ohm=work.rs)
-    budget, _ = temperature_budget(fit, shape, setup, inputs, posterior_note=global_note)
+    budget, _ = temperature_budget(fit, shape, setup, inputs, posterior_note=global_note, data=data)
     value_s, u_s = round_for_report(budget.estimate, budget.combined_standard_uncertainty)
     _, U_s = round_for_report(budget.estimate, budget.expanded_uncertainty)
     entry = {
@@ -170,6 +224,14 @@ def result_entry(work: SweepWork, shape: DipShape, inputs: TypeBInputs,
             "noise_std_S": fit.noise_std,
             "least_squares": fit.least_squares,
             "points": int(data.bias.size),
+            "heating_model": None if setup.heating is None else {
+                "coupling_W_per_K5": setup.heating.coupling_W_per_K5,
+                "junction_resistance_ohm": setup.heating.junction_resistance_ohm,
+                "heat_leak_W": setup.heating.heat_leak_W,
+                "phonon_temperature_K": fit.temperature,
+                "electron_temperature_zero_bias_K": fit.electron_temperature_zero_bias,
+                "relative_heating_at_half_depth_bias": fit.heating_at_half_width,
+            },
         },
         "diagnostics": {
             "posterior": fit.posterior.diagnostics(),
@@ -205,6 +267,8 @@ def apply_global(works: list[SweepWork], shape: DipShape) -> tuple[GlobalFit, li
             charging_energy=g.charging_energy,
             charging_energy_std=g.charging_energy_std,
             u=g.charging_energy / T,
+            electron_temperature_zero_bias=None if w.data.setup.heating is None else float(
+                w.data.setup.heating.electron_temperature(0.0, T, w.data.setup.junctions_in_series)),
         )
         notes.append(
             f"global fit of {len(works)} sweeps with a shared charging energy; independent-fit "
@@ -238,6 +302,8 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
     manifest = run.manifest
     p = manifest_number(manifest, "run.coverage_probability", 0.95, 0.5, 0.9999)
     inputs = type_b_inputs(manifest, p)
+    heating, coupling_u = heating_model(manifest)
+    inputs = replace(inputs, coupling_relative_u=coupling_u)
     settings = fit_settings(manifest, fast)
     sweeps = [f for f in run.files if is_cbt_sweep(f)]
     shape = higher_order_shape
@@ -248,7 +314,7 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
             if progress:
                 progress(0.95 * (k + frac) / len(sweeps), f"{name}: {step}")
 
-        works.append(fit_file(f, seed + k, settings, shape, sub))
+        works.append(fit_file(f, seed + k, settings, shape, sub, heating))
     notes: list[str | None] = [None] * len(works)
     if one_device(works):
         if progress:

@@ -100,6 +100,9 @@ class SweepFit:
     corrected_conductance: np.ndarray
     lag1_residual_correlation: float
     diagnostics: dict = field(default_factory=dict)
+    #: With a heating model: T above is the phonon (bath) temperature; these give the electrons'.
+    electron_temperature_zero_bias: float | None = None
+    heating_at_half_width: float = 0.0  # (T_e(V_1/2/2) − T_p)/T_p
 
 
 # --------------------------------------------------------------------------------------------
@@ -327,7 +330,25 @@ def fit_sweep(
         corrected_conductance=data.conductance,
         lag1_residual_correlation=r1,
         diagnostics={"bias_reach_half_widths": float(reach)},
+        electron_temperature_zero_bias=None if data.setup.heating is None else float(
+            data.setup.heating.electron_temperature(0.0, T_mean, data.setup.junctions_in_series)),
+        heating_at_half_width=heating_fraction(data.setup, T_mean, fwhm_volts(shape, data.setup, T_mean, u)),
     )
+
+
+def heating_fraction(setup: SweepSetup, temperature: float, fwhm: float) -> float:
+    """Relative electron heating (T_e − T)/T at the half-depth bias ±V_1/2/2 (PHYSICS.md 1.4)."""
+    if setup.heating is None:
+        return 0.0
+    te = float(setup.heating.electron_temperature(fwhm / 2, temperature, setup.junctions_in_series))
+    return te / temperature - 1.0
+
+
+def estimate_asymptote(data: SweepData) -> float:
+    """G_T from the outer 10 % of points at each end (for the heating model's R_T)."""
+    g = data.conductance[np.argsort(data.bias)]
+    edge = max(3, g.size // 10)
+    return float(0.5 * (np.median(g[:edge]) + np.median(g[-edge:])))
 
 
 __all__ = [

@@ -222,11 +222,34 @@ def lockin_average(
 
 
 @dataclass(frozen=True)
+class HeatingModel:
+    """Electron–phonon heat balance of the islands (self-heating by the bias).
+
+    Each island receives the Joule power of its junction, about (V/N)²/R_T, plus a heat leak P₀,
+    and cools through electron–phonon coupling P = Σ Ω (T_e⁵ − T_p⁵) (Wellstood, Urbina & Clarke,
+    PRB 49, 5942 (1994)); hence T_e(V) = [T_p⁵ + (P₀ + V²/(N² R_T))/(Σ Ω)]^(1/5), with the
+    conductance evaluated at T_e(V) (the usual CBT fitting model; PHYSICS.md 1.4). T_p⁵ and P₀/ΣΩ
+    enter only as a sum, so P₀ cannot be fitted from one sweep: it is a stated input.
+    ``coupling_W_per_K5`` is Σ Ω; ``junction_resistance_ohm`` is R_T of one junction.
+    """
+
+    coupling_W_per_K5: float
+    junction_resistance_ohm: float
+    heat_leak_W: float = 0.0
+
+    def electron_temperature(self, bias: np.ndarray, phonon_temperature: np.ndarray, n_junctions: int) -> np.ndarray:
+        """T_e at each bias (V, already offset-corrected); broadcasts against the temperature."""
+        power = self.heat_leak_W + np.asarray(bias) ** 2 / (n_junctions**2 * self.junction_resistance_ohm)
+        return (np.asarray(phonon_temperature) ** 5 + power / self.coupling_W_per_K5) ** 0.2
+
+
+@dataclass(frozen=True)
 class SweepSetup:
-    """What the experiment fixes: the device's junction count and the lock-in excitation."""
+    """What the experiment fixes: junction count, lock-in excitation and (optionally) heating."""
 
     junctions_in_series: int
     excitation_rms_V: float = 0.0
+    heating: HeatingModel | None = None
 
     @property
     def excitation_peak_V(self) -> float:
@@ -251,6 +274,8 @@ def forward_conductance(
     ``asymptotic_conductance`` G_T (S), ``bias_offset`` V₀ (V) and ``background_slope`` β (1/V)
     are arrays of a common batch shape B (or scalars); ``bias`` has shape (n,). Returns B + (n,).
     Series resistance is removed from the data before the fit (see :func:`correct_series_resistance`).
+    With ``setup.heating`` the temperature is the phonon (bath) temperature and the shape is
+    evaluated at the electron temperature of every bias point (:class:`HeatingModel`).
     """
     bias = np.asarray(bias, dtype=float)
     T = np.asarray(temperature, dtype=float)[..., None]
@@ -261,6 +286,8 @@ def forward_conductance(
     scale = ELEMENTARY_CHARGE / (setup.junctions_in_series * BOLTZMANN * T)
     a = setup.excitation_peak_V
     centred = bias - v0
+    if setup.heating is not None:
+        return gt * (1.0 + beta * centred) * _heated_shape(shape, centred, setup, T, u * T, a, lockin_nodes)
     if a > 0:
         alpha_max = float(np.max(a * scale))
         n_nodes = lockin_nodes if lockin_nodes is not None else lockin_nodes_for(alpha_max)
@@ -270,6 +297,20 @@ def forward_conductance(
     else:
         shape_avg = shape(centred * scale, u)
     return gt * (1.0 + beta * centred) * shape_avg
+
+
+def _heated_shape(shape, centred, setup, T, ec, a, lockin_nodes):
+    """Shape at the bias-dependent electron temperature, lock-in averaged node by node."""
+    N = setup.junctions_in_series
+    if a > 0:
+        alpha_max = float(np.max(ELEMENTARY_CHARGE * a / (N * BOLTZMANN * T)))
+        t, w = chebyshev_u_nodes(lockin_nodes if lockin_nodes is not None else lockin_nodes_for(alpha_max))
+        v = centred[..., None] + a * t
+        te = setup.heating.electron_temperature(v, T[..., None], N)
+        x = ELEMENTARY_CHARGE * v / (N * BOLTZMANN * te)
+        return shape(x, ec[..., None] / te) @ w
+    te = setup.heating.electron_temperature(centred, T, N)
+    return shape(ELEMENTARY_CHARGE * centred / (N * BOLTZMANN * te), ec / te)
 
 
 def correct_series_resistance(

@@ -12,10 +12,12 @@ truncation error (HigherOrderShape.relative_width_error).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
+
+import numpy as np
 
 from analysis.budget import Budget, BudgetRow, combine, standard_uncertainty_from_half_width
-from analysis.cbt.fit import SweepFit, fwhm_volts
+from analysis.cbt.fit import SweepData, SweepFit, fwhm_volts, least_squares_fit
 from analysis.cbt.models import DipShape, SweepSetup
 
 #: FWHM × (1 − c σ²) for junction-resistance spread σ (relative standard deviation), first order;
@@ -40,13 +42,20 @@ class TypeBInputs:
     resistance_spread_stated: bool = False
     series_resistance_ohm: float = 0.0
     series_resistance_u_ohm: float = 0.0
+    coupling_relative_u: float = 0.0  # of Σ Ω in the heating model
     coverage_probability: float = 0.95
 
 
 def temperature_budget(
-    fit: SweepFit, shape: DipShape, setup: SweepSetup, inputs: TypeBInputs, posterior_note: str | None = None
+    fit: SweepFit, shape: DipShape, setup: SweepSetup, inputs: TypeBInputs, posterior_note: str | None = None,
+    data: SweepData | None = None,
 ) -> tuple[Budget, float]:
     """Budget rows for T and the corrected temperature.
+
+    With a heating model the measurand is the electron temperature at zero bias, T_e(0) =
+    (T_p⁵ + P₀/ΣΩ)^(1/5): the data fix this combination whatever the heat leak P₀, so P₀ needs no
+    row; the coupling ΣΩ does (it sets the bias dependence), with a sensitivity from two
+    least-squares refits of ``data`` at ΣΩ (1 ± 1 %).
 
     Returns the Budget (whose estimate is the corrected temperature) and the applied
     non-uniformity correction factor. The correction for a stated resistance spread σ_R is
@@ -54,12 +63,16 @@ def temperature_budget(
     (rectangular on [0, 2 × correction]), because σ_R is itself an estimate.
     """
     T = fit.temperature
+    c_post = 1.0
+    if setup.heating is not None and fit.electron_temperature_zero_bias is not None:
+        T = fit.electron_temperature_zero_bias
+        c_post = (fit.temperature / T) ** 4  # dT_e(0)/dT_p
     rows: list[BudgetRow] = []
     n_post = fit.posterior.effective_sample_size
     rows.append(
         BudgetRow(
-            "temperature from the fit (posterior)", T, fit.temperature_std, "K", "A", "posterior",
-            1.0, degrees_of_freedom=max(1.0, fit.corrected_bias.size - 4.0), sensitivity_unit="1",
+            "temperature from the fit (posterior)", fit.temperature, fit.temperature_std, "K", "A", "posterior",
+            c_post, degrees_of_freedom=max(1.0, fit.corrected_bias.size - 4.0), sensitivity_unit="1",
             note=posterior_note or f"posterior standard deviation, {fit.posterior.walkers} walkers, "
             f"effective sample size {n_post:.0f}",
         )
@@ -105,6 +118,23 @@ def temperature_budget(
                 inputs.series_resistance_u_ohm, "ohm", "B", "normal",
                 T * fit.asymptotic_conductance, sensitivity_unit="K/ohm",
                 note="corrected in the data; T shifts by about R_s G_T when R_s is wrong",
+            )
+        )
+    if setup.heating is not None and data is not None and inputs.coupling_relative_u > 0:
+        hm = setup.heating
+        start = np.array([fit.temperature, fit.u, fit.bias_offset])
+        te = []
+        for f in (1.01, 0.99):
+            h2 = replace(hm, coupling_W_per_K5=hm.coupling_W_per_K5 * f)
+            d2 = replace(data, setup=replace(setup, heating=h2))
+            tp = least_squares_fit(shape, d2, start)["theta"][0]
+            te.append(float(h2.electron_temperature(0.0, tp, setup.junctions_in_series)))
+        c = (te[0] - te[1]) / 0.02
+        rows.append(
+            BudgetRow(
+                "electron-phonon coupling ΣΩ (relative)", 1.0, inputs.coupling_relative_u, "1", "B", "normal", c,
+                sensitivity_unit="K",
+                note=f"heating model: T_e rises {100 * fit.heating_at_half_width:.2g} % at the half-depth bias",
             )
         )
     bound = shape.relative_width_error(fit.u)
