@@ -243,12 +243,15 @@ def _smooth(y: np.ndarray) -> np.ndarray:
     return ndimage.median_filter(y, size=width, mode="nearest")
 
 
-def inspect_scan(gate: np.ndarray, electrons: np.ndarray, tolerance: float = 0.05) -> ScanShape:
+def inspect_scan(gate: np.ndarray, electrons: np.ndarray, tolerance: float = 0.02) -> ScanShape:
     """Direction, baseline, step count and the plateaus a scan reaches.
 
-    ``electrons`` is I/(e f). A plateau at level n ≥ 1 counts when at least max(5, 3 %) of the
-    points in a row lie within ``tolerance`` of n after a median filter (common practice, no
-    source). Raises :class:`PlateauScanError` for a scan that never reaches a plateau.
+    ``electrons`` is I/(e f). A plateau at level n ≥ 1 counts when at least max(5, 5 %) of the
+    points in a row lie within a band of n after a median filter: ``tolerance``, or three times
+    the filtered noise if that is larger (robust noise from the median absolute first difference).
+    A steady ramp through a level stays inside a ±0.02 band for only 0.04/rise of its points, so
+    it is not mistaken for a plateau (common practice, no source). Raises
+    :class:`PlateauScanError` for a scan that never reaches a plateau.
     """
     gate = np.asarray(gate, dtype=float)
     y = np.asarray(electrons, dtype=float)
@@ -268,7 +271,11 @@ def inspect_scan(gate: np.ndarray, electrons: np.ndarray, tolerance: float = 0.0
     top = float(np.max(along))
     steps = max(0, math.ceil(top - 0.15) - baseline)
 
-    need = max(5, int(0.03 * ys.size))
+    need = max(5, int(0.05 * ys.size))
+    raw_sorted = y[order]
+    noise = 1.4826 * float(np.median(np.abs(np.diff(raw_sorted)))) / math.sqrt(2.0)
+    width = max(3, (y.size // 50) | 1)
+    tolerance = max(tolerance, 3.0 * noise / math.sqrt(width))
     plateaus = []
     for level in range(max(1, baseline), int(math.floor(top + tolerance)) + 1):
         near = np.abs(ys - level) < tolerance
@@ -277,7 +284,7 @@ def inspect_scan(gate: np.ndarray, electrons: np.ndarray, tolerance: float = 0.0
     if not plateaus:
         raise PlateauScanError(
             f"the scan never reaches a current plateau: no run of {need} points lies within "
-            f"{tolerance} e·f of a whole number of electrons per cycle (highest level "
+            f"{tolerance:.2g} e·f of a whole number of electrons per cycle (highest level "
             f"{top:.3g} e·f); check the frequency and the gate range"
         )
     return ScanShape(direction, baseline, steps, tuple(plateaus), along)
@@ -702,8 +709,14 @@ def sample_plateau_posterior(
     # Blocks of 100 steps (not the module default of 200) let a short chain stop as soon as it
     # meets the rule; the rule itself (≥ 50 τ, τ settled) is unchanged.
     options = {"block": 100, **sampler_options}
-    result = sample_posterior(log_prob, fit.parameters, seed, names=fit.names[:k], scale=scale,
-                              **options)
+    try:
+        result = sample_posterior(log_prob, fit.parameters, seed, names=fit.names[:k], scale=scale,
+                                  **options)
+    except ValueError as exc:
+        raise PlateauScanError(
+            f"the {fit.model.replace('_', '-')} posterior could not be started at the least-squares "
+            f"fit ({exc}); the scan may not show the steps it seems to"
+        ) from None
     return PlateauPosterior(fit.model, fit, result)
 
 
