@@ -390,7 +390,7 @@ def table_csv(table: sensors.CurveTable) -> bytes:
 
 
 def curve_svg(fit: sensors.CalibrationFit, table: sensors.CurveTable, title: str) -> str:
-    """Curve with its expanded-uncertainty band and the points (top), normalised residuals (bottom)."""
+    """Curve and points (top); points relative to the curve with the curve's ±U band (bottom)."""
     from service.plots import plt, to_svg
 
     curve = fit.curve
@@ -400,42 +400,44 @@ def curve_svg(fit: sensors.CalibrationFit, table: sensors.CurveTable, title: str
     band = curve.table(grid)
     data = fit.data
     fig, (ax, axr) = plt.subplots(
-        2, 1, figsize=(6.4, 5.2), sharex=True, gridspec_kw={"height_ratios": [3, 1.2]}
-    )
-    ax.fill_between(
-        grid,
-        (band.temperature_K - band.expanded_uncertainty_K) * 1e3,
-        (band.temperature_K + band.expanded_uncertainty_K) * 1e3,
-        color="tab:blue",
-        alpha=0.2,
-        lw=0,
-        label="curve ± U",
+        2, 1, figsize=(6.4, 5.6), sharex=True, gridspec_kw={"height_ratios": [2.2, 1.5]}
     )
     ax.plot(
         grid, band.temperature_K * 1e3, "-", color="tab:blue", lw=1.2, label="calibration curve"
     )
-    ax.errorbar(
+    ax.plot(
         data.resistance_ohm,
         data.temperature_K * 1e3,
-        yerr=2 * data.u_ln_temperature * data.temperature_K * 1e3,
-        fmt="o",
-        ms=3,
+        "o",
+        ms=3.5,
         color="0.2",
-        elinewidth=0.8,
-        label="CBT points (±2u, independent part)",
+        label="CBT reference points",
     )
     ax.set_xscale("log")
     ax.set_yscale("log")
     ax.set_ylabel("temperature (mK)")
     ax.set_title(title, fontsize=9)
     ax.legend(fontsize=7, frameon=False)
-    axr.axhline(0.0, color="0.5", lw=0.8)
-    for level in (-2, 2):
-        axr.axhline(level, color="0.75", lw=0.6, ls="--")
-    axr.plot(data.resistance_ohm, fit.normalised_residuals, "o", ms=3, color="tab:red")
+    rel_u = band.expanded_uncertainty_K / band.temperature_K * 100
+    axr.fill_between(
+        grid, -rel_u, rel_u, color="tab:blue", alpha=0.2, lw=0, label="curve ± U (all components)"
+    )
+    axr.axhline(0.0, color="tab:blue", lw=0.8)
+    deviation = np.expm1(fit.residuals_ln_T) * 100
+    axr.errorbar(
+        data.resistance_ohm,
+        deviation,
+        yerr=2 * data.u_ln_temperature * 100,
+        fmt="o",
+        ms=3,
+        color="tab:red",
+        elinewidth=0.8,
+        label="points − curve (±2u, point's own part)",
+    )
     axr.set_xscale("log")
     axr.set_xlabel("sensor resistance (Ω)")
-    axr.set_ylabel("normalised\nresidual")
+    axr.set_ylabel("T / T_curve − 1 (%)")
+    axr.legend(fontsize=7, frameon=False, loc="upper left")
     fig.align_ylabels()
     return to_svg(fig)
 
@@ -744,7 +746,7 @@ def analyse(
         f"sensor calibration: degree {fit.degree}, {data.n_points} points, "
         f"{t_lo * 1e3:.3g}–{t_hi * 1e3:.4g} mK"
     )
-    outcome.plots["sensor calibration curve and normalised residuals"] = curve_svg(
+    outcome.plots["sensor calibration curve and deviations of the points"] = curve_svg(
         fit, table, title
     )
     outcome.extra_files = {"calibration_table.csv": table_csv(table)}

@@ -390,7 +390,7 @@ def test_job_with_resistance_and_pressure_logs(monkeypatch):
     table = outcome.extra_files["calibration_table.csv"].decode().splitlines()
     assert table[0] == sr.TABLE_HEADER and len(table) == 10
     assert any("bridge resistance-scale" in d for d in outcome.deviations)
-    assert "<svg" in outcome.plots["sensor calibration curve and normalised residuals"]
+    assert "<svg" in outcome.plots["sensor calibration curve and deviations of the points"]
 
 
 def test_job_refuses_stray_file_and_too_few_sweeps(monkeypatch):
