@@ -720,17 +720,20 @@ def fit_calibration_curve(
     if n < 4:
         raise CalibrationFitError(f"a calibration needs at least 4 points, got {n}")
     ln_r = np.log(data.resistance_ohm)
-    order = np.argsort(ln_r)
-    if np.any(np.diff(ln_r[order]) <= 0):
-        i = order[np.flatnonzero(np.diff(ln_r[order]) <= 0)[0]]
+    # Repeated points at one resistance are welcome (they test reproducibility), but the curve
+    # needs enough distinct resistances to be determined at all.
+    distinct = np.unique(ln_r).size
+    if distinct < 3:
         raise CalibrationFitError(
-            f"two calibration points share the resistance of {data.labels[i]}"
+            f"the points cover only {distinct} distinct resistance(s); a curve needs at least 3"
         )
     y = np.log(data.temperature_K)
     lo, hi = float(ln_r.min()), float(ln_r.max())
     half_span = 0.5 * (hi - lo)
     x = normalise_log_resistance(data.resistance_ohm, lo, hi)
-    top = maximum_degree(n) if max_degree is None else min(max_degree, maximum_degree(n))
+    top = min(maximum_degree(n), distinct - 1)
+    if max_degree is not None:
+        top = min(top, max_degree)
     if degree is not None:
         if degree < 1 or degree > maximum_degree(n):
             raise CalibrationFitError(

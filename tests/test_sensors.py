@@ -369,8 +369,13 @@ def test_bad_points_refused_naming_the_point():
         _plain_data([100.0, -1.0, 300.0, 400.0], [1.0, 0.5, 0.2, 0.1])
     with pytest.raises(ValueError, match="temperature_K has 3 values"):
         _plain_data([100.0, 200.0, 300.0, 400.0], [1.0, 0.5, 0.2])
-    with pytest.raises(s.CalibrationFitError, match="share the resistance"):
-        s.fit_calibration_curve(_plain_data([100.0, 200.0, 200.0, 400.0], [1.0, 0.5, 0.4, 0.1]))
+    with pytest.raises(s.CalibrationFitError, match="only 2 distinct"):
+        s.fit_calibration_curve(
+            _plain_data([100.0, 200.0, 200.0, 100.0, 200.0], [1.0, 0.5, 0.4, 0.9, 0.45])
+        )
+    # A repeated point is fine when enough distinct resistances remain.
+    rep = s.fit_calibration_curve(_plain_data([100.0, 200.0, 200.0, 400.0], [1.0, 0.5, 0.4, 0.1]))
+    assert rep.degree == 1
     with pytest.raises(s.CalibrationFitError, match="at least 4"):
         s.fit_calibration_curve(_plain_data([100.0, 200.0, 300.0], [1.0, 0.5, 0.2]))
     with pytest.raises(s.CalibrationFitError, match="positive definite"):
