@@ -29,6 +29,20 @@ def add_commands(sub) -> None:
                    help="warn when the certificate's measurement date is older than this (charging energy drifts)")
     z.set_defaults(handler=cmd_secondary)
 
+    pl = sub.add_parser("plan", help="recommend a CBT sweep for a device and temperature, and predict its uncertainty")
+    pl.add_argument("--junctions", type=int, required=True, help="N, junctions in series")
+    pl.add_argument("--rows", type=int, default=1, help="M, rows in parallel")
+    pl.add_argument("--junction-resistance", type=float, required=True, help="R_T of one junction, ohm")
+    pl.add_argument("--capacitance", type=float, required=True, help="C of one junction, F")
+    pl.add_argument("--ground-capacitance", type=float, default=0.0, help="C_0 of one island to ground, F")
+    pl.add_argument("--island-volume", type=float, default=None, help="island volume, m^3 (for self-heating)")
+    pl.add_argument("--temperature", type=float, required=True, help="target temperature, K")
+    pl.add_argument("--noise", type=float, default=2e-4, help="relative noise per point (of G_T)")
+    pl.add_argument("--width-error", type=float, default=1e-3, help="largest unmodelled excitation width error")
+    pl.add_argument("--points", type=int, default=401)
+    pl.add_argument("--json", action="store_true", help="print the plan as JSON")
+    pl.set_defaults(handler=cmd_plan)
+
     c = sub.add_parser("check", help="validate a run folder without analysing it")
     c.add_argument("run")
     c.set_defaults(handler=cmd_check)
@@ -184,4 +198,34 @@ def cmd_secondary(args) -> int:
     write_atomically(Path(args.out).parent, {Path(args.out).name: ("\n".join(lines) + "\n").encode()})
     print(f"{len(lines) - 1} readings -> {args.out} (T from {np.min(res.temperature):.5g} to "
           f"{np.max(res.temperature):.5g} K; ΔE/k_B = {cal.charging_energy * 1e3:.4g} mK)")
+    return 0
+
+
+def cmd_plan(args) -> int:
+    import json
+
+    from analysis.cbt.planning import Device, plan_sweep
+
+    if args.junctions < 2 or args.rows < 1:
+        raise CommandError("--junctions must be at least 2 and --rows at least 1")
+    for name in ("junction_resistance", "capacitance", "temperature", "noise", "width_error"):
+        if not getattr(args, name) > 0:
+            raise CommandError(f"--{name.replace('_', '-')} must be positive")
+    device = Device(args.junctions, args.rows, args.junction_resistance, args.capacitance,
+                    args.ground_capacitance, args.island_volume)
+    plan = plan_sweep(device, args.temperature, args.noise, args.width_error, points=args.points)
+    if args.json:
+        print(json.dumps(plan.as_dict(), indent=2))
+        return 0
+    print(f"device: dE/k_B = {device.charging_energy_K * 1e3:.4g} mK, G_T = {device.asymptotic_conductance_S:.4g} S")
+    print(f"at T = {plan.temperature_K * 1e3:.4g} mK: u = {plan.u:.3g}, depth {plan.depth:.4f}, "
+          f"V_1/2 = {plan.half_width_voltage_V * 1e6:.4g} uV")
+    print(f"sweep: -{plan.bias_range_V * 1e6:.4g} uV to +{plan.bias_range_V * 1e6:.4g} uV, {plan.points} points")
+    print(f"largest lock-in excitation: {plan.max_excitation_rms_V * 1e6:.3g} uV rms "
+          f"(width error {plan.excitation_width_error:g} if unmodelled)")
+    if plan.heating_at_half_width is not None:
+        print(f"self-heating at the half-depth bias: {100 * plan.heating_at_half_width:.2g} %")
+    print(f"best achievable u(T)/T at relative noise {args.noise:g}: {plan.predicted_relative_uncertainty:.2e}")
+    for n in plan.notes:
+        print(f"note: {n}")
     return 0
