@@ -152,9 +152,22 @@ def _section_keys(manifest: dict, section: str, known: set[str] | dict) -> dict:
     return body
 
 
+def check_typos(f: DataFile) -> None:
+    """Refuse free-text keys that look like misspelt pump keys (intake only knows the keys
+    registered before it ran, so this check is repeated here)."""
+    for key in f.free_text:
+        if key in PUMP_KEYS or key == "comments":
+            continue
+        close = difflib.get_close_matches(key, list(PUMP_KEYS), n=1, cutoff=0.8)
+        if close:
+            raise IntakeError(f"unknown key; did you mean {close[0]!r}?", file=f.name,
+                              line=_key_line(f, key), field=key)
+
+
 def operating_point(f: DataFile, manifest: dict) -> tuple[float, int]:
     """(frequency, n) of a file: its own metadata, else run.toml [pump], else n = 1."""
     _section_keys(manifest, "pump", PUMP_SECTION_KEYS)
+    check_typos(f)
     freq = file_value(f, "frequency_Hz")
     if freq is None:
         freq = manifest_number(manifest, "pump.frequency_Hz", None, 0.0)

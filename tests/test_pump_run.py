@@ -83,6 +83,12 @@ def test_missing_frequency(tmp_path):
     assert "frequency_Hz: 1.0e9" in err.message
 
 
+def test_misspelt_frequency_key(tmp_path):
+    err = _refusal(tmp_path, {"rec.csv": _record_lines(header=("frequency_hz: 1e9",))})
+    assert (err.file, err.line, err.field) == ("rec.csv", 1, "frequency_hz")
+    assert "frequency_Hz" in err.message
+
+
 def test_negative_frequency(tmp_path):
     err = _refusal(tmp_path, {"rec.csv": _record_lines(header=("note: x", "frequency_Hz: -1e9"))})
     assert (err.file, err.line, err.field) == ("rec.csv", 2, "frequency_Hz")
