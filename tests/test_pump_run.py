@@ -195,3 +195,18 @@ def test_certify_example_pump_run(tmp_path, capsys):
     for words in ("What was verified", "Allan deviation", "not an accreditation", "Electrical standards"):
         assert words in html
     assert record["item"]["identifier"] == "LQ-P12"
+
+
+def test_same_pump_run_same_bytes(tmp_path):
+    # Archive re-analysis needs bit-for-bit reproducibility from the seed (scan MCMC, map draws,
+    # Monte Carlo, plots).
+    gate = np.linspace(-0.8, -0.3, 120)
+    scan = simulate.plateau_scan(gate, 1.0e9, "decay_cascade", np.array([55.0, -0.7, -0.45]), seed=2)
+    files = {"rec.csv": _record_lines(),
+             "scan.csv": ["# frequency_Hz: 1e9", "gate_V,current_A"]
+             + [f"{float(g)!r},{float(i)!r}" for g, i in zip(gate, scan, strict=True)]}
+    run = _run(tmp_path, files)
+    a = certify_run(load_run(run), seed=11, fast=True)
+    b = certify_run(load_run(run), seed=11, fast=True)
+    assert a.files() == b.files()
+    assert a.record["sections"]["plateau_scans"][0]["working_point"]["samples"] > 0
