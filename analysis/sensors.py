@@ -564,7 +564,7 @@ class DegreeScore:
     chi_squared: float
     degrees_of_freedom: int
     aicc: float
-    loo: float  #: mean squared normalised leave-one-out prediction error (nan if not computed)
+    loo: float  #: weighted leave-one-out prediction error, mean e²/V_ii (nan if not computed)
     monotonic: bool
 
 
@@ -674,8 +674,14 @@ def _is_monotonic(coef: np.ndarray) -> bool:
 
 
 def _leave_one_out(x, y, data, degree, half_span, slope) -> float:
-    # Prediction errors are normalised by the independent parts only: a component common to
-    # all points shifts the left-out point and its prediction alike and cancels in the error.
+    """Weighted PRESS: mean of e_i²/V_ii over points, e_i the error of predicting point i from
+    the others (leave-one-out cross-validation; Allen, Technometrics 16, 125 (1974), from memory).
+
+    The weight is the point's own variance only. Dividing by the prediction's variance as well
+    would reward a curve for being uncertain between the points, i.e. favour high degrees.
+    Only the independent parts enter: a component common to all points shifts the left-out
+    point and its prediction alike and cancels in the error.
+    """
     n = x.size
     v_ind = data.independent_ln_temperature_covariance() + np.diag(
         (slope * data.u_ln_resistance) ** 2
@@ -685,10 +691,8 @@ def _leave_one_out(x, y, data, degree, half_span, slope) -> float:
     for i in range(n):
         keep = np.arange(n) != i
         ls = generalised_least_squares(design[keep], y[keep], v_ind[np.ix_(keep, keep)])
-        g = design[i]
-        err = y[i] - g @ ls.coefficients
-        var = v_ind[i, i] + g @ ls.covariance @ g
-        total += err**2 / var
+        err = y[i] - design[i] @ ls.coefficients
+        total += err**2 / v_ind[i, i]
     return total / n
 
 
