@@ -7,7 +7,9 @@ Run: .venv/bin/python benchmarks/bench_pump.py [--seeds 200]
    Monte Carlo). Target ≤ 1 s.
 2. A plateau scan with three plateaus (four steps) fitted by least squares and sampled to a
    converged posterior (decay-cascade model, default convergence rule). Target ≤ 2 s.
-3. Recovery: simulated records with an injected deviation of +0.8 ppm (white reading noise,
+3. Plateau honesty: over simulated scans, the fraction of 95 % credible intervals of the predicted
+   deviation at the working point that contain the true model's deviation there.
+4. Recovery: simulated records with an injected deviation of +0.8 ppm (white reading noise,
    linear and random-walk offset drift, settling transients, AR(1) colouring in half the seeds);
    the fraction of seeds whose 95 % interval contains +0.8 ppm should be about 0.95.
 """
@@ -46,8 +48,8 @@ def bench_record() -> float:
 
 
 def bench_plateau() -> float:
-    gate = np.linspace(-0.80, 0.0, 301)
-    truth = np.array([50.0, -0.70, -0.42, -0.26, -0.12])  # δ = 14, 8, 7: plateaus 1, 2, 3
+    gate = np.linspace(-0.80, 0.10, 301)
+    truth = np.array([50.0, -0.70, -0.42, -0.24, -0.04])  # δ = 14, 9, 10: plateaus 1, 2, 3
     current = simulate.plateau_scan(gate, 1.0e9, P.DECAY_CASCADE, truth, seed=3, noise_a=0.3e-12)
     y = current / nominal_current(1.0e9)
     times = []
@@ -64,6 +66,25 @@ def bench_plateau() -> float:
           f"{max(r.autocorrelation_time):.1f}; working point {wp.gate_V:.5f} V, predicted "
           f"deviation {wp.relative_deviation:.3g} ± {wp.relative_deviation_standard_uncertainty:.2g}")
     return float(np.median(times))
+
+
+def bench_plateau_coverage(seeds: int) -> float:
+    gate = np.linspace(-0.80, -0.25, 221)
+    truth = np.array([50.0, -0.70, -0.40, -0.30])  # δ₂ = 15
+    true_dev = P.working_point(P.DECAY_CASCADE, truth, 1).relative_deviation
+    hits = 0
+    for s in range(seeds):
+        current = simulate.plateau_scan(gate, 1.0e9, P.DECAY_CASCADE, truth, seed=200 + s,
+                                        noise_a=0.4e-12)
+        y = current / nominal_current(1.0e9)
+        fit = P.fit_plateau(gate, y, P.DECAY_CASCADE)
+        post = P.sample_plateau_posterior(gate, y, fit, seed=s)
+        lo, hi = P.working_point(P.DECAY_CASCADE, post.parameter_samples, 1).relative_deviation_interval
+        hits += lo <= true_dev <= hi
+    frac = hits / seeds
+    print(f"plateau coverage: {hits}/{seeds} = {frac:.2f} of 95 % credible intervals contain the "
+          f"true predicted deviation {true_dev:.3g}")
+    return frac
 
 
 def bench_coverage(seeds: int) -> float:
@@ -87,10 +108,12 @@ def bench_coverage(seeds: int) -> float:
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--seeds", type=int, default=200)
+    parser.add_argument("--seeds", type=int, default=200, help="records in the recovery check")
+    parser.add_argument("--plateau-seeds", type=int, default=40, help="scans in the plateau check")
     args = parser.parse_args()
     bench_record()
     bench_plateau()
+    bench_plateau_coverage(args.plateau_seeds)
     bench_coverage(args.seeds)
 
 
