@@ -51,19 +51,30 @@ STATES = ("draft", "issued", "superseded", "withdrawn")
 SIGNED_RECORD_FORMAT = "coldcert-signed-entry/1"
 
 # Record fields the service writes itself; an amendment may not "correct" them, and reproduce
-# does not expect a fresh analysis to produce them.
+# does not expect a fresh analysis to produce them. (The issue date and approver go into the
+# record's own "dates.issued" and "people.approver".)
 SERVICE_FIELDS = (
     "certificate_id",
+    "analysis_id",
     "revision",
     "replaces",
     "amendment_reason",
-    "issue_date",
-    "authorised_by",
     "state",
+    "superseded_by",
+    "withdrawn_reason",
+    "corrected_fields",
 )
 # Record fields that come from the analysis; amending them would break reproducibility, so an
 # amendment that needs different numbers must come from a new run.
-ANALYSIS_FIELDS = ("results",)
+ANALYSIS_FIELDS = (
+    "results",
+    "sections",
+    "diagnostics",
+    "inputs",
+    "reproducibility",
+    "schema",
+    "job",
+)
 
 
 class ArchiveError(Exception):
@@ -379,13 +390,7 @@ class Archive:
         stored = []
         for name, data in files:
             digest = self.storage.blobs.put(data)
-            exists = conn.execute(
-                select(st.blobs.c.sha256).where(st.blobs.c.sha256 == digest)
-            ).first()
-            if exists is None:
-                conn.execute(
-                    st.blobs.insert().values(sha256=digest, size=len(data), stored_at=utc_now())
-                )
+            self._register_blob(conn, digest, len(data))
             stored.append({"name": name, "sha256": digest, "size": len(data)})
         conn.execute(
             st.runs.insert().values(
@@ -410,6 +415,18 @@ class Archive:
             {"kind": kind, "item": item, "files": stored, "seed": seed},
         )
         return stored
+
+    def _register_blob(self, conn: Connection, digest: str, size: int | None = None) -> None:
+        exists = conn.execute(select(st.blobs.c.sha256).where(st.blobs.c.sha256 == digest)).first()
+        if exists is None:
+            if size is None:
+                size = self.storage.blobs.path(digest).stat().st_size
+            conn.execute(st.blobs.insert().values(sha256=digest, size=size, stored_at=utc_now()))
+
+    def plots(self, plots_sha256: str | None) -> dict[str, str]:
+        if not plots_sha256:
+            return {}
+        return json.loads(self.storage.blobs.get(plots_sha256))
 
     def run_files(self, conn: Connection, run_id: str) -> list[dict[str, Any]]:
         rows = conn.execute(
@@ -453,8 +470,15 @@ class Archive:
         submitter: Mapping[str, Any],
         replaces: str | None = None,
         amendment_reason: str | None = None,
+        options: Mapping[str, Any] | None = None,
+        plots: Mapping[str, str] | None = None,
+        plots_sha256: str | None = None,
     ) -> str:
-        """Store a draft certificate made from an analysis record; return its id."""
+        """Store a draft certificate made from an analysis record; return its id.
+
+        The service numbers certificates itself (unique, sequential per year); an identifier the
+        analysis derived from its inputs is kept as ``analysis_id``.
+        """
         run = conn.execute(select(st.runs).where(st.runs.c.id == run_id)).first()
         if run is None:
             raise NotFound(f"run {run_id} not found")
@@ -471,16 +495,21 @@ class Archive:
         else:
             number, revision = self._new_number(conn), 1
             cert_id = number
-        document = dict(record)
+        document = json.loads(canonical_json(record))
+        if "certificate_id" in document and "analysis_id" not in document:
+            document["analysis_id"] = document["certificate_id"]
         document.update(
             certificate_id=cert_id,
             revision=revision,
             replaces=replaces,
             amendment_reason=amendment_reason,
-            issue_date=None,
-            authorised_by=None,
             state="draft",
         )
+        document.setdefault("dates", {})["issued"] = None
+        document.setdefault("people", {})["approver"] = None
+        if plots:
+            plots_sha256 = self.storage.blobs.put(canonical_json(dict(plots)))
+            self._register_blob(conn, plots_sha256)
         conn.execute(
             st.certificates.insert().values(
                 id=cert_id,
@@ -493,6 +522,8 @@ class Archive:
                 record_json=canonical_json(document).decode("utf-8"),
                 seed=seed,
                 software_json=json.dumps(dict(software), sort_keys=True),
+                options_json=json.dumps(dict(options or {}), sort_keys=True),
+                plots_sha256=plots_sha256,
                 submitted_by=submitter["id"],
                 created_at=utc_now(),
                 replaces=replaces,
@@ -544,10 +575,12 @@ class Archive:
             if pending is not None:
                 raise ArchiveError(f"amendment {pending.id} of {certificate_id} is already pending")
             record = json.loads(old.record_json)
+            earlier = set(record.get("corrected_fields") or [])
             for key in SERVICE_FIELDS:
-                record.pop(key, None)
+                if key != "analysis_id":
+                    record.pop(key, None)
             record.update(corrections)
-            record["corrected_fields"] = sorted(corrections)
+            record["corrected_fields"] = sorted(earlier | set(corrections))
             new_id = self.create_draft(
                 conn,
                 run_id=old.run_id,
@@ -557,6 +590,8 @@ class Archive:
                 submitter=user,
                 replaces=certificate_id,
                 amendment_reason=reason,
+                options=json.loads(old.options_json),
+                plots_sha256=old.plots_sha256,
             )
         return new_id
 
@@ -637,10 +672,10 @@ class Archive:
                     )
             issued_at = utc_now()
             record = json.loads(row.record_json)
-            record.update(
-                issue_date=issued_at[:10],
-                authorised_by=user_ref(approver),
-                state="issued",
+            record["state"] = "issued"
+            record.setdefault("dates", {})["issued"] = issued_at[:10]
+            record.setdefault("people", {})["approver"] = (
+                approver.get("display_name") or approver["username"]
             )
             submitter = self._user(conn, row.submitted_by)
             body = {
@@ -657,7 +692,12 @@ class Archive:
                     "item": row.item,
                     "files": self.run_files(conn, row.run_id),
                 },
-                "analysis": {"seed": row.seed, "software": json.loads(row.software_json)},
+                "analysis": {
+                    "seed": row.seed,
+                    "software": json.loads(row.software_json),
+                    "options": json.loads(row.options_json),
+                },
+                "plots_sha256": row.plots_sha256,
                 "certificate": record,
             }
             sequence, digest = self._append(conn, "issue", certificate_id, body)
@@ -731,6 +771,7 @@ class Archive:
             info = dict(row._mapping)
             record = json.loads(info.pop("record_json"))
             info["software"] = json.loads(info.pop("software_json"))
+            info["options"] = json.loads(info.pop("options_json"))
             entry = None
             if row.sequence is not None:
                 chain_row = conn.execute(
@@ -984,6 +1025,13 @@ class Archive:
                         )
                     )
                 checks.extend(self._check_files(signed_files, {}))
+                if body.get("plots_sha256"):
+                    checks.extend(
+                        self._check_files(
+                            [{"name": "plots of the certificate", "sha256": body["plots_sha256"]}],
+                            {},
+                        )
+                    )
                 db_record = json.loads(row.record_json)
                 same = canonical_json(db_record) == canonical_json(body.get("certificate"))
                 checks.append(
@@ -1056,8 +1104,8 @@ class Archive:
         with tempfile.TemporaryDirectory(prefix="coldcert-reproduce-") as tmp:
             folder = self.materialise_run(info["files"], Path(tmp) / "run")
             run = load_run(folder)
-            fresh = certify(run, info["seed"], progress)
-        skip = list(SERVICE_FIELDS) + ["corrected_fields", "superseded_by", "withdrawn_reason"]
+            fresh, _plots = analysis_output(certify(run, info["seed"], progress, **info["options"]))
+        skip = list(SERVICE_FIELDS) + ["dates.issued", "people.approver"]
         skip += list(record.get("corrected_fields") or [])
         count, mismatches = compare_numbers(record, fresh, skip)
         return ReproduceReport(
@@ -1070,6 +1118,13 @@ class Archive:
             software_now=software_versions(),
             skipped_paths=tuple(skip),
         )
+
+
+def analysis_output(result: Any) -> tuple[dict[str, Any], dict[str, str]]:
+    """(record, plots) from what an analysis returns: a record dict or an object with both."""
+    if isinstance(result, Mapping):
+        return dict(result), {}
+    return dict(result.record), dict(getattr(result, "plots", None) or {})
 
 
 def verify_signed_document(

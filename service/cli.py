@@ -10,7 +10,11 @@ import argparse
 import importlib
 import sys
 
-COMMAND_MODULES: tuple[str, ...] = ("service.commands", "service.sensor_run")
+COMMAND_MODULES: tuple[str, ...] = (
+    "service.commands",
+    "service.sensor_run",
+    "service.commands_service",
+)
 
 
 class CommandError(Exception):

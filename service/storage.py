@@ -140,6 +140,10 @@ certificates = Table(
     Column("record_json", Text, nullable=False),
     Column("seed", Integer, nullable=False),
     Column("software_json", Text, nullable=False),
+    # Options the analysis ran with (e.g. the short MCMC settings); reproduce uses the same.
+    Column("options_json", Text, nullable=False, default="{}"),
+    # Plots (SVG) of the draft, stored as a blob so renderings years later show the same figures.
+    Column("plots_sha256", String(64), nullable=True),
     Column("submitted_by", Integer, ForeignKey("users.id"), nullable=False),
     Column("created_at", String(40), nullable=False),
     Column("replaces", String(60), nullable=True),

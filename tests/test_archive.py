@@ -222,8 +222,9 @@ def test_issue_builds_a_signed_chain(lab):
     )
     record = lab.archive.get(second)["record"]
     assert record["certificate_id"] == second
-    assert record["issue_date"] == body["issued_at"][:10]
-    assert record["authorised_by"]["username"] == "bea"
+    assert record["dates"]["issued"] == body["issued_at"][:10]
+    assert record["people"]["approver"] == "Bea"
+    assert record["state"] == "issued" and record["revision"] == 1
     for cert in (first, second):
         report = lab.archive.verify(cert)
         assert report.valid, report.as_dict()["problems"]

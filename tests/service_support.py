@@ -1,0 +1,158 @@
+"""Helpers shared by the service tests: an app on a temporary instance folder, people with
+tokens, a small real run taken from the bundled example, a live server on 127.0.0.1."""
+
+from __future__ import annotations
+
+import io
+import json
+import threading
+import time
+import urllib.error
+import urllib.request
+import uuid
+import zipfile
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from werkzeug.serving import make_server
+
+from service.app import create_app
+from service.auth import create_token, create_user
+
+EXAMPLE = Path(__file__).resolve().parents[1] / "example_runs" / "cbt-hollowmere"
+PASSWORD = "correct horse battery"
+
+#: One sweep of the example run with its manifest: a real run, small enough for fast tests.
+SMALL_RUN = ("run.toml", "sweep_03_60mK.csv")
+
+PEOPLE = {
+    "olga": "operator",
+    "arno": "approver",
+    "bea": "approver",
+    "aude": "auditor",
+    "adam": "admin",
+    "pat": "operator,approver",  # may do both, but never on the same certificate
+}
+
+
+def small_run_files() -> list[tuple[str, bytes]]:
+    return [(name, (EXAMPLE / name).read_bytes()) for name in SMALL_RUN]
+
+
+def zip_of(files: list[tuple[str, bytes]], folder: str = "run-folder") -> bytes:
+    buffer = io.BytesIO()
+    with zipfile.ZipFile(buffer, "w") as archive:
+        for name, data in files:
+            archive.writestr(f"{folder}/{name}" if folder else name, data)
+    return buffer.getvalue()
+
+
+@dataclass
+class Lab:
+    app: Any
+    tokens: dict[str, str] = field(default_factory=dict)
+
+    @property
+    def services(self):
+        return self.app.extensions["coldcert"]
+
+    def client(self):
+        return self.app.test_client()
+
+    def headers(self, who: str) -> dict[str, str]:
+        return {"Authorization": f"Bearer {self.tokens[who]}"}
+
+    def upload(self, client, who: str = "olga", files=None, **form):
+        files = small_run_files() if files is None else files
+        data = {"files": [(io.BytesIO(content), name) for name, content in files], **form}
+        return client.post(
+            "/api/runs", data=data, headers=self.headers(who), content_type="multipart/form-data"
+        )
+
+    def wait(self, client, job_id: str, who: str = "olga", timeout: float = 180.0) -> dict:
+        deadline = time.monotonic() + timeout
+        seen = []
+        while time.monotonic() < deadline:
+            job = client.get(f"/api/jobs/{job_id}", headers=self.headers(who)).get_json()
+            seen.append((job["status"], job["fraction"]))
+            if job["status"] in ("done", "failed"):
+                job["seen"] = seen
+                return job
+            time.sleep(0.2)
+        raise AssertionError(f"job {job_id} did not finish in {timeout} s; last {seen[-1:]}")
+
+
+def make_lab(tmp_path: Path, **config: Any) -> Lab:
+    settings = {
+        "INSTANCE_PATH": str(tmp_path / "instance"),
+        "TESTING": True,
+        "ANALYSIS_OPTIONS": {"fast": True},
+        "WORKERS": 1,
+        **config,
+    }
+    app = create_app(settings)
+    lab = Lab(app)
+    storage = lab.services.storage
+    for name, roles in PEOPLE.items():
+        create_user(storage, name, roles, password=PASSWORD, display_name=name.title())
+        lab.tokens[name] = create_token(storage, name, "tests")
+    return lab
+
+
+class LiveServer:
+    """The real app served by werkzeug on 127.0.0.1 (a free port) in a thread."""
+
+    def __init__(self, app) -> None:
+        self.server = make_server("127.0.0.1", 0, app, threaded=True)
+        self.url = f"http://127.0.0.1:{self.server.server_port}"
+        self.thread = threading.Thread(target=self.server.serve_forever, daemon=True)
+
+    def __enter__(self) -> LiveServer:
+        self.thread.start()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.server.shutdown()
+        self.thread.join(10)
+
+    def request(
+        self,
+        method: str,
+        path: str,
+        token: str | None = None,
+        body: dict | None = None,
+        files: list[tuple[str, bytes]] | None = None,
+        fields: dict[str, str] | None = None,
+    ) -> tuple[int, dict[str, str], bytes]:
+        headers = {"Accept": "application/json"}
+        data = None
+        if token:
+            headers["Authorization"] = f"Bearer {token}"
+        if files is not None:
+            boundary = uuid.uuid4().hex
+            parts = []
+            for key, value in (fields or {}).items():
+                parts.append(
+                    f'--{boundary}\r\nContent-Disposition: form-data; name="{key}"\r\n\r\n'
+                    f"{value}\r\n".encode()
+                )
+            for name, content in files:
+                parts.append(
+                    f'--{boundary}\r\nContent-Disposition: form-data; name="files"; '
+                    f'filename="{name}"\r\nContent-Type: application/octet-stream\r\n\r\n'.encode()
+                    + content
+                    + b"\r\n"
+                )
+            parts.append(f"--{boundary}--\r\n".encode())
+            data = b"".join(parts)
+            headers["Content-Type"] = f"multipart/form-data; boundary={boundary}"
+        elif body is not None:
+            data = json.dumps(body).encode()
+            headers["Content-Type"] = "application/json"
+        request = urllib.request.Request(self.url + path, data=data, method=method, headers=headers)
+        try:
+            with urllib.request.urlopen(request, timeout=60) as reply:
+                return reply.status, dict(reply.headers), reply.read()
+        except urllib.error.HTTPError as reply:
+            return reply.code, dict(reply.headers), reply.read()

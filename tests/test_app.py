@@ -1,0 +1,610 @@
+"""The service end to end: upload → background fit → draft → issue → renderings → verify →
+reproduce, through the Flask test client and against a live server on 127.0.0.1; refused uploads;
+job failures, crashes and restarts; amendments; search; and the OpenAPI document."""
+
+from __future__ import annotations
+
+import io
+import json
+import re
+import socket
+import tarfile
+import time
+import zipfile
+
+import pytest
+from lxml import etree
+from sqlalchemy import func, select
+
+from service import storage as st
+from service.archive import canonical_json, verify_signed_document
+from service.jobs import recover_interrupted
+from service.openapi import openapi_document
+from service.storage import sha256_hex, utc_now
+from tests.service_support import (
+    EXAMPLE,
+    LiveServer,
+    make_lab,
+    small_run_files,
+    zip_of,
+)
+
+
+@pytest.fixture(scope="module")
+def lab(tmp_path_factory):
+    lab = make_lab(tmp_path_factory.mktemp("service"))
+    lab.services.start_workers(1)
+    yield lab
+    lab.services.stop_workers()
+    lab.services.storage.dispose()
+
+
+@pytest.fixture(scope="module")
+def issued(lab):
+    """One run taken all the way to an issued certificate (shared by several tests)."""
+    client = lab.client()
+    reply = lab.upload(client)
+    assert reply.status_code == 202, reply.get_json()
+    job = lab.wait(client, reply.get_json()["job_id"])
+    assert job["status"] == "done", job["error"]
+    cert = job["certificate_id"]
+    issued = client.post(f"/api/certificates/{cert}/issue", headers=lab.headers("arno"))
+    assert issued.status_code == 200, issued.get_json()
+    return {"certificate_id": cert, "upload": reply.get_json(), "job": job}
+
+
+def _stored_counts(lab) -> tuple[int, int, int]:
+    with lab.services.storage.read() as conn:
+        runs = conn.execute(select(func.count()).select_from(st.runs)).scalar()
+        jobs = conn.execute(select(func.count()).select_from(st.jobs)).scalar()
+    blob_files = sum(
+        1
+        for p in (lab.services.storage.blobs.root).rglob("*")
+        if p.is_file() and p.parent.name != "tmp"
+    )
+    return runs, jobs, blob_files
+
+
+def test_upload_to_issued_through_the_test_client(lab, issued):
+    client = lab.client()
+    upload = issued["upload"]
+    assert upload["kind"] == "cbt_thermometry"
+    assert upload["seed"] == 424242  # from run.toml
+    assert [f["name"] for f in upload["files"]] == ["run.toml", "sweep_03_60mK.csv"]
+    # Raw bytes stored unchanged under their SHA-256.
+    for name, data in small_run_files():
+        entry = next(f for f in upload["files"] if f["name"] == name)
+        assert entry["sha256"] == sha256_hex(data)
+        assert lab.services.storage.blobs.get(entry["sha256"]) == data
+    job = issued["job"]
+    assert job["fraction"] == 1.0 and job["attempts"] == 1
+    assert all(0.0 <= fraction <= 1.0 for _status, fraction in job["seen"])
+    cert = issued["certificate_id"]
+    info = client.get(f"/api/certificates/{cert}", headers=lab.headers("aude")).get_json()
+    assert info["state"] == "issued" and info["sequence"] >= 1
+    assert info["submitted_by"] == "olga" and info["issued_by"] == "arno"
+    record = info["record"]
+    assert record["certificate_id"] == cert
+    assert record["dates"]["issued"] == info["issued_at"][:10]
+    assert record["people"]["approver"] == "Arno"
+    assert record["results"][0]["unit"] == "K"
+    # Renderings.
+    as_json = client.get(f"/api/certificates/{cert}/json", headers=lab.headers("olga"))
+    assert as_json.status_code == 200 and json.loads(as_json.data)["certificate_id"] == cert
+    html = client.get(f"/api/certificates/{cert}/html", headers=lab.headers("olga"))
+    assert html.status_code == 200 and cert.encode() in html.data and b"<svg" in html.data
+    pdf = client.get(f"/api/certificates/{cert}/pdf", headers=lab.headers("olga"))
+    assert pdf.status_code == 200 and pdf.data.startswith(b"%PDF")
+    assert pdf.headers["Content-Disposition"] == f'attachment; filename="{cert}.pdf"'
+    xml = client.get(f"/api/certificates/{cert}/xml", headers=lab.headers("olga"))
+    assert xml.status_code == 200
+    assert etree.fromstring(xml.data).findtext(".//{https://ptb.de/dcc}uniqueIdentifier") == cert
+    signed = client.get(f"/api/certificates/{cert}/signed", headers=lab.headers("aude"))
+    document = json.loads(signed.data)
+    public = bytes.fromhex(client.get("/api/public-key").get_json()["public_key_hex"])
+    assert all(c.ok for c in verify_signed_document(document, public))
+    # Verify and reproduce.
+    report = client.get(f"/api/certificates/{cert}/verify", headers=lab.headers("aude"))
+    assert report.get_json()["valid"], report.get_json()["problems"]
+    again = client.post(f"/api/certificates/{cert}/reproduce", headers=lab.headers("aude"))
+    assert again.status_code == 202
+    job = lab.wait(client, again.get_json()["job_id"], who="aude")
+    assert job["status"] == "done", job["error"]
+    assert job["result"]["identical"], job["result"]["mismatches"][:5]
+    assert job["result"]["numbers_compared"] > 50
+    actions = [
+        e["action"]
+        for e in client.get(f"/api/events?subject={cert}", headers=lab.headers("aude")).get_json()[
+            "events"
+        ]
+    ]
+    assert {
+        "certificate.drafted",
+        "certificate.issued",
+        "certificate.verified",
+        "certificate.reproduced",
+    } <= set(actions)
+
+
+def test_four_eyes_through_the_api(lab):
+    client = lab.client()
+    reply = lab.upload(client, who="pat")  # pat is operator and approver
+    job = lab.wait(client, reply.get_json()["job_id"], who="pat")
+    cert = job["certificate_id"]
+    refused = client.post(f"/api/certificates/{cert}/issue", headers=lab.headers("pat"))
+    assert refused.status_code == 403
+    assert "four-eyes" in refused.get_json()["error"]
+    # A draft has no issue date, so it has no DCC XML and no signature yet.
+    xml = client.get(f"/api/certificates/{cert}/xml", headers=lab.headers("pat"))
+    assert xml.status_code == 409 and "issue date" in xml.get_json()["error"]
+    pdf = client.get(f"/api/certificates/{cert}/pdf", headers=lab.headers("pat"))
+    assert pdf.status_code == 200
+    assert (
+        client.post(f"/api/certificates/{cert}/issue", headers=lab.headers("bea")).status_code
+        == 200
+    )
+    again = client.post(f"/api/certificates/{cert}/issue", headers=lab.headers("arno"))
+    assert again.status_code == 409 and "only a draft" in again.get_json()["error"]
+
+
+def test_live_server_journey(lab):
+    with LiveServer(lab.app) as server:
+        status, _h, body = server.request("GET", "/api/health")
+        assert status == 200
+        status, _h, body = server.request(
+            "POST", "/api/runs", lab.tokens["olga"], files=small_run_files(), fields={"seed": "7"}
+        )
+        assert status == 202, body
+        upload = json.loads(body)
+        assert upload["seed"] == 7
+        deadline = time.monotonic() + 180
+        while True:
+            status, _h, body = server.request(
+                "GET", f"/api/jobs/{upload['job_id']}", lab.tokens["olga"]
+            )
+            job = json.loads(body)
+            if job["status"] in ("done", "failed") or time.monotonic() > deadline:
+                break
+            time.sleep(0.3)
+        assert job["status"] == "done", job
+        cert = job["certificate_id"]
+        status, _h, body = server.request(
+            "POST", f"/api/certificates/{cert}/issue", lab.tokens["bea"]
+        )
+        assert status == 200, body
+        for fmt, magic in (("pdf", b"%PDF"), ("xml", b"<?xml"), ("json", b"{"), ("html", b"<")):
+            status, headers, body = server.request(
+                "GET", f"/api/certificates/{cert}/{fmt}", lab.tokens["olga"]
+            )
+            assert status == 200 and body.startswith(magic), (fmt, status)
+        status, _h, body = server.request(
+            "GET", f"/api/certificates/{cert}/verify", lab.tokens["aude"]
+        )
+        assert json.loads(body)["valid"]
+        status, _h, body = server.request(
+            "POST", f"/api/certificates/{cert}/reproduce", lab.tokens["aude"]
+        )
+        assert status == 202
+        job_id = json.loads(body)["job_id"]
+        while True:
+            status, _h, body = server.request("GET", f"/api/jobs/{job_id}", lab.tokens["aude"])
+            job = json.loads(body)
+            if job["status"] in ("done", "failed") or time.monotonic() > deadline:
+                break
+            time.sleep(0.3)
+        assert job["status"] == "done" and job["result"]["identical"], job
+
+
+def _tar_with_link() -> bytes:
+    buffer = io.BytesIO()
+    with tarfile.open(fileobj=buffer, mode="w") as archive:
+        link = tarfile.TarInfo("run/sweep.csv")
+        link.type = tarfile.SYMTYPE
+        link.linkname = "/etc/passwd"
+        archive.addfile(link)
+    return buffer.getvalue()
+
+
+def _zip_with_symlink() -> bytes:
+    buffer = io.BytesIO()
+    with zipfile.ZipFile(buffer, "w") as archive:
+        info = zipfile.ZipInfo("sweep.csv")
+        info.external_attr = 0o120777 << 16
+        archive.writestr(info, "/etc/passwd")
+    return buffer.getvalue()
+
+
+RUN_TOML = (EXAMPLE / "run.toml").read_bytes()
+SWEEP = (EXAMPLE / "sweep_03_60mK.csv").read_bytes()
+
+
+def _header_line(data: bytes) -> int:
+    lines = data.split(b"\n")
+    return next(i for i, line in enumerate(lines, start=1) if line.startswith(b"bias_V"))
+
+
+def _spoil_first_value(data: bytes) -> bytes:
+    """The first data row's bias with a letter O typed for a zero."""
+    lines = data.split(b"\n")
+    row = _header_line(data)  # 1-based header line = 0-based index of the first data row
+    lines[row] = b"1.2e-O3" + lines[row][lines[row].index(b",") :]
+    return b"\n".join(lines)
+
+
+@pytest.mark.parametrize(
+    ("files", "form", "status", "expect"),
+    [
+        ([], {}, 400, {"error": "no files"}),
+        (
+            [("run.toml", RUN_TOML), ("sweep.csv", b"")],
+            {},
+            400,
+            {"file": "sweep.csv", "error": "empty"},
+        ),
+        (
+            [("sweep.csv", b"\x00\x01\x02binary\xff" * 20)],
+            {},
+            400,
+            {"file": "sweep.csv", "error": "binary"},
+        ),
+        (
+            [("sweep.csv", SWEEP.replace(b"bias_V,conductance_S", b"bias_mV,conductance"))],
+            {},
+            400,
+            {"file": "sweep.csv", "line": _header_line(SWEEP), "field": "bias_mV"},
+        ),
+        (
+            [("sweep.csv", _spoil_first_value(SWEEP))],
+            {},
+            400,
+            {
+                "file": "sweep.csv",
+                "line": _header_line(SWEEP) + 1,
+                "field": "bias_V",
+                "error": "not a number",
+            },
+        ),
+        (
+            [("run.toml", b"[run]\nkind = 'thermometry'\n"), ("sweep.csv", SWEEP)],
+            {},
+            400,
+            {"file": "run.toml", "field": "run.kind"},
+        ),
+        (
+            [("run.zip", zip_of([("../evil.csv", SWEEP)], folder=""))],
+            {},
+            400,
+            {"file": "run.zip", "error": "outside the run folder"},
+        ),
+        (
+            [("run.zip", zip_of([("/etc/evil.csv", SWEEP)], folder=""))],
+            {},
+            400,
+            {"error": "outside the run folder"},
+        ),
+        ([("run.zip", _zip_with_symlink())], {}, 400, {"error": "link"}),
+        ([("run.tar", _tar_with_link())], {}, 400, {"error": "link or device"}),
+        ([("run.zip", b"PK\x03\x04 not really a zip")], {}, 400, {"error": "not a readable zip"}),
+        ([("run.toml", RUN_TOML), ("sweep.csv", SWEEP)], {"seed": "-4"}, 400, {"field": "seed"}),
+        (
+            [("run.toml", RUN_TOML), ("sweep.csv", SWEEP)],
+            {"replaces": "CC-1999-00001", "reason": "typo"},
+            404,
+            {"field": "replaces"},
+        ),
+    ],
+    ids=[
+        "nothing",
+        "empty",
+        "binary",
+        "wrong-columns",
+        "bad-number",
+        "bad-manifest",
+        "zip-traversal",
+        "zip-absolute",
+        "zip-symlink",
+        "tar-symlink",
+        "not-zip",
+        "bad-seed",
+        "amends-unknown",
+    ],
+)
+def test_bad_uploads_are_refused_and_nothing_is_stored(lab, files, form, status, expect):
+    before = _stored_counts(lab)
+    reply = lab.upload(lab.client(), files=files, **form)
+    body = reply.get_json()
+    assert reply.status_code == status, body
+    for key, value in expect.items():
+        if key == "error":
+            assert value in body["error"], body
+        else:
+            assert body[key] == value, body
+    assert _stored_counts(lab) == before
+
+
+def test_oversized_uploads_are_refused(lab):
+    before = _stored_counts(lab)
+    lab.app.config["MAX_CONTENT_LENGTH"] = 20_000
+    try:
+        reply = lab.upload(lab.client(), files=[("run.toml", RUN_TOML), ("s.csv", SWEEP * 3)])
+    finally:
+        lab.app.config["MAX_CONTENT_LENGTH"] = 64 * 1024 * 1024
+    assert reply.status_code == 413 and "larger than the limit" in reply.get_json()["error"]
+    # A small zip that would unpack to a huge run (a "zip bomb") is refused before unpacking.
+    buffer = io.BytesIO()
+    with zipfile.ZipFile(buffer, "w", compression=zipfile.ZIP_DEFLATED) as archive:
+        archive.writestr("huge.csv", b"0" * (5 * 1024 * 1024))
+    lab.app.config["MAX_RUN_BYTES"] = 1024 * 1024
+    try:
+        reply = lab.upload(lab.client(), files=[("run.zip", buffer.getvalue())])
+    finally:
+        lab.app.config["MAX_RUN_BYTES"] = 256 * 1024 * 1024
+    assert reply.status_code == 413 and "limit" in reply.get_json()["error"]
+    assert _stored_counts(lab) == before
+
+
+def test_zip_of_a_run_folder_is_accepted(lab):
+    files = small_run_files() + [("notes.txt", b"bench notes, not part of the run")]
+    reply = lab.upload(lab.client(), files=[("hollowmere.zip", zip_of(files))])
+    body = reply.get_json()
+    assert reply.status_code == 202, body
+    assert [f["name"] for f in body["files"]] == ["run.toml", "sweep_03_60mK.csv"]
+    assert body["ignored"] == ["notes.txt"]
+    # Same bytes as the plain upload: content addressing stores them once.
+    assert body["files"][1]["sha256"] == sha256_hex(SWEEP)
+
+
+def test_amendment_and_withdrawal_over_the_api(lab, issued):
+    client = lab.client()
+    cert = issued["certificate_id"]
+    refused = client.post(
+        f"/api/certificates/{cert}/amend",
+        headers=lab.headers("olga"),
+        json={"reason": "x", "corrections": {"results": []}},
+    )
+    assert refused.status_code == 400 and "new run" in refused.get_json()["error"]
+    reply = client.post(
+        f"/api/certificates/{cert}/amend",
+        headers=lab.headers("olga"),
+        json={
+            "reason": "customer renamed their group",
+            "corrections": {"customer": {"name": "Quantum Devices Section (fictional)"}},
+        },
+    )
+    assert reply.status_code == 201, reply.get_json()
+    amended = reply.get_json()["certificate_id"]
+    assert amended == f"{cert}-R2"
+    assert (
+        client.post(f"/api/certificates/{amended}/issue", headers=lab.headers("bea")).status_code
+        == 200
+    )
+    old = client.get(f"/api/certificates/{cert}", headers=lab.headers("aude")).get_json()
+    new = client.get(f"/api/certificates/{amended}", headers=lab.headers("aude")).get_json()
+    assert old["state"] == "superseded" and old["superseded_by"] == amended
+    assert new["record"]["replaces"] == cert
+    xml = client.get(f"/api/certificates/{amended}/xml", headers=lab.headers("aude")).data
+    assert b"<dcc:replacedUniqueIdentifier>" + cert.encode() in xml
+    for c in (cert, amended):
+        assert client.get(f"/api/certificates/{c}/verify", headers=lab.headers("aude")).get_json()[
+            "valid"
+        ]
+    # Withdrawal needs a reason and is final.
+    bad = client.post(f"/api/certificates/{amended}/withdraw", headers=lab.headers("arno"), json={})
+    assert bad.status_code == 400
+    done = client.post(
+        f"/api/certificates/{amended}/withdraw",
+        headers=lab.headers("arno"),
+        json={"reason": "device found cracked after shipping"},
+    )
+    assert done.status_code == 200 and done.get_json()["sequence"]
+    assert client.get(
+        f"/api/certificates/{amended}/verify", headers=lab.headers("aude")
+    ).get_json()["valid"]
+    whole = client.get("/api/archive/verify", headers=lab.headers("aude")).get_json()
+    assert whole["valid"] and whole["entries"] >= 3
+
+
+def test_archive_search(lab, issued):
+    client = lab.client()
+    headers = lab.headers("aude")
+    cert = issued["certificate_id"]
+    today = utc_now()[:10]
+    found = client.get(f"/api/certificates?q={cert}", headers=headers).get_json()
+    assert cert in [c["id"] for c in found["certificates"]]
+    by_item = client.get(
+        "/api/certificates?item=HLT-CBT-07&kind=cbt_thermometry", headers=headers
+    ).get_json()
+    assert by_item["count"] >= 1
+    assert all(c["kind"] == "cbt_thermometry" for c in by_item["certificates"])
+    dated = client.get(f"/api/certificates?from={today}&to={today}", headers=headers).get_json()
+    assert dated["count"] >= 1
+    assert (
+        client.get("/api/certificates?from=1990-01-01&to=1990-12-31", headers=headers).get_json()[
+            "count"
+        ]
+        == 0
+    )
+    states = {
+        c["state"]
+        for c in client.get("/api/certificates?state=draft", headers=headers).get_json()[
+            "certificates"
+        ]
+    }
+    assert states <= {"draft"}
+    assert client.get("/api/certificates?state=lost", headers=headers).status_code == 400
+
+
+def test_openapi_document_matches_the_routes(lab, issued):
+    document = openapi_document()
+    documented = {
+        (method.upper(), path) for path, ops in document["paths"].items() for method in ops
+    }
+    routed = set()
+    for rule in lab.app.url_map.iter_rules():
+        if not rule.rule.startswith("/api/"):
+            continue
+        path = re.sub(r"<(?:[a-z]+:)?([a-z_]+)>", r"{\1}", rule.rule)
+        for method in rule.methods - {"HEAD", "OPTIONS"}:
+            routed.add((method, path))
+    assert documented == routed
+
+
+def test_every_documented_route_answers_as_documented(lab, issued):
+    client = lab.client()
+    cert = issued["certificate_id"]
+    fill = {
+        "run_id": issued["upload"]["run_id"],
+        "job_id": issued["upload"]["job_id"],
+        "certificate_id": cert,
+        "username": "olga",
+    }
+    bodies = {
+        ("POST", "/api/runs"): None,
+        ("POST", "/api/users"): {"username": "oa-check", "roles": "auditor"},
+        ("PATCH", "/api/users/{username}"): {"roles": "operator"},
+        ("POST", "/api/certificates/{certificate_id}/withdraw"): {"reason": "route check"},
+        ("POST", "/api/certificates/{certificate_id}/amend"): {"reason": "route check"},
+    }
+    person = {"operator": "olga", "approver": "bea", "auditor": "aude", "admin": "adam"}
+    # Issue and withdraw act on a fresh draft, the rest on a fresh issued certificate, so that
+    # every call can succeed whatever other tests did to the shared one.
+    first, second = (lab.upload(client).get_json()["job_id"] for _ in range(2))
+    draft = lab.wait(client, first)["certificate_id"]
+    cert = lab.wait(client, second)["certificate_id"]
+    assert (
+        client.post(f"/api/certificates/{cert}/issue", headers=lab.headers("bea")).status_code
+        == 200
+    )
+    fill["certificate_id"] = cert
+    called = 0
+    for path, operations in openapi_document()["paths"].items():
+        for method, op in operations.items():
+            key = (method.upper(), path)
+            concrete = path
+            for name, value in fill.items():
+                concrete = concrete.replace("{" + name + "}", value)
+            if path.endswith(("/issue", "/withdraw")):
+                concrete = concrete.replace(cert, draft)
+            roles = op["x-roles"]
+            headers = lab.headers(person[roles[0]]) if roles else {}
+            kwargs = {"json": bodies.get(key, {})} if method != "get" else {}
+            if key == ("POST", "/api/runs"):
+                kwargs = {
+                    "data": {"files": [(io.BytesIO(d), n) for n, d in small_run_files()]},
+                    "content_type": "multipart/form-data",
+                }
+            if "{fmt}" in path:
+                for fmt in op["parameters"][1]["schema"]["enum"]:
+                    reply = client.open(
+                        concrete.replace("{fmt}", fmt), method=method.upper(), headers=headers
+                    )
+                    assert str(reply.status_code) in op["responses"], (fmt, reply.status_code)
+                    assert reply.status_code == 200, (fmt, reply.data[:200])
+                    called += 1
+                continue
+            reply = client.open(concrete, method=method.upper(), headers=headers, **kwargs)
+            assert str(reply.status_code) in op["responses"], (
+                key,
+                reply.status_code,
+                reply.data[:300],
+            )
+            assert reply.status_code < 400, (key, reply.status_code, reply.data[:300])
+            called += 1
+    assert called >= len(openapi_document()["paths"])
+
+
+# ---- jobs: failure, crash, restart ---------------------------------------------------------
+
+
+@pytest.fixture()
+def troubled_lab(tmp_path, monkeypatch):
+    monkeypatch.setenv("COLDCERT_TEST_CRASH_MARKER", str(tmp_path / "crashed"))
+    lab = make_lab(tmp_path, CERTIFY="tests.fake_analysis:misbehaving_certify")
+    yield lab
+    lab.services.stop_workers()
+    lab.services.storage.dispose()
+
+
+def _with_behaviour(behaviour: str) -> list[tuple[str, bytes]]:
+    manifest = RUN_TOML.replace(b"[run]\n", f'[run]\ntest_behaviour = "{behaviour}"\n'.encode())
+    return [("run.toml", manifest), ("sweep_03_60mK.csv", SWEEP)]
+
+
+def test_failed_job_records_why_and_a_crashed_worker_is_replaced(troubled_lab):
+    lab = troubled_lab
+    client = lab.client()
+    failing = lab.upload(client, files=_with_behaviour("fail")).get_json()
+    crashing = lab.upload(client, files=_with_behaviour("crash_once")).get_json()
+    lab.services.start_workers(1)
+    job = lab.wait(client, failing["job_id"])
+    assert job["status"] == "failed"
+    assert "did not converge (simulated failure)" in job["error"]
+    assert "fitting the first sweep" in job["step"]
+    job = lab.wait(client, crashing["job_id"])
+    assert job["status"] == "done", job["error"]
+    assert job["attempts"] == 2
+    events = client.get(
+        f"/api/events?subject={crashing['job_id']}", headers=lab.headers("aude")
+    ).get_json()["events"]
+    assert "job.interrupted" in [e["action"] for e in events]
+    with lab.services.storage.read() as conn:
+        drafts = conn.execute(
+            select(func.count())
+            .select_from(st.certificates)
+            .where(st.certificates.c.run_id == crashing["run_id"])
+        ).scalar()
+    assert drafts == 1  # the crashed attempt left no half-written certificate
+
+
+def test_restart_requeues_jobs_interrupted_by_a_crash(troubled_lab):
+    lab = troubled_lab
+    client = lab.client()
+    upload = lab.upload(client).get_json()
+    # The service died while a worker (pid that no longer exists) was fitting this run.
+    with lab.services.storage.write() as conn:
+        conn.execute(
+            st.jobs.update()
+            .where(st.jobs.c.id == upload["job_id"])
+            .values(
+                status="running",
+                claimed_by=f"{socket.gethostname()}:999999999:gone",
+                attempts=1,
+                started_at=utc_now(),
+                heartbeat_at=utc_now(),
+                fraction=0.4,
+                step="sampling",
+            )
+        )
+    # Jobs of live workers elsewhere with a fresh heartbeat are left alone.
+    assert recover_interrupted(lab.services.storage, stale_after=3600) == [upload["job_id"]]
+    status = client.get(f"/api/jobs/{upload['job_id']}", headers=lab.headers("olga")).get_json()
+    assert status["status"] == "queued" and "interrupted at 'sampling'" in status["step"]
+    lab.services.start_workers(1)
+    job = lab.wait(client, upload["job_id"])
+    assert job["status"] == "done" and job["attempts"] == 2
+
+
+def test_jobs_interrupted_too_often_are_failed(troubled_lab):
+    lab = troubled_lab
+    upload = lab.upload(lab.client()).get_json()
+    with lab.services.storage.write() as conn:
+        conn.execute(
+            st.jobs.update()
+            .where(st.jobs.c.id == upload["job_id"])
+            .values(
+                status="running",
+                claimed_by="elsewhere:1:x",
+                attempts=3,
+                heartbeat_at="2000-01-01T00:00:00.000000Z",
+            )
+        )
+    assert recover_interrupted(lab.services.storage) == [upload["job_id"]]
+    status = (
+        lab.client().get(f"/api/jobs/{upload['job_id']}", headers=lab.headers("olga")).get_json()
+    )
+    assert status["status"] == "failed" and "interrupted 3 times" in status["error"]
+
+
+def test_signed_record_is_canonical_json(lab, issued):
+    entry = lab.services.archive.signed_entry(issued["certificate_id"])
+    assert sha256_hex(canonical_json(entry["entry"])) == entry["sha256"]
