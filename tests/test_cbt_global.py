@@ -56,3 +56,21 @@ def test_global_of_identical_independent_information_matches_gaussian_combinatio
 def test_needs_two_sweeps():
     with pytest.raises(ValueError, match="two sweeps"):
         fit_global([], [], higher_order_shape)
+
+
+@pytest.mark.slow
+def test_least_squares_summaries_give_the_same_global_posterior(six_sweeps):
+    # The global posterior is integrated numerically; the independent results only centre the grids,
+    # so Laplace (least-squares) summaries and MCMC summaries must give the same answer.
+    from analysis.cbt.fit import initial_guess, least_squares_fit
+    from analysis.cbt.global_fit import SweepSummary
+
+    _, _, datas, fits = six_sweeps
+    a = fit_global(datas, fits, higher_order_shape)
+    summaries = []
+    for d in datas:
+        ls = least_squares_fit(higher_order_shape, d, initial_guess(d))
+        summaries.append(SweepSummary.from_least_squares(ls["theta"], ls["covariance"]))
+    b = fit_global(datas, summaries, higher_order_shape)
+    np.testing.assert_allclose(b.temperatures, a.temperatures, atol=0.02 * a.temperature_std.min())
+    assert b.charging_energy == pytest.approx(a.charging_energy, abs=0.02 * a.charging_energy_std)

@@ -216,9 +216,11 @@ def least_squares_fit(shape: DipShape, data: SweepData, start: np.ndarray) -> di
         se = np.sqrt(np.abs(np.diag(cov)))
     except np.linalg.LinAlgError:
         se = np.abs(theta) * 1e-2
+        cov = np.diag(se**2)
     return {
         "theta": theta,
         "standard_errors": se,
+        "covariance": cov,
         "amplitudes": coef[0],
         "rss": float(rss[0]),
         "degrees_of_freedom": dof,
