@@ -43,9 +43,14 @@ def main() -> None:
             "magnetic_field_T: 12", "note: exit-gate scan, entrance gate at -0.25 V"],
            ["gate_V", "current_A"], zip(gate.tolist(), current.tolist(), strict=True))
 
-    g1 = np.round(np.linspace(-0.90, -0.20, 141), 6)
+    # The same invented pump: at entrance gate -0.25 V the map's slice is the scan above.
+    g1 = np.round(np.linspace(-0.90, -0.10, 161), 6)
     g2 = np.round(np.linspace(-0.35, -0.15, 11), 6)
-    a, b, i = simulate.plateau_map(g1, g2, FREQUENCY_HZ, seed=5102, noise_a=0.25e-12)
+    a, b, i = simulate.plateau_map(
+        g1, g2, FREQUENCY_HZ, seed=5102, slope_per_v=SCAN_TRUTH[0],
+        first_step_v=SCAN_TRUTH[1] - 0.3 * (-0.25), shift_per_v=0.3,
+        delta2_peak=SCAN_TRUTH[0] * (SCAN_TRUTH[2] - SCAN_TRUTH[1]), gate2_optimum_v=-0.25,
+        delta3=SCAN_TRUTH[0] * (SCAN_TRUTH[3] - SCAN_TRUTH[2]), noise_a=0.25e-12)
     _write("map_exit_entrance.csv",
            ["frequency_Hz: 1.0e9", "electrons_per_cycle: 1", "device: LQ-P12",
             "note: exit gate scanned at each entrance-gate setting (long format)"],

@@ -601,7 +601,7 @@ def _value(v) -> str:
 
 
 def statement(item: str, records: list[dict], scans: list[dict], rate: counting.ErrorRate | None,
-              ideal: bool) -> str:
+              ideal: bool, record_conditions: list[dict] | None = None) -> str:
     parts = []
     for r in records:
         rep = r["reported"]
@@ -632,6 +632,13 @@ def statement(item: str, records: list[dict], scans: list[dict], rate: counting.
                 f"{wp['predicted_relative_deviation']:.2g} (95 % credible interval {lo:.2g} to "
                 f"{hi:.2g}); this is a model extrapolation, not a measurement."
             )
+            for c in record_conditions or []:
+                if "operating_gate_V" in c:
+                    gap = c["operating_gate_V"] - wp["gate_V"]
+                    parts.append(
+                        f"The record {c['file']} was taken at {c['operating_gate_V']:.6g} V on the "
+                        f"gate, {gap * 1e3:+.3g} mV from this working point (assuming the scan's "
+                        "gate is the record's).")
         else:
             st = s["statement"]
             parts.append(f"In the plateau map {s['file']}, {st[0].lower()}{st[1:]}")
@@ -768,7 +775,7 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
         pump_info.setdefault("electrons_per_cycle", first["electrons_per_cycle"])
     pump_info["ammeter chain"] = (chain.description or chain.kind) if not chain.is_ideal else \
         "ideal ammeter assumed (no [ammeter] calibration data in run.toml)"
-    stmt = statement(str(item), outcome.results, scan_sections, rate, chain.is_ideal)
+    stmt = statement(str(item), outcome.results, scan_sections, rate, chain.is_ideal, conditions)
     outcome.sections = {"statement": stmt, "pump": pump_info, "plateau_scans": scan_sections,
                         "error_counting": None if rate is None else rate.as_dict()}
     outcome.html_sections = html_sections(stmt, pump_info, scan_sections, outcome.results, rate)
