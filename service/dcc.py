@@ -116,7 +116,7 @@ def si_unit(unit: str) -> str:
         return r"\one"
     raise CertificateIncomplete(
         f"unit {unit!r} has no D-SI mapping here; known units: "
-        f"{', '.join(sorted(k for k in SI_UNITS if k) | set(_SCALED))}"
+        f"{', '.join(sorted({k for k in SI_UNITS if k} | set(_SCALED)))}"
     )
 
 
