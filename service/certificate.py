@@ -61,14 +61,9 @@ def _clean(obj):
     return obj
 
 
-def canonical_bytes(record: dict) -> bytes:
-    """Canonical JSON: sorted keys, no insignificant whitespace, UTF-8, shortest float repr."""
-    return json.dumps(_clean(record), sort_keys=True, separators=(",", ":"), ensure_ascii=False,
-                      allow_nan=False).encode("utf-8")
-
-
 def pretty_bytes(record: dict) -> bytes:
-    """The same content, indented for people; parses back to the identical record."""
+    """The record indented for people; parses back to the identical record. The archive signs the
+    canonical form of the same data (service.archive.canonical_json)."""
     return (json.dumps(_clean(record), sort_keys=True, indent=2, ensure_ascii=False, allow_nan=False)
             + "\n").encode("utf-8")
 
@@ -172,7 +167,7 @@ def budget_table(b: dict) -> str:
     body = "".join(
         f"<tr><td>{_e(r['quantity'])}</td><td class=num>{_g(r['estimate'])}</td><td>{_e(r['unit'])}</td>"
         f"<td class=num>{_g(r['standard_uncertainty'], 3)}</td><td>{_e(r['type'])}</td><td>{_e(r['distribution'])}</td>"
-        f"<td class=num>{_g(r['sensitivity_coefficient'], 4)} {_e(r['sensitivity_unit'])}</td>"
+        f"<td class=num>{_g(r['sensitivity_coefficient'], 4)} {_e(r['sensitivity_unit'] if r['sensitivity_unit'] != '1' else '')}</td>"
         f"<td class=num>{_g(r['contribution'], 3)} {_e(b['unit'])}</td><td class=num>{_g(r['degrees_of_freedom'], 3)}</td>"
         f"<td class=small>{_e(r['note'])}</td></tr>"
         for r in b["rows"]
