@@ -24,6 +24,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
+from scipy import stats
 
 from analysis import scales, sensors
 from analysis.budget import round_for_report
@@ -47,6 +48,8 @@ DEFAULT_TABLE_POINTS = 25
 DEFAULT_BRIDGE_RELATIVE_U = 2e-4
 DEFAULT_READING_RELATIVE_U = 1e-4
 DEFAULT_MELTING_PRESSURE_U_PA = 50.0
+#: A curve whose χ² has a p-value below this is refused rather than enlarged by its Birge ratio.
+REFUSE_CHI2_P_VALUE = 1e-4
 
 
 def _iso_datetime(text: str) -> datetime:
@@ -599,6 +602,21 @@ def analyse(
         fit = sensors.fit_calibration_curve(data, degree=degree, criterion=criterion)
     except sensors.CalibrationFitError as exc:
         raise thermometry.CertificationRefused(f"calibration curve: {exc}") from None
+    if fit.degrees_of_freedom > 0:
+        p_value = float(stats.chi2.sf(fit.chi_squared, fit.degrees_of_freedom))
+        if p_value < REFUSE_CHI2_P_VALUE:
+            # Enlarging by the Birge ratio covers random excess scatter, not a curve that cannot
+            # follow the points: that needs more points, a fixed higher degree or a look at the
+            # points themselves, not a certificate.
+            raise thermometry.CertificationRefused(
+                f"calibration curve: the degree-{fit.degree} curve misses the points far beyond "
+                f"their uncertainties (chi2 = {fit.chi_squared:.3g} for {fit.degrees_of_freedom} "
+                f"degrees of freedom, p = {p_value:.1e}; largest normalised residual "
+                f"{np.max(np.abs(fit.normalised_residuals)):.3g} at "
+                f"{data.labels[int(np.argmax(np.abs(fit.normalised_residuals)))]}). With "
+                f"{data.n_points} points at most degree {sensors.maximum_degree(data.n_points)} "
+                "is allowed: add calibration points, or check the points and their uncertainties"
+            )
     curve = fit.curve
     lo, hi = curve.resistance_range_ohm
     grid = np.geomspace(lo, hi, table_points)
@@ -775,7 +793,7 @@ def analyse(
             "the full covariance of the points: the posterior parts are independent, the Type B "
             "parts (bias scale, excitation, non-uniformity, model) and the bridge's scale are "
             "common to all points and carried as correlated. The degree is chosen by "
-            + ("AICc" if fit.criterion == "aicc" else fit.criterion)
+            + CRITERION_NAMES.get(fit.criterion, fit.criterion)
             + " with at least two points per coefficient. Temperatures are given only inside "
             "the calibrated resistance range."
         ),
@@ -789,6 +807,13 @@ def analyse(
     if progress:
         progress(1.0, "done")
     return outcome
+
+
+CRITERION_NAMES = {
+    "aicc": "AICc (corrected Akaike information criterion)",
+    "loo": "leave-one-out cross-validation",
+    "fixed degree": "the run manifest (fixed degree)",
+}
 
 
 def _html_section(section: dict) -> str:
@@ -806,7 +831,8 @@ def _html_section(section: dict) -> str:
         f"i.e. {g(rng['temperature_K'][0] * 1e3, 4)}–{g(rng['temperature_K'][1] * 1e3, 4)} mK. "
         f"{e(rng['statement'])}.</p>",
         f"<p>Curve: {e(section['curve']['form'])}; degree {fit['degree']} chosen by "
-        f"{e(fit['degree_criterion'])}; χ² = {g(fit['chi_squared'], 4)} for "
+        f"{e(CRITERION_NAMES.get(fit['degree_criterion'], fit['degree_criterion']))}; "
+        f"χ² = {g(fit['chi_squared'], 4)} for "
         f"{fit['degrees_of_freedom']} degrees of freedom (Birge ratio {g(fit['birge_ratio'], 3)}). "
         "Coefficients: " + ", ".join(g(c, 10) for c in section["curve"]["coefficients"]) + ".</p>",
         "<h3>Calibration points</h3><table><tr><th>sweep</th><th>R (Ω)</th><th>T (K)</th>"
