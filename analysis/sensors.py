@@ -103,8 +103,8 @@ def generalised_least_squares(
 ) -> LeastSquaresResult:
     """Generalised (weighted, correlated) least squares: β̂ = (Xᵀ V⁻¹ X)⁻¹ Xᵀ V⁻¹ y.
 
-    Aitken's estimator; Cov(β̂) = (Xᵀ V⁻¹ X)⁻¹ when V is the known covariance of y
-    (e.g. Draper & Smith, Applied Regression Analysis, ch. 9; common practice). With
+    Aitken, Proc. R. Soc. Edinburgh 55, 42 (1935) (from memory); Cov(β̂) = (Xᵀ V⁻¹ X)⁻¹ when V is
+    the known covariance of y. With
     ``scale_by_residuals="always"`` the covariance is multiplied by χ²/ν, i.e. V is known only
     up to a factor estimated from the scatter (as in GUM H.3, where s² is estimated from the
     residuals); ``"if_larger"`` does so only when χ²/ν > 1 (Birge ratio above one).
