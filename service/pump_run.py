@@ -129,7 +129,7 @@ def _key_line(f: DataFile, key: str) -> int | None:
     return None
 
 
-def file_value(f: DataFile, key: str):
+def file_value(f: DataFile, key: str) -> float | int | None:
     """A pump metadata value of a file, typed, or None. Works whether or not intake already knew
     the key (intake parses keys registered before it ran; others arrive as free text)."""
     if key in f.metadata:

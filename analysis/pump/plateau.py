@@ -40,6 +40,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage, optimize, special
 
+from analysis.sampling import PosteriorResult, sample_posterior
+
 log = logging.getLogger(__name__)
 
 DECAY_CASCADE = "decay_cascade"
@@ -683,7 +685,7 @@ class PlateauPosterior:
 
     model: str
     fit: PlateauFit
-    result: object  # analysis.sampling.PosteriorResult
+    result: PosteriorResult
 
     @property
     def parameter_samples(self) -> np.ndarray:
@@ -698,8 +700,6 @@ def sample_plateau_posterior(
     gate: np.ndarray, electrons: np.ndarray, fit: PlateauFit, seed: int, **sampler_options
 ) -> PlateauPosterior:
     """Posterior of a fitted model by ``analysis.sampling.sample_posterior``, started at the fit."""
-    from analysis.sampling import sample_posterior
-
     gate = np.asarray(gate, dtype=float)
     y = np.asarray(electrons, dtype=float)
     log_prob = _log_posterior(fit.model, gate, y, fit.baseline, fit.direction)
