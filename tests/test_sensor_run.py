@@ -214,7 +214,8 @@ def test_convert_log_refuses_out_of_range_naming_lines(fitted):
 
 def test_plts_cross_check_difference_and_zeta():
     # A CBT reading that equals the PLTS-2000 temperature of the pressure gives zero difference;
-    # one 1 % high gives zeta = 0.01 T / sqrt(u_CBT^2 + u_PLTS^2).
+    # one 1 % high gives zeta = 0.01 T / sqrt(u_CBT^2 + u_PLTS^2) (zeta score, ISO 13528:2015,
+    # from memory); u_PLTS = |dT/dp| u(p) (GUM 5.1.2).
     t = 0.05
     p = float(scales.melting_pressure(t))
     entries = {
