@@ -457,3 +457,21 @@ def test_job_refuses_curve_that_cannot_follow_the_points(monkeypatch):
     monkeypatch.setattr(sr.thermometry, "analyse", _fake_cbt(truth))
     with pytest.raises(CertificationRefused, match="add calibration points"):
         sr.analyse(load_files(named), seed=1)
+
+
+def test_example_certificate_renders_a_valid_dcc():
+    # The sensor certificate (its table points are results too) must go through the DCC
+    # rendering and validate against the published DCC 3.3.0 schema (PTB), kept in ../shared.
+    etree = pytest.importorskip("lxml.etree")
+    schema_path = Path(__file__).resolve().parents[1] / ".." / "shared" / "schemas"
+    schema_path = schema_path / "dcc-3.3.0" / "dcc.xsd"
+    if not schema_path.exists():
+        pytest.skip("DCC schema not available beside the project")
+    from service.dcc import render_dcc
+
+    record = json.loads((EXAMPLES / "sensor-larkspur-certificate" / "certificate.json").read_text())
+    record["dates"]["issued"] = "2026-12-01"  # only an issued certificate is written as a DCC
+    record["people"]["approver"] = "an approver"
+    doc = etree.fromstring(render_dcc(record))
+    schema = etree.XMLSchema(etree.parse(str(schema_path)))
+    assert schema.validate(doc), schema.error_log.last_error
