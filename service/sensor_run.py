@@ -377,15 +377,41 @@ def curve_from_record(record: dict, source: str = "certificate.json") -> sensors
         ) from None
 
 
-def table_csv(table: sensors.CurveTable) -> bytes:
-    """``calibration_table.csv``: the header exactly as documented, then one row per grid point."""
+def _table_bytes(resistance: np.ndarray, temperature: np.ndarray, expanded: np.ndarray) -> bytes:
     out = io.StringIO()
     out.write(TABLE_HEADER + "\n")
-    for r, t, u in zip(
-        table.resistance_ohm, table.temperature_K, table.expanded_uncertainty_K, strict=True
-    ):
+    for r, t, u in zip(resistance, temperature, expanded, strict=True):
         out.write(f"{r:.10g},{t:.10g},{u:.4g}\n")
     return out.getvalue().encode("utf-8")
+
+
+def table_csv(table: sensors.CurveTable) -> bytes:
+    """``calibration_table.csv``: the header exactly as documented, then one row per grid point."""
+    return _table_bytes(table.resistance_ohm, table.temperature_K, table.expanded_uncertainty_K)
+
+
+def table_csv_from_record(record: dict, source: str = "certificate.json") -> bytes:
+    """``calibration_table.csv`` rebuilt from a certificate record (same bytes as certify wrote).
+
+    For services that keep only the record: the table's rows are part of it.
+    """
+    if record.get("job") != "sensor_calibration":
+        raise CertificateError(
+            f"{source}: this certificate is for job {record.get('job')!r}, not a sensor calibration"
+        )
+    try:
+        rows = record["sections"]["sensor_calibration"]["table"]["rows"]
+        arrays = {
+            k: np.array([float(r[k]) for r in rows])
+            for k in ("resistance_ohm", "temperature_K", "expanded_uncertainty_K")
+        }
+    except (KeyError, TypeError, ValueError) as exc:
+        raise CertificateError(
+            f"{source}: the calibration table is missing or malformed ({exc})"
+        ) from None
+    return _table_bytes(
+        arrays["resistance_ohm"], arrays["temperature_K"], arrays["expanded_uncertainty_K"]
+    )
 
 
 # --------------------------------------------------------------------------------------------

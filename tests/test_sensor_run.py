@@ -256,6 +256,7 @@ def test_certify_minimal_sensor_run_and_convert_log(tmp_path, capsys):
     assert len(section["points"]) == 10
     assert section["curve"]["degree"] <= sensors.maximum_degree(10)
 
+    assert sr.table_csv_from_record(record) == (out / "calibration_table.csv").read_bytes()
     table = (out / "calibration_table.csv").read_text().splitlines()
     assert table[0] == "resistance_ohm,temperature_K,expanded_uncertainty_K"
     values = np.array([[float(v) for v in line.split(",")] for line in table[1:]])
