@@ -370,7 +370,7 @@ class CalibrationCurve:
         if strict and not np.all(inside):
             bad = np.flatnonzero(~inside)
             lo, hi = self.resistance_range_ohm
-            shown = ", ".join(f"#{i} = {r[i]:.6g} Ω" for i in bad[:5])
+            shown = ", ".join(f"index {i}: {r[i]:.6g} Ω" for i in bad[:5])
             more = f" and {bad.size - 5} more" if bad.size > 5 else ""
             raise OutOfRangeError(
                 f"{bad.size} resistance value(s) outside the calibrated range "

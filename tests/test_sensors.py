@@ -335,7 +335,7 @@ def test_out_of_range_refused_with_clear_error():
     assert curve.temperature(lo)[0].size == 1 and curve.temperature(hi)[0].size == 1
     with pytest.raises(s.OutOfRangeError, match="calibrated range"):
         curve.temperature(hi * 1.01)
-    with pytest.raises(s.OutOfRangeError, match="#1"):
+    with pytest.raises(s.OutOfRangeError, match="index 1: "):
         s.convert_resistance_log(curve, np.array([lo * 1.1, lo * 0.5, hi]))
     with pytest.raises(s.OutOfRangeError):
         curve.table(np.array([-5.0]))
