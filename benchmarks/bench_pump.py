@@ -82,8 +82,9 @@ def bench_plateau_coverage(seeds: int) -> float:
         lo, hi = P.working_point(P.DECAY_CASCADE, post.parameter_samples, 1).relative_deviation_interval
         hits += lo <= true_dev <= hi
     frac = hits / seeds
+    se = (0.95 * 0.05 / seeds) ** 0.5
     print(f"plateau coverage: {hits}/{seeds} = {frac:.2f} of 95 % credible intervals contain the "
-          f"true predicted deviation {true_dev:.3g}")
+          f"true predicted deviation {true_dev:.3g} (binomial standard error {se:.3f})")
     return frac
 
 
@@ -101,14 +102,16 @@ def bench_coverage(seeds: int) -> float:
         hits += abs(b.estimate - truth) <= b.expanded_uncertainty
         z.append((b.estimate - truth) / b.combined_standard_uncertainty)
     frac = hits / seeds
-    print(f"coverage: {hits}/{seeds} = {frac:.3f} of 95 % intervals contain +{truth} ppm; "
+    se = (0.95 * 0.05 / seeds) ** 0.5
+    print(f"coverage: {hits}/{seeds} = {frac:.3f} of 95 % intervals contain +{truth} ppm "
+          f"(binomial standard error {se:.3f}); "
           f"standardised error mean {np.mean(z):+.2f}, sd {np.std(z, ddof=1):.2f} (ideal 0, 1)")
     return frac
 
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--seeds", type=int, default=200, help="records in the recovery check")
+    parser.add_argument("--seeds", type=int, default=600, help="records in the recovery check")
     parser.add_argument("--plateau-seeds", type=int, default=40, help="scans in the plateau check")
     args = parser.parse_args()
     bench_record()
