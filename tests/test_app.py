@@ -608,3 +608,31 @@ def test_jobs_interrupted_too_often_are_failed(troubled_lab):
 def test_signed_record_is_canonical_json(lab, issued):
     entry = lab.services.archive.signed_entry(issued["certificate_id"])
     assert sha256_hex(canonical_json(entry["entry"])) == entry["sha256"]
+
+
+def test_command_line_verify_and_reproduce(lab, issued, tmp_path, capsys):
+    from service.cli import main as cli_main
+
+    instance = lab.app.instance_path
+    cert = issued["certificate_id"]
+    assert cli_main(["verify", cert, "--instance", instance]) == 0
+    assert "valid" in capsys.readouterr().out
+    # An exported signed entry checks offline against the lab's published key.
+    exported = tmp_path / f"{cert}-signed.json"
+    exported.write_bytes(
+        lab.client().get(f"/api/certificates/{cert}/signed", headers=lab.headers("aude")).data
+    )
+    key_file = tmp_path / "lab.pem"
+    key_file.write_text(lab.client().get("/api/public-key").get_json()["public_key_pem"])
+    assert cli_main(["verify", str(exported), "--public-key", str(key_file)]) == 0
+    capsys.readouterr()
+    tampered = exported.read_text().replace('"unit": "K"', '"unit": "mK"', 1)
+    assert tampered != exported.read_text()
+    exported.write_text(tampered)
+    assert cli_main(["verify", str(exported), "--public-key", str(key_file)]) == 1
+    out = capsys.readouterr().out
+    assert "FAIL" in out and "does not match" in out
+    assert cli_main(["verify", "--all", "--instance", instance]) == 0
+    assert cli_main(["verify", "CC-1999-99999", "--instance", instance]) == 2
+    assert cli_main(["reproduce", cert, "--instance", instance]) == 0
+    assert "identical bit for bit" in capsys.readouterr().out
