@@ -19,6 +19,7 @@ CHARGING_ENERGY_K = 7.2e-3
 G_T = M / (N * R_T)
 TEMPERATURES_K = (0.015, 0.030, 0.060, 0.120, 0.250)
 EXCITATION_RMS_V = 4e-6
+RESISTANCE_SPREAD = 0.03  # relative standard deviation of R_T, as stated in run.toml [device]
 
 
 def main() -> None:
@@ -27,6 +28,7 @@ def main() -> None:
         bias, g, _ = simulate_sweep(
             N, T, CHARGING_ENERGY_K, G_T, seed=1000 + k, points=401, range_half_widths=5.0,
             relative_noise=1.5e-4, excitation_rms_V=EXCITATION_RMS_V, bias_offset=2.0e-6,
+            resistance_spread=RESISTANCE_SPREAD,
         )
         name = HERE / f"sweep_{k + 1:02d}_{T * 1e3:.0f}mK.csv"
         with open(name, "w", encoding="utf-8") as fh:

@@ -28,6 +28,11 @@ from analysis.constants import BOLTZMANN, ELEMENTARY_CHARGE
 #: in tests by root finding.
 HALF_WIDTH_FACTOR = 5.439169905
 
+#: Junction non-uniformity narrows the dip: FWHM × (1 − 0.7343 σ_R²), σ_R the relative spread of
+#: the junction resistances (first order; PHYSICS.md 1.4, derived, checked there by an exact master
+#: equation at N = 2: −0.738; error ∝ variance: Pekola et al., arXiv:2112.13830 (2021)).
+NON_UNIFORMITY_WIDTH_COEFFICIENT = 0.7343
+
 #: Width correction coefficient: V_1/2 = 5.439 N k_B T/e (1 + 0.3921 ΔG/G_T),
 #: Farhangfar et al., J. Low Temp. Phys. 108, 191 (1997).
 WIDTH_CORRECTION = 0.3921

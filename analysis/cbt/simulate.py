@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from analysis.cbt.models import (
+    NON_UNIFORMITY_WIDTH_COEFFICIENT,
     DipShape,
     SweepSetup,
     forward_conductance,
@@ -26,9 +27,13 @@ def simulate_sweep(
     excitation_rms_V: float = 0.0,
     bias_offset: float = 0.0,
     background_slope: float = 0.0,
+    resistance_spread: float = 0.0,
     shape: DipShape = higher_order_shape,
 ) -> tuple[np.ndarray, np.ndarray, SweepSetup]:
     """A sweep with white Gaussian noise of ``relative_noise`` × G_T on every point.
+
+    ``resistance_spread`` σ_R narrows the dip by the first-order factor (1 − 0.7343 σ_R²)
+    (PHYSICS.md 1.4, derived) while leaving its depth unchanged, as non-uniform junctions do.
 
     The bias grid spans ±``range_half_widths`` V_1/2 about the offset. Returns bias (V),
     conductance (S) and the setup used.
@@ -37,9 +42,10 @@ def simulate_sweep(
     setup = SweepSetup(junctions_in_series, excitation_rms_V)
     vh = half_width_voltage(temperature, junctions_in_series, shape, charging_energy)
     bias = bias_offset + np.linspace(-range_half_widths * vh, range_half_widths * vh, points)
+    narrowing = 1.0 - NON_UNIFORMITY_WIDTH_COEFFICIENT * resistance_spread**2
     g = forward_conductance(
-        shape, bias, setup, temperature, charging_energy, asymptotic_conductance, bias_offset,
-        background_slope,
+        shape, bias_offset + (bias - bias_offset) / narrowing, setup, temperature, charging_energy,
+        asymptotic_conductance, bias_offset, background_slope,
     )
     g = g + relative_noise * asymptotic_conductance * rng.standard_normal(points)
     return bias, g, setup

@@ -18,11 +18,7 @@ import numpy as np
 
 from analysis.budget import Budget, BudgetRow, combine, standard_uncertainty_from_half_width
 from analysis.cbt.fit import SweepData, SweepFit, fwhm_volts, least_squares_fit
-from analysis.cbt.models import DipShape, SweepSetup
-
-#: FWHM × (1 − c σ²) for junction-resistance spread σ (relative standard deviation), first order;
-#: derived in PHYSICS.md 1.4 (checked there by an exact master equation at N = 2: −0.738).
-NON_UNIFORMITY_WIDTH_COEFFICIENT = 0.7343
+from analysis.cbt.models import NON_UNIFORMITY_WIDTH_COEFFICIENT, DipShape, SweepSetup
 
 
 @dataclass(frozen=True)
