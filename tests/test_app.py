@@ -636,3 +636,67 @@ def test_command_line_verify_and_reproduce(lab, issued, tmp_path, capsys):
     assert cli_main(["verify", "CC-1999-99999", "--instance", instance]) == 2
     assert cli_main(["reproduce", cert, "--instance", instance]) == 0
     assert "identical bit for bit" in capsys.readouterr().out
+
+
+def _session(lab, username: str):
+    from tests.service_support import PASSWORD
+
+    client = lab.client()
+    page = client.get("/login").data
+    token = re.search(rb'name="csrf_token" value="([^"]+)"', page).group(1).decode()
+    reply = client.post(
+        "/login", data={"username": username, "password": PASSWORD, "csrf_token": token}
+    )
+    assert reply.status_code == 302
+    home = client.get("/")
+    csrf = re.search(rb'name="csrf_token" value="([^"]+)"', home.data).group(1).decode()
+    return client, csrf
+
+
+def test_pages_for_each_step(lab, issued):
+    cert = issued["certificate_id"]
+    client, csrf = _session(lab, "olga")
+    # A refused upload comes back to the form with the reason, naming the file.
+    reply = client.post(
+        "/upload",
+        data={"csrf_token": csrf, "files": [(io.BytesIO(b""), "sweep.csv")]},
+        content_type="multipart/form-data",
+        follow_redirects=True,
+    )
+    assert b"Upload refused" in reply.data and b"sweep.csv" in reply.data
+    reply = client.post(
+        "/upload",
+        data={"csrf_token": csrf, "files": [(io.BytesIO(d), n) for n, d in small_run_files()]},
+        content_type="multipart/form-data",
+    )
+    assert reply.status_code == 303 and "/runs/run-" in reply.headers["Location"]
+    run_page = client.get(reply.headers["Location"])
+    assert b"job-bar" in run_page.data and b"sweep_03_60mK.csv" in run_page.data
+    listing = client.get(f"/certificates?q={cert}&state=&kind=cbt_thermometry")
+    assert cert.encode() in listing.data
+    page = client.get(f"/certificates/{cert}")
+    assert page.status_code == 200 and b'id="download-pdf"' in page.data
+    assert b'id="issue"' not in page.data  # operators cannot issue
+    assert client.get("/certificates/CC-1999-00000").status_code == 404
+
+    auditor, csrf = _session(lab, "aude")
+    verify_page = auditor.get(f"/certificates/{cert}/verify")
+    assert b'id="verdict" class="ok"' in verify_page.data
+    reply = auditor.post(f"/certificates/{cert}/reproduce", data={"csrf_token": csrf})
+    assert reply.status_code == 303 and "/jobs/job-" in reply.headers["Location"]
+    assert b"job-status" in auditor.get(reply.headers["Location"]).data
+    assert b"certificate.issued" in auditor.get("/audit").data
+
+    admin, csrf = _session(lab, "adam")
+    reply = admin.post(
+        "/users",
+        data={
+            "csrf_token": csrf,
+            "username": "gus",
+            "roles": ["auditor"],
+            "password": "a long enough password",
+        },
+    )
+    assert b"User added." in reply.data and b"gus" in reply.data
+    reply = admin.post("/users", data={"csrf_token": csrf, "action": "token", "username": "gus"})
+    assert re.search(rb'id="new-token">cct_', reply.data)
