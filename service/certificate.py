@@ -213,6 +213,8 @@ def render_html(record: dict, plots: dict[str, str] | None = None, extra_section
         "<p class=small>The expanded uncertainty is the combined standard uncertainty multiplied by the "
         "coverage factor k from Student's t at the effective degrees of freedom (JCGM 100:2008).</p>"
     )
+    for section in extra_sections or []:
+        parts.append(section)
     for r in record["results"]:
         parts.append(f"<h3>Budget: {_e(r['name'])} — {_e(r.get('sweep', ''))}</h3>")
         if "budget" in r:
@@ -251,9 +253,9 @@ def render_html(record: dict, plots: dict[str, str] | None = None, extra_section
             "<table><tr><th>sweep</th><th>independent ΔE/k_B (mK)</th><th>σ(T) independent / global</th></tr>"
             f"{rows}</table>"
         )
-    for s in extra_sections or []:
-        parts.append(s)
+
     parts.append("<h2>Conditions of measurement</h2>")
+    parts.append(_kv_table({k: v for k, v in record["conditions"].items() if k != "sweeps"}))
     for sw in record["conditions"].get("sweeps", []):
         parts.append(_kv_table(sw))
     parts.append("<h2>Deviations and assumptions</h2><ul>" + "".join(f"<li>{_e(d)}</li>" for d in record["deviations"]) + "</ul>"
