@@ -102,18 +102,36 @@ def canonical_json(obj: Any) -> bytes:
     """
     _check_finite(obj, "$")
     try:
-        text = json.dumps(
-            obj, sort_keys=True, ensure_ascii=False, separators=(",", ":"), allow_nan=False
-        )
+        return _dumps(obj)
     except TypeError as exc:
         raise ValueError(f"record is not plain JSON data: {exc}") from None
-    return text.encode("utf-8")
+
+
+def _dumps(obj: Any) -> bytes:
+    # The canonical form itself; allow_nan=False still refuses NaN/inf, without naming the path.
+    return json.dumps(
+        obj, sort_keys=True, ensure_ascii=False, separators=(",", ":"), allow_nan=False
+    ).encode("utf-8")
+
+
+def _refuse_constant(name: str) -> float:
+    raise ValueError(f"{name} is not allowed in a canonical record")
+
+
+def parse_record(data: bytes | str) -> Any:
+    """Parse stored canonical JSON (refusing NaN/Infinity tokens that json.loads would accept)."""
+    return json.loads(data, parse_constant=_refuse_constant)
 
 
 def _check_finite(obj: Any, path: str) -> None:
-    if isinstance(obj, float):
+    kind = type(obj)
+    if kind is str or kind is int or kind is bool or obj is None:
+        return
+    if kind is float:
         if not math.isfinite(obj):
             raise ValueError(f"record field {path} is {obj!r}; JSON records cannot hold NaN/inf")
+    elif isinstance(obj, float):
+        _check_finite(float(obj), path)
     elif isinstance(obj, Mapping):
         for key, value in obj.items():
             if not isinstance(key, str):
@@ -198,7 +216,15 @@ def _write_exclusive(path: Path, data: bytes, mode: int) -> None:
 def verify_signature(public_raw: bytes, data: bytes, signature_hex: str) -> bool:
     """True if ``signature_hex`` is a valid Ed25519 signature of ``data`` (RFC 8032 5.1.7)."""
     try:
-        Ed25519PublicKey.from_public_bytes(public_raw).verify(bytes.fromhex(signature_hex), data)
+        public = Ed25519PublicKey.from_public_bytes(public_raw)
+    except ValueError:
+        return False
+    return _signature_ok(public, data, signature_hex)
+
+
+def _signature_ok(public: Ed25519PublicKey, data: bytes, signature_hex: str) -> bool:
+    try:
+        public.verify(bytes.fromhex(signature_hex), data)
     except (InvalidSignature, ValueError):
         return False
     return True
@@ -367,6 +393,7 @@ class Archive:
         self.number_prefix = number_prefix
         # Keys the lab used before a key rotation still verify their old entries.
         self.public_keys = {key.key_id: key.public_raw}
+        self._public_key_objects: dict[str, Ed25519PublicKey] = {}
         for raw in trusted_public_keys:
             self.public_keys[sha256_hex(raw)[:16]] = raw
 
@@ -869,7 +896,9 @@ class Archive:
 
     # ---- verify -----------------------------------------------------------------------------
 
-    def _check_entry(self, row, expected_previous: str, expected_sequence: int) -> list[Check]:
+    def _check_entry(
+        self, row, expected_previous: str, expected_sequence: int
+    ) -> tuple[list[Check], dict[str, Any] | None]:
         label = f"chain entry {row.sequence} ({row.entry_type} of {row.certificate_id})"
         checks = []
         data = row.entry_json.encode("utf-8")
@@ -885,14 +914,17 @@ class Archive:
             )
         )
         try:
-            entry = json.loads(data)
-            canonical = canonical_json(entry) == data
-        except ValueError:
+            entry = parse_record(data)
+            canonical = _dumps(entry) == data
+        except (ValueError, TypeError):
             entry, canonical = None, False
         if not canonical:
             checks.append(Check("canonical", False, f"{label}: stored text is not canonical JSON"))
-        public = self.public_keys.get(row.key_id)
-        signed = public is not None and verify_signature(public, data, row.signature)
+        public = self._public_key_objects.get(row.key_id)
+        if public is None and row.key_id in self.public_keys:
+            public = Ed25519PublicKey.from_public_bytes(self.public_keys[row.key_id])
+            self._public_key_objects[row.key_id] = public
+        signed = public is not None and _signature_ok(public, data, row.signature)
         checks.append(
             Check(
                 "signature",
@@ -926,10 +958,16 @@ class Archive:
                     f"position {expected_sequence}",
                 )
             )
-        return checks
+        return checks, entry
 
-    def verify_chain(self, upto: int | None = None) -> list[Check]:
-        """Check every chain entry from the first up to ``upto`` (all if None)."""
+    def verify_chain(
+        self, upto: int | None = None, files_out: list[tuple[str, list]] | None = None
+    ) -> list[Check]:
+        """Check every chain entry from the first up to ``upto`` (all if None).
+
+        If ``files_out`` is given, the raw-file lists of the issue entries are appended to it, so
+        that a whole-archive check parses each entry only once.
+        """
         query = select(st.chain).order_by(st.chain.c.sequence)
         if upto is not None:
             query = query.where(st.chain.c.sequence <= upto)
@@ -940,7 +978,14 @@ class Archive:
             for row in conn.execute(query):
                 if row.sequence != expected:
                     checks.append(Check("chain", False, f"chain entry {expected} is missing"))
-                checks.extend(self._check_entry(row, previous, expected))
+                entry_checks, entry = self._check_entry(row, previous, expected)
+                checks.extend(entry_checks)
+                if files_out is not None and entry is not None and row.entry_type == "issue":
+                    body = entry.get("body") or {}
+                    files = list((body.get("run") or {}).get("files") or [])
+                    if body.get("plots_sha256"):
+                        files.append({"name": "plots", "sha256": body["plots_sha256"]})
+                    files_out.append((row.certificate_id, files))
                 previous, expected = row.sha256, row.sequence + 1
         if upto is not None and expected <= upto:
             checks.append(Check("chain", False, f"chain ends at {expected - 1}, before {upto}"))
@@ -1075,18 +1120,13 @@ class Archive:
 
     def verify_all(self) -> tuple[bool, list[Check]]:
         """The whole chain plus every raw file it names (each blob hashed once)."""
-        checks = [c for c in self.verify_chain() if not c.ok]
+        named: list[tuple[str, list]] = []
+        checks = [c for c in self.verify_chain(files_out=named) if not c.ok]
         cache: dict[str, str | None] = {}
-        with self.storage.read() as conn:
-            rows = conn.execute(
-                select(st.chain.c.entry_json).where(st.chain.c.entry_type == "issue")
-            ).all()
-        for row in rows:
-            try:
-                files = json.loads(row.entry_json)["body"]["run"]["files"]
-            except (ValueError, KeyError):
-                continue
-            checks.extend(c for c in self._check_files(files, cache) if not c.ok)
+        for certificate_id, files in named:
+            for check in self._check_files(files, cache):
+                if not check.ok:
+                    checks.append(Check(check.what, False, f"{certificate_id}: {check.detail}"))
         return (not checks), checks
 
     # ---- reproduce --------------------------------------------------------------------------
