@@ -10,6 +10,7 @@ import argparse
 import getpass
 import json
 import os
+import signal
 import sys
 from pathlib import Path
 
@@ -103,6 +104,12 @@ def _serve(args: argparse.Namespace) -> int:
     print(f"coldcert: instance {app.instance_path}", file=sys.stderr)
     print(f"coldcert: lab public key {services.key.key_id}", file=sys.stderr)
     print(f"coldcert: serving on http://{args.host}:{args.port}/", file=sys.stderr)
+
+    def _terminate(_signum, _frame):
+        # SIGTERM (service managers, kill) stops like Ctrl-C: workers are told to finish first.
+        raise KeyboardInterrupt
+
+    signal.signal(signal.SIGTERM, _terminate)
     try:
         app.run(host=args.host, port=args.port, threaded=True, use_reloader=False)
     finally:

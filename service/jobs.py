@@ -353,9 +353,11 @@ def worker_main(settings: WorkerSettings, stop: Any) -> None:
     certify = import_string(settings.certify)
     load_run = import_string(settings.load_run)
     worker = f"{_host_id()}:{os.getpid()}:{uuid.uuid4().hex[:8]}"
+    # A worker whose service was killed outright (no chance to set ``stop``) must not linger.
+    parent = multiprocessing.parent_process()
     last_recovery = 0.0
     try:
-        while not stop.is_set():
+        while not stop.is_set() and (parent is None or parent.is_alive()):
             job = claim(storage, worker)
             if job is None:
                 if time.monotonic() - last_recovery > STALE_AFTER_SECONDS / 4:
