@@ -23,6 +23,9 @@ from dataclasses import dataclass
 from pathlib import Path, PurePosixPath
 from typing import Any
 
+from sqlalchemy import select
+
+from service import storage as st
 from service.archive import Archive
 from service.jobs import enqueue, new_id
 from service.storage import Storage
@@ -267,10 +270,6 @@ def accept_run(
     run_id = new_id("run")
     with storage.write() as conn:
         if replaces:
-            from sqlalchemy import select
-
-            from service import storage as st
-
             old = conn.execute(
                 select(st.certificates.c.state).where(st.certificates.c.id == replaces)
             ).first()
