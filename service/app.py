@@ -41,7 +41,8 @@ DEFAULTS: dict[str, Any] = {
     # Keyword options passed to the analysis and recorded with each certificate ({"fast": True}
     # selects the short MCMC settings meant for tests and quick looks).
     "ANALYSIS_OPTIONS": {},
-    "LAB_NAME": "coldcert laboratory",
+    # Public keys (hex) of lab keys used before a key change, so their entries still verify.
+    "TRUSTED_PUBLIC_KEYS": (),
     "SESSION_COOKIE_HTTPONLY": True,
     "SESSION_COOKIE_SAMESITE": "Lax",
 }
@@ -103,7 +104,16 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     storage = Storage(database_url, instance / "blobs")
     storage.create_schema()
     key = LabKey.load_or_create(instance / "keys")
-    archive = Archive(storage, key, number_prefix=app.config["CERTIFICATE_PREFIX"])
+    try:
+        trusted = [bytes.fromhex(h) for h in app.config.get("TRUSTED_PUBLIC_KEYS", ())]
+    except ValueError:
+        raise ValueError("TRUSTED_PUBLIC_KEYS must list Ed25519 public keys as hex") from None
+    archive = Archive(
+        storage,
+        key,
+        number_prefix=app.config["CERTIFICATE_PREFIX"],
+        trusted_public_keys=trusted,
+    )
     settings = WorkerSettings(
         database_url=database_url,
         blob_root=str(instance / "blobs"),

@@ -424,3 +424,19 @@ def test_compare_numbers_counts_missing_and_null():
     )
     assert count == 4
     assert {m.path for m in mismatches} == {"b", "c[1]"}
+
+
+def test_key_change_keeps_old_entries_verifiable(lab, tmp_path):
+    first = lab.draft()
+    lab.archive.issue(first, lab.people["arno"])
+    new_key = LabKey.load_or_create(tmp_path / "new-keys")
+    forgetful = Archive(lab.storage, new_key)
+    problems = " ".join(forgetful.verify(first).as_dict()["problems"])
+    assert "key unknown to this archive" in problems
+    rotated = Archive(lab.storage, new_key, trusted_public_keys=[lab.key.public_raw])
+    assert rotated.verify(first).valid
+    second = lab.draft(seed=5)
+    rotated.issue(second, lab.people["bea"])
+    assert rotated.signed_entry(second)["entry"]["key_id"] == new_key.key_id
+    ok, problems = rotated.verify_all()
+    assert ok, problems
