@@ -125,7 +125,8 @@ class SweepWork:
 
 
 def fit_file(f, seed: int, settings: FitSettings, shape: DipShape,
-             progress: Progress | None = None, heating: HeatingModel | None = None) -> SweepWork:
+             progress: Progress | None = None, heating: HeatingModel | None = None,
+             background: bool = False) -> SweepWork:
     """Fit one accepted sweep file independently; applies the certification rules."""
     bias, g = check_cbt_sweep(f)
     md = f.metadata
@@ -134,7 +135,7 @@ def fit_file(f, seed: int, settings: FitSettings, shape: DipShape,
     if rs:
         bias, g = correct_series_resistance(bias, g, rs)
     sigma = f.columns.get("conductance_uncertainty_S")
-    data = SweepData(bias, g, setup, conductance_uncertainty=sigma)
+    data = SweepData(bias, g, setup, conductance_uncertainty=sigma, background=background)
     if heating is not None:
         # R_T of one junction from the asymptote: G_T = M/(N R_T).
         r_t = md.get("parallel_rows", 1) / (setup.junctions_in_series * estimate_asymptote(data))
@@ -303,6 +304,9 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
     p = manifest_number(manifest, "run.coverage_probability", 0.95, 0.5, 0.9999)
     inputs = type_b_inputs(manifest, p)
     heating, coupling_u = heating_model(manifest)
+    background = manifest.get("run", {}).get("linear_background", False)
+    if not isinstance(background, bool):
+        raise IntakeError("expected true or false", file="run.toml", field="run.linear_background")
     inputs = replace(inputs, coupling_relative_u=coupling_u)
     settings = fit_settings(manifest, fast)
     sweeps = [f for f in run.files if is_cbt_sweep(f)]
@@ -314,7 +318,7 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
             if progress:
                 progress(0.95 * (k + frac) / len(sweeps), f"{name}: {step}")
 
-        works.append(fit_file(f, seed + k, settings, shape, sub, heating))
+        works.append(fit_file(f, seed + k, settings, shape, sub, heating, background))
     notes: list[str | None] = [None] * len(works)
     if one_device(works):
         if progress:

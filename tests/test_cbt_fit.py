@@ -88,3 +88,14 @@ def test_sampler_needs_a_seed_and_reports_nonconvergence():
     ok = sample_posterior(lp, np.zeros(2), 1, scale=np.ones(2), block=200, max_steps=20000)
     assert ok.converged
     assert ok.std() == pytest.approx([1, 1], rel=0.1)
+
+
+def test_linear_background_is_fitted_when_asked():
+    # A sloped background (common in two-wire set-ups; common practice, no source) biases a fit that
+    # ignores it; the optional linear background term of the model removes the bias.
+    T = 0.05
+    bias, g, setup = simulate_sweep(33, T, 0.01, 3e-6, seed=21, background_slope=20.0, relative_noise=1e-4)
+    s = FitSettings(walkers=12, block=100, max_steps=3000, min_tau_multiple=20, tau_tolerance=0.2)
+    with_bg = fit_sweep(SweepData(bias, g, setup, background=True), seed=1, settings=s)
+    assert abs(with_bg.temperature - T) < 3 * with_bg.temperature_std
+    assert with_bg.background_slope == pytest.approx(20.0, rel=0.05)

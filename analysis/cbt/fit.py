@@ -175,7 +175,11 @@ def initial_guess(data: SweepData) -> np.ndarray:
     v, g = v[order], g[order]
     n = v.size
     edge = max(3, n // 10)
-    gt = 0.5 * (np.median(g[:edge]) + np.median(g[-edge:]))
+    # Baseline through the two edges (a straight line, so a sloped background does not fool it).
+    gl, gr = np.median(g[:edge]), np.median(g[-edge:])
+    vl, vr = np.median(v[:edge]), np.median(v[-edge:])
+    gt = 0.5 * (gl + gr)
+    g = g / (1.0 + (gr - gl) / gt / (vr - vl) * (v - 0.5 * (vl + vr)))
     kernel = max(1, n // 50)
     smooth = np.convolve(g, np.ones(kernel) / kernel, mode="same")
     inner = slice(edge, n - edge)
