@@ -382,6 +382,11 @@ def test_amendment_and_withdrawal_over_the_api(lab, issued):
     assert new["record"]["replaces"] == cert
     xml = client.get(f"/api/certificates/{amended}/xml", headers=lab.headers("aude")).data
     assert b"<dcc:replacedUniqueIdentifier>" + cert.encode() in xml
+    html = client.get(f"/api/certificates/{amended}/html", headers=lab.headers("aude")).data
+    assert f"replaces certificate {cert}".encode() in html
+    assert b"customer renamed their group" in html
+    old_html = client.get(f"/api/certificates/{cert}/html", headers=lab.headers("aude")).data
+    assert f"Superseded by certificate {amended}".encode() in old_html
     for c in (cert, amended):
         assert client.get(f"/api/certificates/{c}/verify", headers=lab.headers("aude")).get_json()[
             "valid"
