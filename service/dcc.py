@@ -232,6 +232,10 @@ def render_dcc(record: Mapping[str, Any]) -> bytes:
         statements.append(
             f"This revision replaces {record.get('replaces')}: {record['amendment_reason']}"
         )
+    if record.get("state") == "superseded":
+        statements.append(f"Superseded by certificate {record.get('superseded_by')}; do not use.")
+    if record.get("state") == "withdrawn":
+        statements.append(f"Withdrawn: {record.get('withdrawn_reason') or ''}; do not use.")
     if statements:
         statement_list = _el(admin, "dcc:statements")
         for text in statements:

@@ -387,6 +387,8 @@ def test_amendment_and_withdrawal_over_the_api(lab, issued):
     assert b"customer renamed their group" in html
     old_html = client.get(f"/api/certificates/{cert}/html", headers=lab.headers("aude")).data
     assert f"Superseded by certificate {amended}".encode() in old_html
+    old_xml = client.get(f"/api/certificates/{cert}/xml", headers=lab.headers("aude")).data
+    assert f"Superseded by certificate {amended}".encode() in old_xml
     for c in (cert, amended):
         assert client.get(f"/api/certificates/{c}/verify", headers=lab.headers("aude")).get_json()[
             "valid"
