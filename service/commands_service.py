@@ -12,6 +12,7 @@ import json
 import os
 import signal
 import sys
+import threading
 from pathlib import Path
 
 from service.cli import CommandError
@@ -52,6 +53,16 @@ def add_commands(subparsers: argparse._SubParsersAction) -> None:
         help="short MCMC settings (for trying the service out; recorded on each certificate)",
     )
     p.set_defaults(handler=_serve)
+
+    p = subparsers.add_parser(
+        "work",
+        help="run analysis worker processes only (no web server), e.g. on another machine "
+        "sharing the database and the instance folder",
+    )
+    _add_instance(p)
+    p.add_argument("--processes", type=int, default=1, help="worker processes (default 1)")
+    p.add_argument("--quick", action="store_true", help="short MCMC settings")
+    p.set_defaults(handler=_work)
 
     p = subparsers.add_parser("add-admin", help="create an administrator account")
     _add_instance(p)
@@ -112,6 +123,31 @@ def _serve(args: argparse.Namespace) -> int:
     signal.signal(signal.SIGTERM, _terminate)
     try:
         app.run(host=args.host, port=args.port, threaded=True, use_reloader=False)
+    finally:
+        services.stop_workers()
+    return 0
+
+
+def _work(args: argparse.Namespace) -> int:
+    options = {"fast": True} if args.quick else {}
+    app = _app(args, ANALYSIS_OPTIONS=options)
+    services = app.extensions["coldcert"]
+    stop = threading.Event()
+
+    def _terminate(_signum, _frame):
+        stop.set()
+
+    signal.signal(signal.SIGTERM, _terminate)
+    signal.signal(signal.SIGINT, _terminate)
+    pool = services.start_workers(args.processes)
+    print(
+        f"coldcert: {args.processes} worker process(es) {pool.pids} on {app.instance_path}",
+        file=sys.stderr,
+        flush=True,
+    )
+    try:
+        while not stop.wait(1.0):
+            pass
     finally:
         services.stop_workers()
     return 0

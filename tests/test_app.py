@@ -599,6 +599,8 @@ def test_pages_for_each_step(lab, issued):
     assert reply.status_code == 303 and "/jobs/job-" in reply.headers["Location"]
     assert b"job-status" in auditor.get(reply.headers["Location"]).data
     assert b"certificate.issued" in auditor.get("/audit").data
+    whole = auditor.get("/audit?verify=all").data
+    assert b'id="archive-verdict" class="ok"' in whole
 
     admin, csrf = _session(lab, "adam")
     reply = admin.post(

@@ -105,3 +105,40 @@ def test_jobs_interrupted_too_often_are_failed(troubled_lab):
         lab.client().get(f"/api/jobs/{upload['job_id']}", headers=lab.headers("olga")).get_json()
     )
     assert status["status"] == "failed" and "interrupted 3 times" in status["error"]
+
+
+def test_separate_worker_command_runs_queued_jobs(tmp_path):
+    """``coldcert work`` (a process of its own, as on another machine) takes jobs from the queue."""
+    import signal
+    import subprocess
+    import sys
+
+    lab = make_lab(tmp_path)  # the web side: accepts the upload, starts no workers
+    client = lab.client()
+    upload = lab.upload(client).get_json()
+    worker = subprocess.Popen(
+        [
+            sys.executable,
+            "-m",
+            "service.cli",
+            "work",
+            "--quick",
+            "--instance",
+            lab.app.instance_path,
+        ],
+        stderr=subprocess.PIPE,
+        text=True,
+    )
+    try:
+        job = lab.wait(client, upload["job_id"], timeout=180)
+        assert job["status"] == "done", job["error"]
+        assert job["certificate_id"]
+    finally:
+        worker.send_signal(signal.SIGTERM)
+        try:
+            worker.wait(timeout=30)
+        except subprocess.TimeoutExpired:  # pragma: no cover - reported below
+            worker.kill()
+            raise
+    assert worker.returncode == 0
+    assert "worker process(es)" in worker.stderr.read()
