@@ -111,6 +111,8 @@ def test_upload_to_issued_journey(browser, served, tmp_path):
     driver.find_element(By.ID, "files").send_keys("\n".join(paths))
     driver.find_element(By.ID, "submit-run").click()
     _wait_for(lambda: "/runs/" in driver.current_url, 30, "the run page")
+    # The page opens while the fit is still queued or running, so what follows is the live update.
+    assert driver.find_element(By.CSS_SELECTOR, ".job-status").text in ("queued", "running")
     widths = set()
 
     def finished():
