@@ -4,6 +4,7 @@
 from __future__ import annotations
 
 import json
+import mimetypes
 import os
 from html import escape
 from pathlib import Path
@@ -287,6 +288,22 @@ def get_rendering(certificate_id: str, fmt: str):
         f"{'inline' if fmt == 'html' else 'attachment'}; "
         f'filename="{certificate_id}{suffix}.{extension}"'
     )
+    return response
+
+
+@bp.get("/certificates/<certificate_id>/files/<name>")
+@roles_required(*READERS)
+def get_output_file(certificate_id: str, name: str):
+    """An output file of the analysis kept with the certificate (e.g. calibration_table.csv)."""
+    info = services().archive.get(certificate_id)
+    entry = info["extra_files"].get(name)
+    if entry is None:
+        names = ", ".join(sorted(info["extra_files"])) or "none"
+        return error(404, f"{certificate_id} has no output file {name!r} (it has: {names})")
+    data = services().storage.blobs.get(entry["sha256"])
+    media = mimetypes.guess_type(name)[0] or "application/octet-stream"
+    response = Response(data, mimetype=media)
+    response.headers["Content-Disposition"] = f'attachment; filename="{certificate_id}-{name}"'
     return response
 
 

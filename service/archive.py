@@ -290,6 +290,7 @@ class ReproduceReport:
     software_recorded: dict[str, str]
     software_now: dict[str, str]
     skipped_paths: tuple[str, ...] = field(default_factory=tuple)
+    files_compared: int = 0
 
     @property
     def same_software(self) -> bool:
@@ -301,6 +302,7 @@ class ReproduceReport:
             "seed": self.seed,
             "identical": self.identical,
             "numbers_compared": self.numbers_compared,
+            "files_compared": self.files_compared,
             "mismatches": [asdict(m) for m in self.mismatches],
             "software_recorded": self.software_recorded,
             "software_now": self.software_now,
@@ -500,6 +502,8 @@ class Archive:
         options: Mapping[str, Any] | None = None,
         plots: Mapping[str, str] | None = None,
         plots_sha256: str | None = None,
+        extra_files: Mapping[str, bytes] | None = None,
+        extras: Mapping[str, Mapping[str, Any]] | None = None,
     ) -> str:
         """Store a draft certificate made from an analysis record; return its id.
 
@@ -537,6 +541,11 @@ class Archive:
         if plots:
             plots_sha256 = self.storage.blobs.put(canonical_json(dict(plots)))
             self._register_blob(conn, plots_sha256)
+        extras = {name: dict(entry) for name, entry in (extras or {}).items()}
+        for name, data in sorted((extra_files or {}).items()):
+            digest = self.storage.blobs.put(data)
+            self._register_blob(conn, digest, len(data))
+            extras[name] = {"sha256": digest, "size": len(data)}
         conn.execute(
             st.certificates.insert().values(
                 id=cert_id,
@@ -551,6 +560,7 @@ class Archive:
                 software_json=json.dumps(dict(software), sort_keys=True),
                 options_json=json.dumps(dict(options or {}), sort_keys=True),
                 plots_sha256=plots_sha256,
+                extras_json=json.dumps(extras, sort_keys=True),
                 submitted_by=submitter["id"],
                 created_at=utc_now(),
                 replaces=replaces,
@@ -619,6 +629,7 @@ class Archive:
                 amendment_reason=reason,
                 options=json.loads(old.options_json),
                 plots_sha256=old.plots_sha256,
+                extras=json.loads(old.extras_json),
             )
         return new_id
 
@@ -725,6 +736,7 @@ class Archive:
                     "options": json.loads(row.options_json),
                 },
                 "plots_sha256": row.plots_sha256,
+                "extra_files": json.loads(row.extras_json),
                 "certificate": record,
             }
             sequence, digest = self._append(conn, "issue", certificate_id, body)
@@ -799,6 +811,7 @@ class Archive:
             record = json.loads(info.pop("record_json"))
             info["software"] = json.loads(info.pop("software_json"))
             info["options"] = json.loads(info.pop("options_json"))
+            info["extra_files"] = json.loads(info.pop("extras_json"))
             entry = None
             if row.sequence is not None:
                 chain_row = conn.execute(
@@ -983,9 +996,7 @@ class Archive:
                 if files_out is not None and entry is not None and row.entry_type == "issue":
                     body = entry.get("body") or {}
                     files = list((body.get("run") or {}).get("files") or [])
-                    if body.get("plots_sha256"):
-                        files.append({"name": "plots", "sha256": body["plots_sha256"]})
-                    files_out.append((row.certificate_id, files))
+                    files_out.append((row.certificate_id, files + _derived_files(body)))
                 previous, expected = row.sha256, row.sequence + 1
         if upto is not None and expected <= upto:
             checks.append(Check("chain", False, f"chain ends at {expected - 1}, before {upto}"))
@@ -1070,13 +1081,7 @@ class Archive:
                         )
                     )
                 checks.extend(self._check_files(signed_files, {}))
-                if body.get("plots_sha256"):
-                    checks.extend(
-                        self._check_files(
-                            [{"name": "plots of the certificate", "sha256": body["plots_sha256"]}],
-                            {},
-                        )
-                    )
+                checks.extend(self._check_files(_derived_files(body), {}))
                 db_record = json.loads(row.record_json)
                 same = canonical_json(db_record) == canonical_json(body.get("certificate"))
                 checks.append(
@@ -1144,27 +1149,58 @@ class Archive:
         with tempfile.TemporaryDirectory(prefix="coldcert-reproduce-") as tmp:
             folder = self.materialise_run(info["files"], Path(tmp) / "run")
             run = load_run(folder)
-            fresh, _plots = analysis_output(certify(run, info["seed"], progress, **info["options"]))
+            fresh, _plots, fresh_files = analysis_output(
+                certify(run, info["seed"], progress, **info["options"])
+            )
         skip = list(SERVICE_FIELDS) + ["dates.issued", "people.approver"]
         skip += list(record.get("corrected_fields") or [])
         count, mismatches = compare_numbers(record, fresh, skip)
+        # Output files (calibration tables, cycle lists) must come back byte for byte as well.
+        archived_files = {k: v["sha256"] for k, v in info["extra_files"].items()}
+        fresh_digests = {k: sha256_hex(v) for k, v in fresh_files.items()}
+        file_mismatches = tuple(
+            Mismatch(
+                f"file {name}",
+                archived_files.get(name, "absent"),
+                fresh_digests.get(name, "absent"),
+            )
+            for name in sorted(set(archived_files) | set(fresh_digests))
+            if archived_files.get(name) != fresh_digests.get(name)
+        )
+        mismatches = mismatches + file_mismatches
         return ReproduceReport(
             certificate_id=certificate_id,
             seed=info["seed"],
             identical=not mismatches,
             numbers_compared=count,
             mismatches=mismatches,
+            files_compared=len(set(archived_files) | set(fresh_digests)),
             software_recorded=info["software"],
             software_now=software_versions(),
             skipped_paths=tuple(skip),
         )
 
 
-def analysis_output(result: Any) -> tuple[dict[str, Any], dict[str, str]]:
-    """(record, plots) from what an analysis returns: a record dict or an object with both."""
+def analysis_output(result: Any) -> tuple[dict[str, Any], dict[str, str], dict[str, bytes]]:
+    """(record, plots, extra files) from what an analysis returns: a record dict, or an object
+    with ``record`` and optionally ``plots`` and ``extra_files``."""
     if isinstance(result, Mapping):
-        return dict(result), {}
-    return dict(result.record), dict(getattr(result, "plots", None) or {})
+        return dict(result), {}, {}
+    return (
+        dict(result.record),
+        dict(getattr(result, "plots", None) or {}),
+        dict(getattr(result, "extra_files", None) or {}),
+    )
+
+
+def _derived_files(body: Mapping[str, Any]) -> list[dict[str, Any]]:
+    """The stored outputs a signed entry names besides the raw files: plots and extra files."""
+    files = []
+    if body.get("plots_sha256"):
+        files.append({"name": "plots of the certificate", "sha256": body["plots_sha256"]})
+    for name, entry in sorted((body.get("extra_files") or {}).items()):
+        files.append({"name": f"output file {name}", "sha256": entry["sha256"]})
+    return files
 
 
 def verify_signed_document(

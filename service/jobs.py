@@ -261,7 +261,9 @@ def execute(
             with tempfile.TemporaryDirectory(prefix="coldcert-job-") as tmp:
                 folder = archive.materialise_run(files, Path(tmp) / "run")
                 loaded = load_run(folder)
-                record, plots = analysis_output(certify(loaded, run.seed, progress, **options))
+                record, plots, extra_files = analysis_output(
+                    certify(loaded, run.seed, progress, **options)
+                )
             progress(1.0, "writing the draft certificate")
             with storage.write() as conn:
                 cert_id = archive.create_draft(
@@ -275,6 +277,7 @@ def execute(
                     amendment_reason=run.amendment_reason,
                     options=options,
                     plots=plots,
+                    extra_files=extra_files,
                 )
                 _finish(conn, job["id"], worker, {"certificate_id": cert_id}, cert_id)
         elif job["purpose"] == "reproduce":

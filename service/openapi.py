@@ -178,6 +178,15 @@ def openapi_document() -> dict[str, Any]:
                     ],
                 )
             },
+            "/api/certificates/{certificate_id}/files/{name}": {
+                "get": _op(
+                    "An output file of the analysis kept with the certificate "
+                    "(e.g. calibration_table.csv); names listed in the certificate's extra_files",
+                    READERS,
+                    {"200": {"description": "the file"}, "404": _ERROR},
+                    parameters=[_CERT, _param("name")],
+                )
+            },
             "/api/certificates/{certificate_id}/issue": {
                 "post": _op(
                     "Issue a draft (an approver who did not submit it)",

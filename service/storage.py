@@ -144,6 +144,8 @@ certificates = Table(
     Column("options_json", Text, nullable=False, default="{}"),
     # Plots (SVG) of the draft, stored as a blob so renderings years later show the same figures.
     Column("plots_sha256", String(64), nullable=True),
+    # Further output files of the analysis (e.g. calibration_table.csv): name -> sha256, size.
+    Column("extras_json", Text, nullable=False, default="{}"),
     Column("submitted_by", Integer, ForeignKey("users.id"), nullable=False),
     Column("created_at", String(40), nullable=False),
     Column("replaces", String(60), nullable=True),

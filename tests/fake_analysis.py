@@ -2,12 +2,15 @@
 
 The run's manifest chooses the behaviour with ``[run] test_behaviour``: "fail" raises inside the
 fit, "crash_once" kills the worker process the first time (as a power cut or an OOM kill would)
-and works on the retry; anything else runs the real analysis.
+and works on the retry, "output_file" adds an output file derived from the result (as the sensor
+calibration adds its table), "unstable_output_file" one that differs on every run; anything else
+runs the real analysis.
 """
 
 from __future__ import annotations
 
 import os
+import time
 from pathlib import Path
 
 from service.certify import certify_run
@@ -26,4 +29,10 @@ def misbehaving_certify(run, seed, progress=None, **options):
             if progress:
                 progress(0.5, "halfway when the worker died")
             os._exit(17)
-    return certify_run(run, seed, progress, **options)
+    result = certify_run(run, seed, progress, **options)
+    if behaviour == "output_file":
+        value = result.record["results"][0]["value"]
+        result.extra_files["table.csv"] = f"temperature_K\n{value!r}\n".encode()
+    if behaviour == "unstable_output_file":
+        result.extra_files["table.csv"] = f"made_at\n{time.time_ns()}\n".encode()
+    return result

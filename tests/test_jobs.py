@@ -142,3 +142,54 @@ def test_separate_worker_command_runs_queued_jobs(tmp_path):
             raise
     assert worker.returncode == 0
     assert "worker process(es)" in worker.stderr.read()
+
+
+def test_output_files_are_kept_signed_verified_and_reproduced(troubled_lab):
+    from service.intake import load_run
+    from service.jobs import import_string
+    from service.storage import sha256_hex
+
+    lab = troubled_lab
+    client = lab.client()
+    upload = lab.upload(client, files=_with_behaviour("output_file")).get_json()
+    lab.services.start_workers(1)
+    job = lab.wait(client, upload["job_id"])
+    assert job["status"] == "done", job["error"]
+    cert = job["certificate_id"]
+    reply = client.get(f"/api/certificates/{cert}/files/table.csv", headers=lab.headers("olga"))
+    assert reply.status_code == 200
+    assert reply.headers["Content-Disposition"].endswith(f'filename="{cert}-table.csv"')
+    value = client.get(f"/api/certificates/{cert}", headers=lab.headers("olga")).get_json()[
+        "record"
+    ]["results"][0]["value"]
+    assert reply.data == f"temperature_K\n{value!r}\n".encode()
+    missing = client.get(f"/api/certificates/{cert}/files/other.csv", headers=lab.headers("olga"))
+    assert missing.status_code == 404 and "table.csv" in missing.get_json()["error"]
+    issued = client.post(f"/api/certificates/{cert}/issue", headers=lab.headers("arno"))
+    assert issued.status_code == 200, issued.get_json()
+    archive = lab.services.archive
+    body = archive.signed_entry(cert)["entry"]["body"]
+    assert body["extra_files"]["table.csv"]["sha256"] == sha256_hex(reply.data)
+    assert archive.verify(cert).valid
+    certify = import_string("tests.fake_analysis:misbehaving_certify")
+    report = archive.reproduce(cert, certify, load_run)
+    assert report.identical and report.files_compared == 1
+    # The stored output file is covered by verify like the raw files.
+    lab.services.storage.blobs.path(sha256_hex(reply.data)).write_bytes(b"temperature_K\n1\n")
+    problems = " ".join(archive.verify(cert).as_dict()["problems"])
+    assert "output file table.csv" in problems and "altered" in problems
+
+
+def test_reproduce_compares_output_files_byte_for_byte(troubled_lab):
+    from service.intake import load_run
+    from service.jobs import import_string
+
+    lab = troubled_lab
+    client = lab.client()
+    upload = lab.upload(client, files=_with_behaviour("unstable_output_file")).get_json()
+    lab.services.start_workers(1)
+    job = lab.wait(client, upload["job_id"])
+    certify = import_string("tests.fake_analysis:misbehaving_certify")
+    report = lab.services.archive.reproduce(job["certificate_id"], certify, load_run)
+    assert not report.identical
+    assert [m.path for m in report.mismatches] == ["file table.csv"]
