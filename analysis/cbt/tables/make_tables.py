@@ -1,0 +1,159 @@
+"""Generate the exact short-array conductance tables behind analysis.cbt.full_model.
+
+Run from the repository root (the tables take ~15 min on two cores, the validation points
+about as long):
+
+    .venv/bin/python -m analysis.cbt.tables.make_tables
+    .venv/bin/python -m analysis.cbt.tables.make_tables --validate
+
+For each chain length N = 2, 3, 4 (uniform junctions, C_0 = 0, no offset charge) it solves the
+orthodox master equation (analysis.cbt.tunnelling, PHYSICS.md 1.3) on a grid of reduced bias x
+and u = ΔE/(k_B T) and stores the reduced dip D_N(x, u) = (1 − G/G_T)/u, which tends to the
+first-order dip function g(x) of Pekola et al., PRL 73, 2903 (1994) as u → 0 (used as the u = 0
+row). The N = 4 solve is costly where the charge window is wide (small u, large x); there it is
+done only for x <= X4_MAX and u >= U4_MIN, and outside that region D_4 − D_3 is continued from
+the region's edge (scaled by (u/U4_MIN)^2 below it, by D_3(x)/D_3(X4_MAX) beyond it). Both
+continuations act on a difference that is itself below 1e-6 in G/G_T there (measured by the
+validation in tests/test_full_model.py and benchmarks/bench_full_model.py); the mask of exactly
+solved nodes is stored with the table.
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import time
+from concurrent.futures import ProcessPoolExecutor
+from pathlib import Path
+
+import numpy as np
+
+from analysis.cbt.models import dip_function
+from analysis.cbt.tunnelling import ArrayDescription, solve_master_equation
+
+TABLE_PATH = Path(__file__).with_name("short_arrays.npz")
+VALIDATION_PATH = Path(__file__).with_name("validation.npz")
+# Exact reference points off the tables, used to measure the long-array model's error: N = 5
+# (the extrapolation tested out of sample; the 4-island solve limits x at small u) and N = 4
+# where its table is a continuation rather than a solve (u < U4_MIN or x > X4_MAX).
+VALIDATION_POINTS = (
+    [(5, u, x) for u in (1.0, 1.5, 2.0) for x in (0.0, 1.4, 2.8, 4.2)]
+    + [(5, u, x) for u in (2.5, 3.0) for x in (0.0, 1.4, 2.8, 4.2, 6.0, 9.0)]
+    + [(5, 0.5, 0.0)]
+    + [(4, u, x) for u in (0.1, 0.3) for x in (0.0, 2.7, 5.0)]
+    + [(4, u, x) for u in (0.5, 1.0, 2.0, 3.0) for x in (14.0, 19.3, 25.0)]
+)
+X_NODES = np.concatenate(
+    (np.arange(0.0, 12.0, 0.2), np.arange(12.0, 20.0, 0.5), np.arange(20.0, 40.01, 1.0))
+)
+U_NODES = np.round(np.arange(0.0, 3.21, 0.1), 10)
+LENGTHS = (2, 3, 4)
+X4_MAX = 12.0
+U4_MIN = 0.5
+SIGMAS = 7.0
+
+logger = logging.getLogger(__name__)
+
+
+def _solve_row(task: tuple[int, float, np.ndarray]) -> tuple[int, float, np.ndarray, float, float]:
+    n, u, xs = task
+    array = ArrayDescription(n)
+    out = np.empty(len(xs))
+    worst_edge = 0.0
+    start = time.perf_counter()
+    for i, x in enumerate(xs):
+        sol = solve_master_equation(array, float(x), float(u), sigmas=SIGMAS)
+        out[i] = (1.0 - sol.conductance) / u
+        worst_edge = max(worst_edge, sol.boundary_probability)
+    return n, u, out, worst_edge, time.perf_counter() - start
+
+
+def build_tables(workers: int = 2) -> dict[str, np.ndarray]:
+    nx, nu = len(X_NODES), len(U_NODES)
+    tables = {n: np.full((nx, nu), np.nan) for n in LENGTHS}
+    for n in LENGTHS:
+        tables[n][:, 0] = dip_function(X_NODES)
+    solved4 = np.zeros((nx, nu), dtype=bool)
+    tasks = []
+    for n in LENGTHS:
+        for u in U_NODES[1:]:
+            if n == 4:
+                if u < U4_MIN - 1e-9:
+                    continue
+                xs = X_NODES[X_NODES <= X4_MAX + 1e-9]
+            else:
+                xs = X_NODES
+            tasks.append((n, float(u), xs))
+    # Expensive rows first so the pool stays busy to the end.
+    tasks.sort(key=lambda t: (-t[0], t[1]))
+    worst_edge = 0.0
+    with ProcessPoolExecutor(max_workers=workers) as pool:
+        for n, u, row, edge, seconds in pool.map(_solve_row, tasks):
+            j = int(np.argmin(np.abs(U_NODES - u)))
+            tables[n][: len(row), j] = row
+            if n == 4:
+                solved4[: len(row), j] = True
+            worst_edge = max(worst_edge, edge)
+            logger.info("N=%d u=%.2f done in %.1f s (edge probability %.1e)", n, u, seconds, edge)
+    # Continue D_4 − D_3 outside the exactly solved region (see module docstring).
+    d3, d4 = tables[3], tables[4]
+    ju = int(np.argmin(np.abs(U_NODES - U4_MIN)))
+    ix = int(np.argmin(np.abs(X_NODES - X4_MAX)))
+    diff = d4 - d3
+    for j in range(1, ju):
+        diff[: ix + 1, j] = diff[: ix + 1, ju] * (U_NODES[j] / U4_MIN) ** 2
+    diff[:, 0] = 0.0
+    for j in range(1, nu):
+        scale = d3[ix + 1 :, j] / d3[ix, j]
+        diff[ix + 1 :, j] = diff[ix, j] * scale
+    tables[4] = d3 + diff
+    return {
+        "x_nodes": X_NODES,
+        "u_nodes": U_NODES,
+        "lengths": np.array(LENGTHS),
+        "dip_2": tables[2],
+        "dip_3": tables[3],
+        "dip_4": tables[4],
+        "solved_4": solved4,
+        "window_sigmas": np.array(SIGMAS),
+        "worst_edge_probability": np.array(worst_edge),
+    }
+
+
+def _solve_point(task: tuple[int, float, float]) -> tuple[int, float, float, float, float]:
+    n, u, x = task
+    start = time.perf_counter()
+    sol = solve_master_equation(ArrayDescription(n), x, u, sigmas=SIGMAS)
+    logger.info("N=%d u=%.2f x=%.2f: G/G_T = %.12f (%d states, edge %.1e, %.0f s)", n, u, x,
+                sol.conductance, sol.n_states, sol.boundary_probability,
+                time.perf_counter() - start)
+    return n, u, x, sol.conductance, sol.boundary_probability
+
+
+def build_validation(workers: int = 2) -> dict[str, np.ndarray]:
+    # Cheapest first: the expensive N = 5 points at small u come last.
+    tasks = sorted(VALIDATION_POINTS, key=lambda t: (t[0] == 5, -t[1], t[2]))
+    with ProcessPoolExecutor(max_workers=workers) as pool:
+        rows = list(pool.map(_solve_point, tasks))
+    arr = np.array(rows)
+    return {"n": arr[:, 0].astype(int), "u": arr[:, 1], "x": arr[:, 2],
+            "conductance": arr[:, 3], "edge_probability": arr[:, 4]}
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--workers", type=int, default=2)
+    parser.add_argument("--validate", action="store_true",
+                        help="compute the exact off-table reference points instead of the tables")
+    args = parser.parse_args()
+    logging.basicConfig(level=logging.INFO, format="%(asctime)s %(message)s")
+    if args.validate:
+        out, data = VALIDATION_PATH, build_validation(args.workers)
+    else:
+        out, data = TABLE_PATH, build_tables(args.workers)
+    np.savez_compressed(out, **data)
+    logger.info("wrote %s (%.0f kB)", out, out.stat().st_size / 1024)
+
+
+if __name__ == "__main__":
+    main()
