@@ -259,8 +259,9 @@ def render(info: dict[str, Any], fmt: str) -> tuple[bytes | str, str]:
     if fmt == "html":
         from service.certificate import render_html
 
-        plots = services().archive.plots(info.get("plots_sha256"))
-        return _with_lifecycle_notice(render_html(record, plots), record), RENDERINGS[fmt]
+        plots, sections = services().archive.presentation(info.get("plots_sha256"))
+        page = render_html(record, plots, sections)
+        return _with_lifecycle_notice(page, record), RENDERINGS[fmt]
     if fmt == "pdf":
         return _cached_pdf(record, info.get("plots_sha256")), RENDERINGS[fmt]
     if fmt == "xml":

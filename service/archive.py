@@ -452,10 +452,15 @@ class Archive:
                 size = self.storage.blobs.path(digest).stat().st_size
             conn.execute(st.blobs.insert().values(sha256=digest, size=size, stored_at=utc_now()))
 
-    def plots(self, plots_sha256: str | None) -> dict[str, str]:
+    def presentation(self, plots_sha256: str | None) -> tuple[dict[str, str], list[str]]:
+        """(plots, extra HTML sections) kept with a certificate for its renderings."""
         if not plots_sha256:
-            return {}
-        return json.loads(self.storage.blobs.get(plots_sha256))
+            return {}, []
+        stored = json.loads(self.storage.blobs.get(plots_sha256))
+        return dict(stored.get("plots") or {}), list(stored.get("html_sections") or [])
+
+    def plots(self, plots_sha256: str | None) -> dict[str, str]:
+        return self.presentation(plots_sha256)[0]
 
     def run_files(self, conn: Connection, run_id: str) -> list[dict[str, Any]]:
         rows = conn.execute(
@@ -503,6 +508,7 @@ class Archive:
         plots: Mapping[str, str] | None = None,
         plots_sha256: str | None = None,
         extra_files: Mapping[str, bytes] | None = None,
+        html_sections: Iterable[str] = (),
         extras: Mapping[str, Mapping[str, Any]] | None = None,
     ) -> str:
         """Store a draft certificate made from an analysis record; return its id.
@@ -538,8 +544,12 @@ class Archive:
         )
         document.setdefault("dates", {})["issued"] = None
         document.setdefault("people", {})["approver"] = None
-        if plots:
-            plots_sha256 = self.storage.blobs.put(canonical_json(dict(plots)))
+        html_sections = [str(section) for section in html_sections]
+        if plots or html_sections:
+            # Figures and job-specific HTML sections: not part of the record, but part of how it
+            # is shown, so they are kept (and named in the signed entry) for renderings later.
+            presentation = {"plots": dict(plots or {}), "html_sections": html_sections}
+            plots_sha256 = self.storage.blobs.put(canonical_json(presentation))
             self._register_blob(conn, plots_sha256)
         extras = {name: dict(entry) for name, entry in (extras or {}).items()}
         for name, data in sorted((extra_files or {}).items()):
@@ -1149,9 +1159,8 @@ class Archive:
         with tempfile.TemporaryDirectory(prefix="coldcert-reproduce-") as tmp:
             folder = self.materialise_run(info["files"], Path(tmp) / "run")
             run = load_run(folder)
-            fresh, _plots, fresh_files = analysis_output(
-                certify(run, info["seed"], progress, **info["options"])
-            )
+            output = analysis_output(certify(run, info["seed"], progress, **info["options"]))
+            fresh, fresh_files = output.record, output.extra_files
         skip = list(SERVICE_FIELDS) + ["dates.issued", "people.approver"]
         skip += list(record.get("corrected_fields") or [])
         count, mismatches = compare_numbers(record, fresh, skip)
@@ -1181,15 +1190,24 @@ class Archive:
         )
 
 
-def analysis_output(result: Any) -> tuple[dict[str, Any], dict[str, str], dict[str, bytes]]:
-    """(record, plots, extra files) from what an analysis returns: a record dict, or an object
-    with ``record`` and optionally ``plots`` and ``extra_files``."""
+@dataclass(frozen=True)
+class AnalysisOutput:
+    record: dict[str, Any]
+    plots: dict[str, str]
+    extra_files: dict[str, bytes]
+    html_sections: list[str]
+
+
+def analysis_output(result: Any) -> AnalysisOutput:
+    """What an analysis returned: a record dict, or an object with ``record`` and optionally
+    ``plots``, ``extra_files`` and ``html_sections``."""
     if isinstance(result, Mapping):
-        return dict(result), {}, {}
-    return (
+        return AnalysisOutput(dict(result), {}, {}, [])
+    return AnalysisOutput(
         dict(result.record),
         dict(getattr(result, "plots", None) or {}),
         dict(getattr(result, "extra_files", None) or {}),
+        list(getattr(result, "html_sections", None) or []),
     )
 
 

@@ -261,23 +261,22 @@ def execute(
             with tempfile.TemporaryDirectory(prefix="coldcert-job-") as tmp:
                 folder = archive.materialise_run(files, Path(tmp) / "run")
                 loaded = load_run(folder)
-                record, plots, extra_files = analysis_output(
-                    certify(loaded, run.seed, progress, **options)
-                )
+                output = analysis_output(certify(loaded, run.seed, progress, **options))
             progress(1.0, "writing the draft certificate")
             with storage.write() as conn:
                 cert_id = archive.create_draft(
                     conn,
                     run_id=run.id,
-                    record=record,
+                    record=output.record,
                     seed=run.seed,
                     software=software_versions(),
                     submitter=dict(requester._mapping),
                     replaces=run.replaces,
                     amendment_reason=run.amendment_reason,
                     options=options,
-                    plots=plots,
-                    extra_files=extra_files,
+                    plots=output.plots,
+                    extra_files=output.extra_files,
+                    html_sections=output.html_sections,
                 )
                 _finish(conn, job["id"], worker, {"certificate_id": cert_id}, cert_id)
         elif job["purpose"] == "reproduce":

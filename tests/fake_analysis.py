@@ -2,8 +2,8 @@
 
 The run's manifest chooses the behaviour with ``[run] test_behaviour``: "fail" raises inside the
 fit, "crash_once" kills the worker process the first time (as a power cut or an OOM kill would)
-and works on the retry, "output_file" adds an output file derived from the result (as the sensor
-calibration adds its table), "unstable_output_file" one that differs on every run; anything else
+and works on the retry, "output_file" adds an output file derived from the result and a job-specific HTML
+section (as the sensor calibration adds its table and section), "unstable_output_file" one that differs on every run; anything else
 runs the real analysis.
 """
 
@@ -33,6 +33,7 @@ def misbehaving_certify(run, seed, progress=None, **options):
     if behaviour == "output_file":
         value = result.record["results"][0]["value"]
         result.extra_files["table.csv"] = f"temperature_K\n{value!r}\n".encode()
+        result.html_sections = ['<section id="job-extra"><h2>What was verified</h2></section>']
     if behaviour == "unstable_output_file":
         result.extra_files["table.csv"] = f"made_at\n{time.time_ns()}\n".encode()
     return result
