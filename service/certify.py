@@ -27,6 +27,7 @@ class Certified:
     html: str
     plots: dict[str, str] = field(default_factory=dict)
     extra_files: dict[str, bytes] = field(default_factory=dict)
+    html_sections: list[str] = field(default_factory=list)
 
     def files(self) -> dict[str, bytes]:
         """All output files by name; certificate.json last so its presence means complete."""
@@ -52,5 +53,7 @@ def certify_run(run: Run, seed: int | None = None, progress: Callable[[float, st
         raise NotImplementedError(f"runs of kind {run.kind!r} are not supported by this version") from exc
     outcome = module.analyse(run, seed, progress=progress, fast=fast)
     record = build_record(run, outcome, seed, run.kind)
-    html = render_html(record, outcome.plots, getattr(outcome, "html_sections", None))
-    return Certified(record=record, html=html, plots=outcome.plots, extra_files=outcome.extra_files)
+    sections = list(getattr(outcome, "html_sections", None) or [])
+    html = render_html(record, outcome.plots, sections)
+    return Certified(record=record, html=html, plots=outcome.plots, extra_files=outcome.extra_files,
+                     html_sections=sections)
