@@ -42,6 +42,10 @@ Progress = Callable[[float, str], None]
 WARN_RANGE_HALF_WIDTHS = 4.0
 #: Lag-1 autocorrelation of residuals above which the fit is flagged as structured.
 RESIDUAL_CORRELATION_LIMIT = 0.3
+#: Below this relative width error the weak-blockade series is accurate enough and is preferred
+#: (it is exact in form and cheap); above it the full tunnelling model is used where validated.
+WEAK_BLOCKADE_ERROR_TARGET = 1e-4
+
 #: Relative electron heating at the half-depth bias above which a sweep is flagged.
 HEATING_WARNING = 0.10
 
@@ -122,6 +126,42 @@ class SweepWork:
     rs: float
     fit: SweepFit
     warnings: list[str]
+    shape: DipShape = higher_order_shape
+    model_reason: str = ""
+
+
+def full_model_for(n_junctions: int, c0_ratio: float) -> DipShape | None:
+    """The full tunnelling model for this array, or None where it is not available."""
+    try:
+        from analysis.cbt.full_model import FullTunnellingShape
+    except ImportError:  # pragma: no cover - the module ships with the package
+        return None
+    try:
+        return FullTunnellingShape(int(n_junctions), float(c0_ratio))
+    except ValueError:
+        return None
+
+
+def choose_model(u: float, n_junctions: int, c0_ratio: float, current: DipShape) -> dict:
+    """Pick the model the data need at the fitted u, and say why (recorded on the certificate).
+
+    The weak-blockade higher-order series is kept while its width-error bound is below
+    WEAK_BLOCKADE_ERROR_TARGET; beyond that the full tunnelling model is used inside its validated
+    range; if it is unavailable (e.g. C_0 > 0 tables not shipped) the series is kept up to its own
+    validated limit and its larger model error goes into the budget.
+    """
+    series_error = higher_order_shape.relative_width_error(u)
+    if series_error <= WEAK_BLOCKADE_ERROR_TARGET:
+        return {"model": higher_order_shape, "reason": (
+            f"u = {u:.3f}: weak-blockade series width error {series_error:.1e} ≤ {WEAK_BLOCKADE_ERROR_TARGET:g}")}
+    full = full_model_for(n_junctions, c0_ratio)
+    if full is not None and u <= full.max_u:
+        return {"model": full, "reason": (
+            f"u = {u:.3f}: the weak-blockade series would err by up to {series_error:.1e} in width; "
+            f"full tunnelling model (error {full.relative_width_error(u):.1e}) used")}
+    why = "no full model for this array" if full is None else f"u above the full model's range ({full.max_u:g})"
+    return {"model": higher_order_shape, "reason": (
+        f"u = {u:.3f}: {why}; weak-blockade series kept (width error bound {series_error:.1e} in the budget)")}
 
 
 def fit_file(f, seed: int, settings: FitSettings, shape: DipShape,
@@ -143,6 +183,10 @@ def fit_file(f, seed: int, settings: FitSettings, shape: DipShape,
         data = replace(data, setup=setup)
     try:
         fit = fit_sweep(data, seed=seed, shape=shape, settings=settings, progress=progress)
+        choice = choose_model(fit.u, setup.junctions_in_series, md.get("ground_capacitance_ratio", 0.0), shape)
+        if choice["model"] is not shape:
+            shape = choice["model"]
+            fit = fit_sweep(data, seed=seed, shape=shape, settings=settings, progress=progress)
     except SweepError as exc:
         raise IntakeError(str(exc), file=f.name, field=exc.field) from None
     warnings: list[str] = []
@@ -177,7 +221,7 @@ def fit_file(f, seed: int, settings: FitSettings, shape: DipShape,
             f"{f.name}: u = ΔE/k_BT = {fit.u:.2f} lies beyond the validated range of the "
             f"{shape.name} model (u ≤ {shape.max_u:g}); a full tunnelling model is needed"
         )
-    return SweepWork(f, data, rs, fit, warnings)
+    return SweepWork(f, data, rs, fit, warnings, shape, choice["reason"])
 
 
 def result_entry(work: SweepWork, shape: DipShape, inputs: TypeBInputs,
@@ -188,6 +232,7 @@ def result_entry(work: SweepWork, shape: DipShape, inputs: TypeBInputs,
     setup = data.setup
     if work.rs:
         inputs = replace(inputs, series_resistance_ohm=work.rs)
+    shape = work.shape
     budget, _ = temperature_budget(fit, shape, setup, inputs, posterior_note=global_note, data=data)
     value_s, u_s = round_for_report(budget.estimate, budget.combined_standard_uncertainty)
     _, U_s = round_for_report(budget.estimate, budget.expanded_uncertainty)
@@ -239,6 +284,7 @@ def result_entry(work: SweepWork, shape: DipShape, inputs: TypeBInputs,
             "bias_reach_half_widths": fit.diagnostics["bias_reach_half_widths"],
             "lag1_residual_correlation": fit.lag1_residual_correlation,
             "model_validated_up_to_u": shape.max_u,
+            "model_choice": work.model_reason,
             "warnings": work.warnings,
         },
     }
@@ -254,9 +300,9 @@ def one_device(works: list[SweepWork]) -> bool:
     return len(works) >= 2 and len(ns) == 1 and (len(ids) == 1)
 
 
-def apply_global(works: list[SweepWork], shape: DipShape) -> tuple[GlobalFit, list[str]]:
+def apply_global(works: list[SweepWork]) -> tuple[GlobalFit, list[str]]:
     """Replace each independent fit's temperature by the shared-ΔE posterior's."""
-    g = fit_global([w.data for w in works], [w.fit for w in works], shape)
+    g = fit_global([w.data for w in works], [w.fit for w in works], [w.shape for w in works])
     notes = []
     for k, w in enumerate(works):
         T = float(g.temperatures[k])
@@ -324,7 +370,7 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
         if progress:
             progress(0.96, "global fit with a shared charging energy")
         try:
-            g, notes = apply_global(works, shape)
+            g, notes = apply_global(works)
         except ValueError as exc:
             outcome.deviations.append(f"global fit not applied ({exc}); temperatures are from independent fits")
         else:
@@ -336,10 +382,10 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
                     f"{g.consistency_dof} degrees of freedom, p = {p_val:.1e}); ΔE may have drifted between sweeps"
                 )
     for w, note in zip(works, notes, strict=True):
-        if w.fit.u > shape.max_u:
+        if w.fit.u > w.shape.max_u:
             raise CertificationRefused(
                 f"{w.file.name}: u = {w.fit.u:.2f} after the global fit lies beyond the validated range of "
-                f"the {shape.name} model (u ≤ {shape.max_u:g})"
+                f"the {w.shape.name} model (u ≤ {w.shape.max_u:g})"
             )
         entry, svg = result_entry(w, shape, inputs, note)
         outcome.results.append(entry)
@@ -367,8 +413,10 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
         "description": (
             "Each conductance-versus-bias sweep is fitted with the weak-blockade dip of Pekola et al., "
             "PRL 73, 2903 (1994) with the higher-order corrections of Farhangfar et al., J. Low Temp. "
-            "Phys. 108, 191 (1997), averaged over the lock-in excitation. The temperature follows from "
-            "the dip's width; its posterior is sampled by MCMC (emcee) and combined with Type B inputs "
+            "Phys. 108, 191 (1997) or, where the charging energy is too large for that series, with the "
+            "full orthodox sequential-tunnelling model (master equation), averaged over the lock-in "
+            "excitation. The temperature follows from the dip's width; its posterior is sampled by MCMC "
+            "(emcee) and combined with Type B inputs "
             "in a GUM budget (JCGM 100:2008)."
         ),
         "models": sorted({r["model"] for r in outcome.results}),

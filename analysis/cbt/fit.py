@@ -143,11 +143,14 @@ def make_log_posterior(shape: DipShape, data: SweepData, bias_window: tuple[floa
     n = data.conductance.size
     k = 2 if data.background else 1
     lo, hi = bias_window
+    # A model with a hard validity range (tables) bounds the prior on u to it.
+    u_lo = getattr(shape, "min_u", 0.0)
+    u_hi = min(MAX_U_PRIOR, shape.max_u) if hasattr(shape, "min_u") else MAX_U_PRIOR
 
     def log_prob(theta: np.ndarray) -> np.ndarray:
         theta = np.atleast_2d(theta)
         T, u, v0 = theta[:, 0], theta[:, 1], theta[:, 2]
-        ok = (T > 0) & (T <= 100.0) & (u >= 0) & (u <= MAX_U_PRIOR)
+        ok = (T > 0) & (T <= 100.0) & (u >= u_lo) & (u <= u_hi)
         ok &= (v0 >= lo) & (v0 <= hi)
         out = np.full(theta.shape[0], -np.inf)
         if not ok.any():
@@ -204,6 +207,8 @@ def least_squares_fit(shape: DipShape, data: SweepData, start: np.ndarray) -> di
 
     def resid(z: np.ndarray) -> np.ndarray:
         theta = (z * scale0)[None, :]
+        if hasattr(shape, "min_u") and not shape.min_u <= theta[0, 1] <= shape.max_u:
+            return np.full(data.conductance.size, 1e6)  # outside a tabulated model's range
         coef, _, _, _ = _profile(shape, data, theta)
         a = _design(shape, data, theta)[0]
         return (data.conductance - a @ coef[0]) * _weights(data)

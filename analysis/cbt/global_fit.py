@@ -116,6 +116,8 @@ def _log_like_grid(shape: DipShape, data: SweepData, v0: float, E: np.ndarray, T
     theta[:, 2] = v0
     out = np.full(nE * nT, -np.inf)
     ok = theta[:, 0] > 0
+    if hasattr(shape, "min_u"):  # a model with a hard validity range (tables)
+        ok &= (theta[:, 1] >= shape.min_u) & (theta[:, 1] <= shape.max_u)
     if ok.any():
         n = data.conductance.size
         k = 2 if data.background else 1
@@ -127,12 +129,15 @@ def _log_like_grid(shape: DipShape, data: SweepData, v0: float, E: np.ndarray, T
 def fit_global(
     datas: Sequence[SweepData],
     fits: Sequence[SweepFit | SweepSummary],
-    shape: DipShape,
+    shape: DipShape | Sequence[DipShape],
     energy_points: int = 41,
     temperature_points: int = 31,
     span_sigmas: float = 9.0,
 ) -> GlobalFit:
     """Joint posterior of K sweeps with a shared charging energy (module docstring).
+
+    ``shape`` is one dip model for all sweeps or one per sweep (cold sweeps may need the full
+    tunnelling model where warm ones are served by the weak-blockade series).
 
     ``fits`` are the independent results (MCMC fits or least-squares summaries); they only
     centre the grids and serve as the comparison for the tightening factor. Grid spacing is
@@ -142,6 +147,7 @@ def fit_global(
     if len(datas) != len(fits) or len(datas) < 2:
         raise ValueError("a global fit needs at least two sweeps, each with its independent fit")
     summaries = [f if isinstance(f, SweepSummary) else SweepSummary.from_posterior(f) for f in fits]
+    shapes = list(shape) if isinstance(shape, Sequence) else [shape] * len(fits)
     lines = [(m.a, m.b, m.conditional_std, m.energy_mean, m.energy_std) for m in summaries]
     mE = np.array([ln[3] for ln in lines])
     sE = np.array([ln[4] for ln in lines])
@@ -157,6 +163,7 @@ def fit_global(
         cond_mean = np.empty((len(fits), E.size))
         cond_var = np.empty((len(fits), E.size))
         for k, (data, summ, (a, b, sc, _, _)) in enumerate(zip(datas, summaries, lines, strict=True)):
+            shape = shapes[k]
             centre = a + b * E
             T = centre[:, None] + sc * np.linspace(-span_sigmas, span_sigmas, temperature_points)[None, :]
             ll = _log_like_grid(shape, data, summ.bias_offset, E, T)
