@@ -11,8 +11,8 @@ orthodox master equation (analysis.cbt.tunnelling, PHYSICS.md 1.3) on a grid of 
 and u = ΔE/(k_B T) and stores the reduced dip D_N(x, u) = (1 − G/G_T)/u, which tends to the
 first-order dip function g(x) of Pekola et al., PRL 73, 2903 (1994) as u → 0 (used as the u = 0
 row). The N = 4 solve is costly where the charge window is wide (small u, large x); there it is
-done only for x <= X4_MAX and u >= U4_MIN, and outside that region D_4 − D_3 is continued from
-the region's edge (scaled by (u/U4_MIN)^2 below it, by D_3(x)/D_3(X4_MAX) beyond it). Both
+done only for x <= X4_MAX (X4_MAX_STRONG for u >= 1) and u >= U4_MIN, and outside that region D_4 − D_3 is continued from
+the region's edge (scaled by (u/U4_MIN)^2 below it, by D_3(x)/D_3(x_last) beyond the last solved x). Both
 continuations act on a difference that is itself below 1e-6 in G/G_T there (measured by the
 validation in tests/test_full_model.py and benchmarks/bench_full_model.py); the mask of exactly
 solved nodes is stored with the table.
@@ -40,8 +40,9 @@ VALIDATION_POINTS = (
     [(5, u, x) for u in (1.0, 1.5, 2.0) for x in (0.0, 1.4, 2.8, 4.2)]
     + [(5, u, x) for u in (2.5, 3.0) for x in (0.0, 1.4, 2.8, 4.2, 6.0, 9.0)]
     + [(5, 0.5, 0.0)]
-    + [(4, u, x) for u in (0.1, 0.3) for x in (0.0, 2.7, 5.0)]
-    + [(4, u, x) for u in (0.5, 1.0, 2.0, 3.0) for x in (14.0, 19.3, 25.0)]
+    + [(4, u, x) for u in (0.2, 0.3) for x in (0.0, 2.7, 5.0)]
+    + [(4, u, x) for u in (1.0, 2.0, 3.0) for x in (14.0, 19.3, 25.0)]
+    + [(4, 0.5, 14.0)]
 )
 X_NODES = np.concatenate(
     (np.arange(0.0, 12.0, 0.2), np.arange(12.0, 20.0, 0.5), np.arange(20.0, 40.01, 1.0))
@@ -49,6 +50,7 @@ X_NODES = np.concatenate(
 U_NODES = np.round(np.arange(0.0, 3.21, 0.1), 10)
 LENGTHS = (2, 3, 4)
 X4_MAX = 12.0
+X4_MAX_STRONG = 20.0  # the tail is slower in stronger blockade: solve further out for u >= 1
 U4_MIN = 0.5
 SIGMAS = 7.0
 
@@ -68,7 +70,12 @@ def _solve_row(task: tuple[int, float, np.ndarray]) -> tuple[int, float, np.ndar
     return n, u, out, worst_edge, time.perf_counter() - start
 
 
-def build_tables(workers: int = 2) -> dict[str, np.ndarray]:
+def n4_x_limit(u: float) -> float:
+    """Largest x at which the N = 4 table is solved exactly at this u."""
+    return X4_MAX_STRONG if u >= 1.0 - 1e-9 else X4_MAX
+
+
+def build_tables(workers: int = 2, reuse: dict[str, np.ndarray] | None = None) -> dict[str, np.ndarray]:
     nx, nu = len(X_NODES), len(U_NODES)
     tables = {n: np.full((nx, nu), np.nan) for n in LENGTHS}
     for n in LENGTHS:
@@ -80,19 +87,40 @@ def build_tables(workers: int = 2) -> dict[str, np.ndarray]:
             if n == 4:
                 if u < U4_MIN - 1e-9:
                     continue
-                xs = X_NODES[X_NODES <= X4_MAX + 1e-9]
+                xs = X_NODES[X_NODES <= n4_x_limit(u) + 1e-9]
             else:
                 xs = X_NODES
             tasks.append((n, float(u), xs))
+    if reuse is not None:
+        # Same grid and solver settings: take the nodes an earlier run already solved (the
+        # solves are deterministic, so the result equals a run from scratch).
+        j_of = {float(u): j for j, u in enumerate(U_NODES)}
+        pending = []
+        for n, u, xs in tasks:
+            j = j_of[u]
+            old = reuse[f"dip_{n}"][:, j]
+            known = reuse["solved_4"][:, j] if n == 4 else np.ones(nx, dtype=bool)
+            done = int(np.argmin(known[: len(xs)])) if not known[: len(xs)].all() else len(xs)
+            tables[n][:done, j] = old[:done]
+            if n == 4:
+                solved4[:done, j] = True
+            if done < len(xs):
+                pending.append((n, u, xs[done:], done))
+        tasks = pending
+    else:
+        tasks = [(n, u, xs, 0) for n, u, xs in tasks]
     # Expensive rows first so the pool stays busy to the end.
     tasks.sort(key=lambda t: (-t[0], t[1]))
-    worst_edge = 0.0
+    offsets = {(n, u): first for n, u, _, first in tasks}
+    worst_edge = float(reuse["worst_edge_probability"]) if reuse is not None else 0.0
     with ProcessPoolExecutor(max_workers=workers) as pool:
-        for n, u, row, edge, seconds in pool.map(_solve_row, tasks):
+        rows = pool.map(_solve_row, [(n, u, xs) for n, u, xs, _ in tasks])
+        for n, u, row, edge, seconds in rows:
             j = int(np.argmin(np.abs(U_NODES - u)))
-            tables[n][: len(row), j] = row
+            first = offsets[(n, u)]
+            tables[n][first : first + len(row), j] = row
             if n == 4:
-                solved4[: len(row), j] = True
+                solved4[first : first + len(row), j] = True
             worst_edge = max(worst_edge, edge)
             logger.info("N=%d u=%.2f done in %.1f s (edge probability %.1e)", n, u, seconds, edge)
     # Continue D_4 − D_3 outside the exactly solved region (see module docstring).
@@ -104,8 +132,9 @@ def build_tables(workers: int = 2) -> dict[str, np.ndarray]:
         diff[: ix + 1, j] = diff[: ix + 1, ju] * (U_NODES[j] / U4_MIN) ** 2
     diff[:, 0] = 0.0
     for j in range(1, nu):
-        scale = d3[ix + 1 :, j] / d3[ix, j]
-        diff[ix + 1 :, j] = diff[ix, j] * scale
+        last = int(np.nonzero(solved4[:, j])[0][-1]) if solved4[:, j].any() else ix
+        scale = d3[last + 1 :, j] / d3[last, j]
+        diff[last + 1 :, j] = diff[last, j] * scale
     tables[4] = d3 + diff
     return {
         "x_nodes": X_NODES,
@@ -131,8 +160,8 @@ def _solve_point(task: tuple[int, float, float]) -> tuple[int, float, float, flo
 
 
 def build_validation(workers: int = 2) -> dict[str, np.ndarray]:
-    # Cheapest first: the expensive N = 5 points at small u come last.
-    tasks = sorted(VALIDATION_POINTS, key=lambda t: (t[0] == 5, -t[1], t[2]))
+    # Roughly cheapest first (the state count grows with N, x and 1/u).
+    tasks = sorted(VALIDATION_POINTS, key=lambda t: (t[0], (1 + t[2]) / t[1]))
     with ProcessPoolExecutor(max_workers=workers) as pool:
         rows = list(pool.map(_solve_point, tasks))
     arr = np.array(rows)
@@ -143,6 +172,8 @@ def build_validation(workers: int = 2) -> dict[str, np.ndarray]:
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--workers", type=int, default=2)
+    parser.add_argument("--reuse", type=Path, default=None,
+                        help="earlier table on the same grid whose solved nodes are kept")
     parser.add_argument("--validate", action="store_true",
                         help="compute the exact off-table reference points instead of the tables")
     args = parser.parse_args()
@@ -150,7 +181,11 @@ def main() -> None:
     if args.validate:
         out, data = VALIDATION_PATH, build_validation(args.workers)
     else:
-        out, data = TABLE_PATH, build_tables(args.workers)
+        reuse = None
+        if args.reuse is not None:
+            with np.load(args.reuse) as old:
+                reuse = {key: np.array(old[key]) for key in old.files}
+        out, data = TABLE_PATH, build_tables(args.workers, reuse)
     np.savez_compressed(out, **data)
     logger.info("wrote %s (%.0f kB)", out, out.stat().st_size / 1024)
 
