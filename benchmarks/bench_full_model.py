@@ -80,7 +80,7 @@ def agreement_with_monte_carlo(quick: bool) -> None:
         for u, x in ((1.0, 2.0), (2.0, 3.0)):
             start = time.perf_counter()
             mc = simulate_current(ArrayDescription(n), x, u, seed=n, n_replicas=400,
-                                  events_per_replica=events, burn_in_events=max(500, 5 * n))
+                                  events_per_replica=events, burn_in_events=max(500, 20 * n))
             seconds = time.perf_counter() - start
             current = quad(lambda t, m=model, uu=u: float(m(t, uu)), 0.0, x, epsabs=1e-12)[0]
             print(f"    N = {n:3d}, u = {u}, x = {x}: J_MC = {mc.current:.6f} ± "
