@@ -15,6 +15,7 @@ from dataclasses import dataclass, field, replace
 from scipy import stats
 
 from analysis.budget import round_for_report
+from analysis.cbt.choice import ModelChoice, fit_sweep_chosen
 from analysis.cbt.fit import (
     FitSettings,
     SweepData,
@@ -42,10 +43,6 @@ Progress = Callable[[float, str], None]
 WARN_RANGE_HALF_WIDTHS = 4.0
 #: Lag-1 autocorrelation of residuals above which the fit is flagged as structured.
 RESIDUAL_CORRELATION_LIMIT = 0.3
-#: Below this relative width error the weak-blockade series is accurate enough and is preferred
-#: (it is exact in form and cheap); above it the full tunnelling model is used where validated.
-WEAK_BLOCKADE_ERROR_TARGET = 1e-4
-
 #: Relative electron heating at the half-depth bias above which a sweep is flagged.
 HEATING_WARNING = 0.10
 
@@ -130,44 +127,12 @@ class SweepWork:
     model_reason: str = ""
 
 
-def full_model_for(n_junctions: int, c0_ratio: float) -> DipShape | None:
-    """The full tunnelling model for this array, or None where it is not available."""
-    try:
-        from analysis.cbt.full_model import FullTunnellingShape
-    except ImportError:  # pragma: no cover - the module ships with the package
-        return None
-    try:
-        return FullTunnellingShape(int(n_junctions), float(c0_ratio))
-    except ValueError:
-        return None
-
-
-def choose_model(u: float, n_junctions: int, c0_ratio: float, current: DipShape) -> dict:
-    """Pick the model the data need at the fitted u, and say why (recorded on the certificate).
-
-    The weak-blockade higher-order series is kept while its width-error bound is below
-    WEAK_BLOCKADE_ERROR_TARGET; beyond that the full tunnelling model is used inside its validated
-    range; if it is unavailable (e.g. C_0 > 0 tables not shipped) the series is kept up to its own
-    validated limit and its larger model error goes into the budget.
-    """
-    series_error = higher_order_shape.relative_width_error(u)
-    if series_error <= WEAK_BLOCKADE_ERROR_TARGET:
-        return {"model": higher_order_shape, "reason": (
-            f"u = {u:.3f}: weak-blockade series width error {series_error:.1e} ≤ {WEAK_BLOCKADE_ERROR_TARGET:g}")}
-    full = full_model_for(n_junctions, c0_ratio)
-    if full is not None and u <= full.max_u:
-        return {"model": full, "reason": (
-            f"u = {u:.3f}: the weak-blockade series would err by up to {series_error:.1e} in width; "
-            f"full tunnelling model (error {full.relative_width_error(u):.1e}) used")}
-    why = "no full model for this array" if full is None else f"u above the full model's range ({full.max_u:g})"
-    return {"model": higher_order_shape, "reason": (
-        f"u = {u:.3f}: {why}; weak-blockade series kept (width error bound {series_error:.1e} in the budget)")}
-
-
-def fit_file(f, seed: int, settings: FitSettings, shape: DipShape,
+def fit_file(f, seed: int, settings: FitSettings, shape: DipShape | None = None,
              progress: Progress | None = None, heating: HeatingModel | None = None,
              background: bool = False) -> SweepWork:
-    """Fit one accepted sweep file independently; applies the certification rules."""
+    """Fit one accepted sweep file independently; applies the certification rules.
+
+    With ``shape`` None the model is chosen for the data (analysis.cbt.choice)."""
     bias, g = check_cbt_sweep(f)
     md = f.metadata
     setup = SweepSetup(md["junctions_in_series"], md.get("excitation_rms_V", 0.0))
@@ -182,11 +147,12 @@ def fit_file(f, seed: int, settings: FitSettings, shape: DipShape,
         setup = replace(setup, heating=replace(heating, junction_resistance_ohm=r_t))
         data = replace(data, setup=setup)
     try:
-        fit = fit_sweep(data, seed=seed, shape=shape, settings=settings, progress=progress)
-        choice = choose_model(fit.u, setup.junctions_in_series, md.get("ground_capacitance_ratio", 0.0), shape)
-        if choice["model"] is not shape:
-            shape = choice["model"]
+        if shape is None:
+            fit, choice = fit_sweep_chosen(data, seed, md.get("ground_capacitance_ratio", 0.0), settings, progress)
+        else:
             fit = fit_sweep(data, seed=seed, shape=shape, settings=settings, progress=progress)
+            choice = ModelChoice(shape, "model fixed by the caller")
+        shape = choice.shape
     except SweepError as exc:
         raise IntakeError(str(exc), file=f.name, field=exc.field) from None
     warnings: list[str] = []
@@ -221,10 +187,10 @@ def fit_file(f, seed: int, settings: FitSettings, shape: DipShape,
             f"{f.name}: u = ΔE/k_BT = {fit.u:.2f} lies beyond the validated range of the "
             f"{shape.name} model (u ≤ {shape.max_u:g}); a full tunnelling model is needed"
         )
-    return SweepWork(f, data, rs, fit, warnings, shape, choice["reason"])
+    return SweepWork(f, data, rs, fit, warnings, shape, choice.reason)
 
 
-def result_entry(work: SweepWork, shape: DipShape, inputs: TypeBInputs,
+def result_entry(work: SweepWork, inputs: TypeBInputs,
                  global_note: str | None = None) -> tuple[dict, str]:
     """The certificate's result entry and fit plot for one sweep (independent or global)."""
     f, fit, data = work.file, work.fit, work.data
@@ -356,7 +322,6 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
     inputs = replace(inputs, coupling_relative_u=coupling_u)
     settings = fit_settings(manifest, fast)
     sweeps = [f for f in run.files if is_cbt_sweep(f)]
-    shape = higher_order_shape
     outcome = JobOutcome(results=[])
     works = []
     for k, f in enumerate(sweeps):
@@ -364,7 +329,7 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
             if progress:
                 progress(0.95 * (k + frac) / len(sweeps), f"{name}: {step}")
 
-        works.append(fit_file(f, seed + k, settings, shape, sub, heating, background))
+        works.append(fit_file(f, seed + k, settings, None, sub, heating, background))
     notes: list[str | None] = [None] * len(works)
     if one_device(works):
         if progress:
@@ -387,7 +352,7 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
                 f"{w.file.name}: u = {w.fit.u:.2f} after the global fit lies beyond the validated range of "
                 f"the {w.shape.name} model (u ≤ {w.shape.max_u:g})"
             )
-        entry, svg = result_entry(w, shape, inputs, note)
+        entry, svg = result_entry(w, inputs, note)
         outcome.results.append(entry)
         outcome.plots[f"fit-{w.file.name}"] = svg
     outcome.diagnostics["convergence_rule"] = {

@@ -28,17 +28,24 @@ def simulate_sweep(
     bias_offset: float = 0.0,
     background_slope: float = 0.0,
     resistance_spread: float = 0.0,
-    shape: DipShape = higher_order_shape,
+    shape: DipShape | None = None,
 ) -> tuple[np.ndarray, np.ndarray, SweepSetup]:
     """A sweep with white Gaussian noise of ``relative_noise`` × G_T on every point.
 
     ``resistance_spread`` σ_R narrows the dip by the first-order factor (1 − 0.7343 σ_R²)
     (PHYSICS.md 1.4, derived) while leaving its depth unchanged, as non-uniform junctions do.
 
-    The bias grid spans ±``range_half_widths`` V_1/2 about the offset. Returns bias (V),
+    ``shape`` defaults to the full tunnelling model (analysis.cbt.full_model) inside its validated
+    range, else the weak-blockade series. The bias grid spans ±``range_half_widths`` V_1/2 about the offset. Returns bias (V),
     conductance (S) and the setup used.
     """
     rng = np.random.default_rng(seed)
+    if shape is None:  # the physically right line shape: the full tunnelling model where validated
+        from analysis.cbt.choice import full_model_for  # noqa: PLC0415 (choice imports the fit)
+
+        full = full_model_for(junctions_in_series)
+        u = charging_energy / temperature
+        shape = full if full is not None and full.min_u <= u <= full.max_u else higher_order_shape
     setup = SweepSetup(junctions_in_series, excitation_rms_V)
     vh = half_width_voltage(temperature, junctions_in_series, shape, charging_energy)
     bias = bias_offset + np.linspace(-range_half_widths * vh, range_half_widths * vh, points)
