@@ -4,8 +4,8 @@
 
 Sweeps are simulated with the exact orthodox master equation (analysis.cbt.tunnelling, an
 independent solver) for a 3-junction chain at u = 0.05 … 3, fitted through the same path as
-`coldcert certify` (series first, the full tunnelling model where the series is not accurate
-enough), and the mean normalised bias (T_fit − T)/σ is reported per u (target |mean| < 0.2).
+`coldcert certify` (analysis.cbt.choice: the series only where it is accurate enough, else the
+full tunnelling model), and the mean normalised bias (T_fit − T)/σ is reported per u (target |mean| < 0.2).
 Also times one 401-point sweep at u = 1 fitted with the full model (target ≤ 5 s).
 """
 
@@ -17,10 +17,10 @@ import time
 import numpy as np
 
 from analysis.cbt import tunnelling
+from analysis.cbt.choice import choose_shape, fit_sweep_chosen
 from analysis.cbt.fit import FitSettings, SweepData, fit_sweep
-from analysis.cbt.models import SweepSetup, higher_order_shape
+from analysis.cbt.models import SweepSetup
 from analysis.constants import BOLTZMANN, ELEMENTARY_CHARGE
-from service.thermometry import choose_model
 
 _CURVES: dict = {}
 
@@ -48,17 +48,14 @@ def main() -> None:
         z, names = [], set()
         for s in range(args.per_u):
             data = exact_sweep(n, T, u, seed=1000 * s + int(100 * u))
-            fit = fit_sweep(data, seed=s, shape=higher_order_shape, settings=settings)
-            choice = choose_model(fit.u, n, 0.0, higher_order_shape)
-            if choice["model"] is not higher_order_shape:
-                fit = fit_sweep(data, seed=s, shape=choice["model"], settings=settings)
-            names.add(choice["model"].name.split(",")[0])
+            fit, choice = fit_sweep_chosen(data, seed=s, settings=settings)
+            names.add(choice.shape.name.split(",")[0])
             z.append((fit.temperature - T) / fit.temperature_std)
         z = np.array(z)
         print(f"  u = {u:4.2f}: mean z {z.mean():+.2f} (target |.| < 0.2), std z {z.std(ddof=1):.2f}; model {', '.join(sorted(names))}")
 
     data = exact_sweep(n, T, 1.0, seed=7)
-    full = choose_model(1.0, n, 0.0, higher_order_shape)["model"]
+    full = choose_shape(1.0, n).shape
     fit_sweep(data, seed=0, shape=full)
     t0 = time.perf_counter()
     fit = fit_sweep(data, seed=1, shape=full)
