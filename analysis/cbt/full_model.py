@@ -110,9 +110,9 @@ class FullTunnellingShape:
 
     A dip shape in the sense of analysis.cbt.models: ``shape(x, u)`` with x = eV/(N k_B T) and
     u = ΔE/(k_B T), ΔE = ((N − 1)/N) e²/C, broadcasting x against u; vectorised (measured
-    3.3–3.8e6 points per second on a shared 2-core machine, benchmarks/bench_full_model.py). Source: the orthodox master equation
-    of PHYSICS.md 1.3 (Melsen et al., PRB 55, 10638 (1997) for arrays), solved exactly for
-    N = 2, 3, 4 and continued in 1/N² (module docstring).
+    3.3–3.8e6 points per second on a shared 2-core machine, benchmarks/bench_full_model.py).
+    Source: the orthodox master equation of PHYSICS.md 1.3 (Melsen et al., PRB 55, 10638 (1997)
+    for arrays), solved exactly for N = 2, 3, 4 and continued in 1/N² (module docstring).
 
     Validated for 0 ≤ u ≤ 3 (refused outside with :class:`FullModelRangeError`). ``c0_ratio``
     (C_0/C) other than 0 is refused: no tables with stray capacitance are shipped (the exact
