@@ -15,6 +15,7 @@ its measured error as a budget row.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 from analysis.cbt.fit import (
@@ -39,8 +40,9 @@ class ModelChoice:
     reason: str
 
 
+@functools.lru_cache(maxsize=64)
 def full_model_for(n_junctions: int, c0_ratio: float = 0.0) -> FullTunnellingShape | None:
-    """The full tunnelling model for this array, or None where no validated table exists."""
+    """The full tunnelling model for this array, or None where no validated table exists (cached)."""
     try:
         return FullTunnellingShape(int(n_junctions), float(c0_ratio))
     except FullModelRangeError:
@@ -73,7 +75,7 @@ def fit_sweep_chosen(
     choice = choose_shape(max(u0, 0.0), data.setup.junctions_in_series, c0_ratio)
     fit = fit_sweep(data, seed=seed, shape=choice.shape, settings=settings, progress=progress)
     refined = choose_shape(fit.u, data.setup.junctions_in_series, c0_ratio)
-    if refined.shape is not choice.shape:  # the start was on the wrong side of a boundary
+    if refined.shape != choice.shape:  # the start was on the wrong side of a boundary
         choice = refined
         fit = fit_sweep(data, seed=seed, shape=choice.shape, settings=settings, progress=progress)
     return fit, choice
