@@ -23,7 +23,8 @@ def main() -> None:
     temps = np.geomspace(0.009, 0.5, 20)
     datas = []
     for k, T in enumerate(temps):
-        b, g, s = simulate_sweep(33, float(T), ec, gt, seed=300 + k, relative_noise=2e-4, excitation_rms_V=3e-6)
+        b, g, s = simulate_sweep(33, float(T), ec, gt, seed=300 + k, relative_noise=2e-4, excitation_rms_V=3e-6,
+                                 shape=higher_order_shape)  # machinery check: data of the fitted model
         datas.append(SweepData(b, g, s))
     print(f"20 sweeps (N = 33, 9-500 mK, u from {ec / temps[-1]:.3f} to {ec / temps[0]:.2f})")
     # (a) least-squares starting points -> shared-energy integration (the global fit proper)
