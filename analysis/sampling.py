@@ -87,12 +87,15 @@ def initial_ball(
     centre = np.asarray(centre, dtype=float)
     scale = np.where(np.asarray(scale, dtype=float) > 0, scale, np.abs(centre) * 1e-6 + 1e-12)
     pos = centre + spread * scale * rng.standard_normal((walkers, centre.size))
-    for _ in range(100):
+    for attempt in range(200):
         bad = ~np.isfinite(log_prob(pos))
         if not bad.any():
             return pos
-        pos[bad] = centre + 0.5 * spread * scale * rng.standard_normal((int(bad.sum()), centre.size))
-        spread *= 0.5
+        # Redraw only the walkers outside the support, at the same spread first (a centre on a
+        # prior boundary then still gets a full-rank half-ball), shrinking only if that keeps failing.
+        if attempt and attempt % 40 == 0:
+            spread *= 0.5
+        pos[bad] = centre + spread * scale * rng.standard_normal((int(bad.sum()), centre.size))
     raise ValueError("could not place walkers where the posterior is finite; check the start point")
 
 
