@@ -64,7 +64,9 @@ class KeySpec:
     description: str
 
 
-def _integer(lo: int, hi: int | None = None) -> Callable[[str], int]:
+def integer_parser(lo: int, hi: int | None = None) -> Callable[[str], int]:
+    """A metadata value parser for whole numbers in [lo, hi] (shared by every job's keys)."""
+
     def parse(text: str) -> int:
         try:
             value = float(text)
@@ -80,7 +82,9 @@ def _integer(lo: int, hi: int | None = None) -> Callable[[str], int]:
     return parse
 
 
-def _real(lo: float = -math.inf, hi: float = math.inf, lo_open: bool = False) -> Callable[[str], float]:
+def real_parser(lo: float = -math.inf, hi: float = math.inf, lo_open: bool = False) -> Callable[[str], float]:
+    """A metadata value parser for finite numbers in a range (shared by every job's keys)."""
+
     def parse(text: str) -> float:
         try:
             value = float(text)
@@ -89,6 +93,8 @@ def _real(lo: float = -math.inf, hi: float = math.inf, lo_open: bool = False) ->
         if not math.isfinite(value):
             raise ValueError(f"expected a finite number, got {text!r}")
         if value < lo or (lo_open and value == lo) or value > hi:
+            if lo == 0 and lo_open and hi == math.inf:
+                raise ValueError(f"expected a positive number, got {value:g}")
             rng = f"{'>' if lo_open else '≥'} {lo:g}" if hi == math.inf else f"in [{lo:g}, {hi:g}]"
             raise ValueError(f"expected a number {rng}, got {value:g}")
         return value
@@ -102,15 +108,15 @@ def _text(text: str) -> str:
 
 METADATA_KEYS: dict[str, KeySpec] = {
     # CBT sweeps
-    "junctions_in_series": KeySpec(_integer(2, 10_000), "N, tunnel junctions in series in one row"),
-    "parallel_rows": KeySpec(_integer(1, 100_000), "M, identical rows in parallel (default 1)"),
-    "excitation_rms_V": KeySpec(_real(0.0), "lock-in excitation, rms volts across the whole device"),
-    "series_resistance_ohm": KeySpec(_real(0.0), "two-wire lead resistance in series with the array"),
-    "ground_capacitance_ratio": KeySpec(_real(0.0), "C_0/C, island-to-ground over junction capacitance"),
-    "sensor_resistance_ohm": KeySpec(_real(0.0, lo_open=True), "fridge sensor's resistance during the sweep"),
+    "junctions_in_series": KeySpec(integer_parser(2, 10_000), "N, tunnel junctions in series in one row"),
+    "parallel_rows": KeySpec(integer_parser(1, 100_000), "M, identical rows in parallel (default 1)"),
+    "excitation_rms_V": KeySpec(real_parser(0.0), "lock-in excitation, rms volts across the whole device"),
+    "series_resistance_ohm": KeySpec(real_parser(0.0), "two-wire lead resistance in series with the array"),
+    "ground_capacitance_ratio": KeySpec(real_parser(0.0), "C_0/C, island-to-ground over junction capacitance"),
+    "sensor_resistance_ohm": KeySpec(real_parser(0.0, lo_open=True), "fridge sensor's resistance during the sweep"),
     "sweep_started": KeySpec(_text, "ISO 8601 date-time when the sweep began"),
     "sweep_ended": KeySpec(_text, "ISO 8601 date-time when the sweep ended"),
-    "bath_temperature_K": KeySpec(_real(0.0, lo_open=True), "fridge reading, for information only"),
+    "bath_temperature_K": KeySpec(real_parser(0.0, lo_open=True), "fridge reading, for information only"),
     "device": KeySpec(_text, "device identifier"),
     "note": KeySpec(_text, "free text"),
 }

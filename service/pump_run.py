@@ -28,7 +28,16 @@ from analysis.pump import counting
 from analysis.pump import plateau as P
 from analysis.pump import record as R
 from analysis.pump.quantized import MAX_ELECTRONS_PER_CYCLE, nominal_current
-from service.intake import DataFile, IntakeError, KeySpec, Run, manifest_number, register_keys
+from service.intake import (
+    DataFile,
+    IntakeError,
+    KeySpec,
+    Run,
+    integer_parser,
+    manifest_number,
+    real_parser,
+    register_keys,
+)
 from service.thermometry import CertificationRefused, JobOutcome
 
 Progress = Callable[[float, str], None]
@@ -42,49 +51,10 @@ MIN_SCAN_POINTS = 20
 MIN_MAP_SLICES = 3
 
 
-def _positive(text: str) -> float:
-    try:
-        v = float(text)
-    except ValueError:
-        raise ValueError(f"expected a number, got {text!r}") from None
-    if not math.isfinite(v):
-        raise ValueError(f"expected a finite number, got {text!r}")
-    if v <= 0:
-        raise ValueError(f"must be positive, got {v:g}")
-    return v
-
-
-def _non_negative(text: str) -> float:
-    v = float("nan")
-    try:
-        v = float(text)
-    except ValueError:
-        raise ValueError(f"expected a number, got {text!r}") from None
-    if not (math.isfinite(v) and v >= 0):
-        raise ValueError(f"expected a number ≥ 0, got {text!r}")
-    return v
-
-
-def _real(text: str) -> float:
-    try:
-        v = float(text)
-    except ValueError:
-        raise ValueError(f"expected a number, got {text!r}") from None
-    if not math.isfinite(v):
-        raise ValueError(f"expected a finite number, got {text!r}")
-    return v
-
-
-def _electrons(text: str) -> int:
-    try:
-        v = float(text)
-    except ValueError:
-        raise ValueError(f"expected a whole number of electrons, got {text!r}") from None
-    if not v.is_integer() or not 1 <= v <= MAX_ELECTRONS_PER_CYCLE:
-        raise ValueError(
-            f"expected a whole number of electrons from 1 to {MAX_ELECTRONS_PER_CYCLE}, got {text!r}"
-        )
-    return int(v)
+_positive = real_parser(0.0, lo_open=True)
+_non_negative = real_parser(0.0)
+_real = real_parser()
+_electrons = integer_parser(1, MAX_ELECTRONS_PER_CYCLE)
 
 
 PUMP_KEYS = {

@@ -37,6 +37,7 @@ from service.intake import (
     is_cbt_sweep,
     manifest_number,
     parse_csv,
+    real_parser,
     register_keys,
 )
 
@@ -64,14 +65,7 @@ def _iso_datetime(text: str) -> datetime:
     return value
 
 
-def _positive_real(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        raise ValueError(f"expected a number, got {text!r}") from None
-    if not (math.isfinite(value) and value > 0):
-        raise ValueError(f"expected a positive finite number, got {text!r}")
-    return value
+_positive_real = real_parser(0.0, lo_open=True)
 
 
 register_keys(
