@@ -103,12 +103,9 @@ def public_key():
 # ---- runs and jobs ----------------------------------------------------------------------------
 
 
-@bp.post("/runs")
-@roles_required("operator")
-def upload_run():
-    uploads = [(f.filename or "", f.read()) for f in request.files.getlist("files")]
-    uploads += [(f.filename or "", f.read()) for f in request.files.getlist("archive")]
-    accepted = accept_run(
+def accept_uploaded(uploads: list[tuple[str, bytes]]):
+    """Validate and store the files of the current request as a run (API and web form alike)."""
+    return accept_run(
         services().storage,
         services().archive,
         import_string(current_app.config["LOAD_RUN"]),
@@ -120,6 +117,14 @@ def upload_run():
         max_bytes=current_app.config["MAX_RUN_BYTES"],
         max_files=current_app.config["MAX_RUN_FILES"],
     )
+
+
+@bp.post("/runs")
+@roles_required("operator")
+def upload_run():
+    uploads = [(f.filename or "", f.read()) for f in request.files.getlist("files")]
+    uploads += [(f.filename or "", f.read()) for f in request.files.getlist("archive")]
+    accepted = accept_uploaded(uploads)
     response = jsonify(
         run_id=accepted.run_id,
         job_id=accepted.job_id,

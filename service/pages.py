@@ -10,7 +10,6 @@ import json
 
 from flask import (
     Blueprint,
-    current_app,
     flash,
     g,
     redirect,
@@ -21,11 +20,11 @@ from flask import (
 from sqlalchemy import func, select
 
 from service import storage as st
-from service.api import READERS, services
+from service.api import READERS, accept_uploaded, services
 from service.archive import ArchiveError, log_event
 from service.auth import ROLES, AuthError, create_token, create_user, list_users, roles_required
-from service.jobs import enqueue, import_string, job_status
-from service.upload import UploadError, accept_run, parse_seed
+from service.jobs import enqueue, job_status
+from service.upload import UploadError
 
 bp = Blueprint("pages", __name__)
 
@@ -59,18 +58,7 @@ def home():
 def upload():
     uploads = [(f.filename or "", f.read()) for f in request.files.getlist("files") if f.filename]
     try:
-        accepted = accept_run(
-            services().storage,
-            services().archive,
-            import_string(current_app.config["LOAD_RUN"]),
-            uploads,
-            g.user,
-            seed=parse_seed(request.form.get("seed")),
-            replaces=request.form.get("replaces") or None,
-            reason=request.form.get("reason"),
-            max_bytes=current_app.config["MAX_RUN_BYTES"],
-            max_files=current_app.config["MAX_RUN_FILES"],
-        )
+        accepted = accept_uploaded(uploads)
     except UploadError as exc:
         flash("Upload refused — " + exc.as_dict()["error"], "error")
         return redirect(url_for("pages.home")), 303
