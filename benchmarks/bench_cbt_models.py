@@ -44,6 +44,7 @@ def main() -> None:
     n, T = 3, 0.02
     settings = FitSettings()
     print(f"recovery on exact master-equation sweeps, N = {n}, {args.per_u} seeds per u")
+    pooled = []
     for u in (0.05, 0.3, 0.7, 1.0, 1.5, 2.0, 3.0):
         z, names = [], set()
         for s in range(args.per_u):
@@ -52,7 +53,12 @@ def main() -> None:
             names.add(choice.shape.name.split(",")[0])
             z.append((fit.temperature - T) / fit.temperature_std)
         z = np.array(z)
-        print(f"  u = {u:4.2f}: mean z {z.mean():+.2f} (target |.| < 0.2), std z {z.std(ddof=1):.2f}; model {', '.join(sorted(names))}")
+        pooled.extend(z)
+        print(f"  u = {u:4.2f}: mean z {z.mean():+.2f} +- {z.std(ddof=1) / np.sqrt(z.size):.2f} (target |.| < 0.2), std z {z.std(ddof=1):.2f}; model {', '.join(sorted(names))}")
+
+    pooled = np.array(pooled)
+    print(f"  pooled over all u: mean z {pooled.mean():+.3f} +- {pooled.std(ddof=1) / np.sqrt(pooled.size):.3f} "
+          f"(standard error), std z {pooled.std(ddof=1):.2f}, {pooled.size} fits")
 
     data = exact_sweep(n, T, 1.0, seed=7)
     full = choose_shape(1.0, n).shape
