@@ -85,7 +85,9 @@ def initial_ball(
 ) -> np.ndarray:
     """Walkers in a Gaussian ball of ``spread`` × ``scale`` around ``centre``, all of finite log_prob."""
     centre = np.asarray(centre, dtype=float)
-    scale = np.where(np.asarray(scale, dtype=float) > 0, scale, np.abs(centre) * 1e-6 + 1e-12)
+    # A zero or vanishing scale (e.g. a standard error on a prior boundary) would give a flat ball.
+    floor = np.abs(centre) * 1e-4 + 1e-12
+    scale = np.maximum(np.asarray(scale, dtype=float), floor)
     pos = centre + spread * scale * rng.standard_normal((walkers, centre.size))
     for attempt in range(200):
         bad = ~np.isfinite(log_prob(pos))
@@ -143,7 +145,9 @@ def sample_posterior(
     tau = np.full(ndim, np.nan)
     steps = 0
     while steps < max_steps:
-        state = sampler.run_mcmc(state, block, progress=False)
+        # Our ball is checked above (finite posterior, scaled per parameter); emcee's own check of
+        # the raw coordinates' condition number misfires when parameters differ by many decades.
+        state = sampler.run_mcmc(state, block, progress=False, skip_initial_state_check=True)
         steps += block
         tau = emcee.autocorr.integrated_time(sampler.get_chain(), tol=0)
         tau_max = float(np.max(tau))
