@@ -1,8 +1,8 @@
 #!/usr/bin/env bash
-# Start a throw-away PostgreSQL server on 127.0.0.1:55432 for tests/test_postgres.py and print the
-# database URL. Installs Debian's postgresql first when the machine has no server binaries.
+# Start a throw-away PostgreSQL server on a free 127.0.0.1 port for tests/test_postgres.py and print
+# the database URL. Installs Debian's postgresql first when the machine has no server binaries.
 set -euo pipefail
-port=55432
+port=$(python3 -c "import socket; s = socket.socket(); s.bind(('127.0.0.1', 0)); print(s.getsockname()[1])")
 bindir=$(ls -d /usr/lib/postgresql/*/bin 2>/dev/null | sort -V | tail -n 1 || true)
 if [ -z "$bindir" ] || [ ! -x "$bindir/initdb" ]; then
   apt-get update -q >&2 && DEBIAN_FRONTEND=noninteractive apt-get install -y -q postgresql >&2
