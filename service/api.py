@@ -348,33 +348,32 @@ def amend_certificate(certificate_id: str):
     return response
 
 
+def verify_and_log(certificate_id: str):
+    """Verify one certificate and record who did it (API and web page alike)."""
+    report = services().archive.verify(certificate_id)
+    with services().storage.write() as conn:
+        log_event(conn, g.user["username"], "certificate.verified", certificate_id, {"valid": report.valid})
+    return report
+
+
+def queue_reproduction(certificate_id: str) -> str:
+    """Queue a re-analysis of an archived certificate from its raw data; returns the job id."""
+    info = services().archive.get(certificate_id)
+    with services().storage.write() as conn:
+        return enqueue(conn, purpose="reproduce", run_id=info["run_id"], requested_by=g.user,
+                       certificate_id=certificate_id)
+
+
 @bp.get("/certificates/<certificate_id>/verify")
 @roles_required(*AUDIT)
 def verify_certificate(certificate_id: str):
-    report = services().archive.verify(certificate_id)
-    with services().storage.write() as conn:
-        log_event(
-            conn,
-            g.user["username"],
-            "certificate.verified",
-            certificate_id,
-            {"valid": report.valid},
-        )
-    return jsonify(report.as_dict())
+    return jsonify(verify_and_log(certificate_id).as_dict())
 
 
 @bp.post("/certificates/<certificate_id>/reproduce")
 @roles_required(*AUDIT)
 def reproduce_certificate(certificate_id: str):
-    info = services().archive.get(certificate_id)
-    with services().storage.write() as conn:
-        job_id = enqueue(
-            conn,
-            purpose="reproduce",
-            run_id=info["run_id"],
-            requested_by=g.user,
-            certificate_id=certificate_id,
-        )
+    job_id = queue_reproduction(certificate_id)
     response = jsonify(job_id=job_id, job_url=url_for("api.get_job", job_id=job_id))
     response.status_code = 202
     return response

@@ -20,10 +20,10 @@ from flask import (
 from sqlalchemy import func, select
 
 from service import storage as st
-from service.api import READERS, accept_uploaded, services
+from service.api import READERS, accept_uploaded, queue_reproduction, services, verify_and_log
 from service.archive import ArchiveError, log_event
 from service.auth import ROLES, AuthError, create_token, create_user, list_users, roles_required
-from service.jobs import enqueue, job_status
+from service.jobs import job_status
 from service.upload import UploadError
 
 bp = Blueprint("pages", __name__)
@@ -187,32 +187,16 @@ def amend(certificate_id: str):
 @roles_required("auditor", "approver")
 def verify(certificate_id: str):
     try:
-        report = services().archive.verify(certificate_id)
+        report = verify_and_log(certificate_id)
     except ArchiveError as exc:
         return render_template("error.html", code=exc.status, message=str(exc)), exc.status
-    with services().storage.write() as conn:
-        log_event(
-            conn,
-            g.user["username"],
-            "certificate.verified",
-            certificate_id,
-            {"valid": report.valid},
-        )
     return render_template("verify.html", report=report.as_dict())
 
 
 @bp.post("/certificates/<certificate_id>/reproduce")
 @roles_required("auditor", "approver")
 def reproduce(certificate_id: str):
-    info = services().archive.get(certificate_id)
-    with services().storage.write() as conn:
-        job_id = enqueue(
-            conn,
-            purpose="reproduce",
-            run_id=info["run_id"],
-            requested_by=g.user,
-            certificate_id=certificate_id,
-        )
+    job_id = queue_reproduction(certificate_id)
     return redirect(url_for("pages.job", job_id=job_id), 303)
 
 
