@@ -103,24 +103,23 @@ def _metadata(f: DataFile, key: str):
     return None, None
 
 
-def _metadata_time(f: DataFile, key: str) -> datetime | None:
+def _metadata_parsed(f: DataFile, key: str, parse):
+    """A metadata value through ``parse``, or None; a bad value names its file, line and key."""
     value, line = _metadata(f, key)
     if value is None:
         return None
     try:
-        return _iso_datetime(str(value))
+        return parse(str(value))
     except ValueError as exc:
         raise IntakeError(str(exc), file=f.name, line=line, field=key) from None
+
+
+def _metadata_time(f: DataFile, key: str) -> datetime | None:
+    return _metadata_parsed(f, key, _iso_datetime)
 
 
 def _metadata_positive(f: DataFile, key: str) -> float | None:
-    value, line = _metadata(f, key)
-    if value is None:
-        return None
-    try:
-        return _positive_real(str(value))
-    except ValueError as exc:
-        raise IntakeError(str(exc), file=f.name, line=line, field=key) from None
+    return _metadata_parsed(f, key, _positive_real)
 
 
 @dataclass(frozen=True)
