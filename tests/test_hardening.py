@@ -1,0 +1,180 @@
+"""Accounts, sessions, headers and operations under stress: token revocation, sessions ended by a
+password change, login throttling, Secure cookies over TLS, private database file, security
+headers, ``--workers 0``, a full disk and a read-only instance."""
+
+from __future__ import annotations
+
+import errno
+import os
+import re
+import stat
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from tests.hostile_support import database_file, draft, user
+from tests.service_support import PASSWORD, make_lab, small_run_files
+
+
+@pytest.fixture(scope="module")
+def lab(tmp_path_factory):
+    lab = make_lab(tmp_path_factory.mktemp("hardening"))
+    yield lab
+    lab.services.storage.dispose()
+
+
+def _browser_login(lab, username: str, password: str = PASSWORD, **kwargs):
+    client = lab.client()
+    page = client.get("/login", **kwargs).get_data(as_text=True)
+    token = re.search(r'name="csrf_token" value="([^"]+)"', page).group(1)
+    reply = client.post(
+        "/login", data={"username": username, "password": password, "csrf_token": token}, **kwargs
+    )
+    return client, reply
+
+
+# ---- accounts and sessions --------------------------------------------------------------------
+
+
+def test_one_token_can_be_revoked(lab):
+    client = lab.client()
+    made = client.post("/api/users/olga/tokens", json={"label": "laptop"},
+                       headers=lab.headers("adam"))
+    assert made.status_code == 201, made.get_json()
+    token, token_id = made.get_json()["token"], made.get_json()["token_id"]
+    mine = {"Authorization": f"Bearer {token}"}
+    assert client.get("/api/certificates", headers=mine).status_code == 200
+    listed = client.get("/api/users/olga/tokens", headers=lab.headers("adam")).get_json()
+    assert any(t["id"] == token_id and t["label"] == "laptop" for t in listed["tokens"])
+    assert all("sha256" not in key for t in listed["tokens"] for key in t)
+    revoked = client.post(f"/api/users/olga/tokens/{token_id}/revoke",
+                          headers=lab.headers("adam"))
+    assert revoked.status_code == 200, revoked.get_json()
+    assert revoked.get_json()["revoked_at"]
+    assert client.get("/api/certificates", headers=mine).status_code == 401
+    # Her other token still works; revoking twice says so.
+    assert client.get("/api/certificates", headers=lab.headers("olga")).status_code == 200
+    again = client.post(f"/api/users/olga/tokens/{token_id}/revoke", headers=lab.headers("adam"))
+    assert again.status_code == 409
+    assert client.post("/api/users/olga/tokens/999999/revoke",
+                       headers=lab.headers("adam")).status_code == 404
+
+
+def test_a_password_change_ends_existing_sessions(lab):
+    from service.auth import create_user
+
+    create_user(lab.services.storage, "sam", "operator", password=PASSWORD)
+    browser, reply = _browser_login(lab, "sam")
+    assert reply.status_code == 302
+    assert browser.get("/certificates").status_code == 200
+    changed = lab.client().patch("/api/users/sam", json={"password": "another long secret"},
+                                 headers=lab.headers("adam"))
+    assert changed.status_code == 200
+    after = browser.get("/certificates")
+    assert after.status_code == 302 and "/login" in after.headers["Location"]
+
+
+def test_failed_logins_are_throttled(lab):
+    from service.auth import create_user
+
+    create_user(lab.services.storage, "tess", "operator", password=PASSWORD)
+    statuses = [_browser_login(lab, "tess", "wrong password!")[1].status_code for _ in range(6)]
+    assert statuses[:5] == [401] * 5
+    assert statuses[5] == 429
+    # Even the right password waits until the window has passed.
+    _, reply = _browser_login(lab, "tess")
+    assert reply.status_code == 429
+    assert "Retry-After" in reply.headers
+
+
+def test_session_cookie_is_secure_over_tls(lab):
+    _, reply = _browser_login(lab, "olga", base_url="https://localhost")
+    cookies = reply.headers.getlist("Set-Cookie")
+    assert cookies and all("Secure" in c for c in cookies), cookies
+    _, plain = _browser_login(lab, "olga")
+    assert all("Secure" not in c for c in plain.headers.getlist("Set-Cookie"))
+
+
+def test_database_file_is_private_to_the_service(lab):
+    mode = stat.S_IMODE(database_file(lab.services).stat().st_mode)
+    assert mode & 0o077 == 0, oct(mode)
+
+
+def test_html_answers_carry_security_headers(lab):
+    for path in ("/login", "/api/health"):
+        reply = lab.client().get(path)
+        assert reply.headers.get("X-Content-Type-Options") == "nosniff", path
+    page = lab.client().get("/login")
+    policy = page.headers.get("Content-Security-Policy", "")
+    assert "default-src 'self'" in policy and "frame-ancestors 'none'" in policy
+    assert "'unsafe-inline'" not in policy.split("script-src", 1)[-1].split(";")[0]
+
+
+# ---- operations -------------------------------------------------------------------------------
+
+
+def test_zero_workers_means_none(tmp_path):
+    lab = make_lab(tmp_path)
+    try:
+        pool = lab.services.start_workers(0)
+        assert pool is None or pool.pids == []
+    finally:
+        lab.services.stop_workers()
+        lab.services.storage.dispose()
+
+
+def test_a_full_disk_answers_507_naming_what_is_full(lab, monkeypatch):
+    from service.storage import BlobStore
+
+    def full(self, data):
+        raise OSError(errno.ENOSPC, "No space left on device", str(self.root / "tmp" / "x.part"))
+
+    monkeypatch.setattr(BlobStore, "put", full)
+    reply = lab.upload(lab.client(), files=small_run_files())
+    body = reply.get_json()
+    assert reply.status_code == 507, body
+    assert "space" in body["error"] and str(lab.services.storage.blobs.root) in body["error"]
+
+
+# ---- a read-only instance ---------------------------------------------------------------------
+
+
+def _as_other_user():
+    # Root ignores file modes; drop to "nobody" so that the read-only instance is really so.
+    if os.geteuid() == 0:
+        os.setgid(65534)
+        os.setuid(65534)
+
+
+def test_a_read_only_copy_can_be_verified(tmp_path_factory):
+    import tempfile
+
+    base = Path(tempfile.mkdtemp(prefix="coldcert-readonly-test-"))
+    try:
+        os.chmod(base, 0o755)
+        lab = make_lab(base)
+        services = lab.services
+        cert = draft(services, user(services, "olga"), 21, [("r.csv", b"time_s,current_A\n0,1\n")])
+        services.archive.issue(cert, user(services, "arno"))
+        services.storage.dispose()
+        instance = Path(lab.app.instance_path)
+        for path in [instance, *instance.rglob("*")]:
+            mode = 0o555 if path.is_dir() else 0o444
+            os.chmod(path, mode)
+        for args in (["verify", "--all"], ["verify", cert]):
+            done = subprocess.run(
+                [sys.executable, "-m", "service.cli", *args, "--instance", str(instance)],
+                capture_output=True, text=True, timeout=120, preexec_fn=_as_other_user,
+                env={**os.environ, "HOME": "/tmp"},
+            )
+            assert "Traceback" not in done.stderr, done.stderr
+            assert done.returncode == 0, (done.stdout, done.stderr)
+            assert "valid" in done.stdout.lower()
+    finally:
+        for path in [base, *base.rglob("*")]:
+            os.chmod(path, 0o755 if path.is_dir() else 0o644)
+        import shutil
+
+        shutil.rmtree(base, ignore_errors=True)
