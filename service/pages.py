@@ -7,6 +7,7 @@ CSRF token) and one small script that polls the job API to show live progress.
 from __future__ import annotations
 
 import json
+from typing import Any
 
 from flask import (
     Blueprint,
@@ -160,6 +161,33 @@ def withdraw(certificate_id: str):
         lambda: services().archive.withdraw(certificate_id, g.user, reason),
         f"{certificate_id} withdrawn.",
     )
+
+
+@bp.post("/certificates/<certificate_id>/corrections")
+@roles_required("operator")
+def correct(certificate_id: str):
+    """The draft page's form: one text field per missing or corrected administrative value."""
+    corrections: dict[str, Any] = {}
+    for name, value in request.form.items():
+        table, dot, key = name.partition(".")
+        if name == "csrf_token" or not value.strip():
+            continue
+        if dot:
+            corrections.setdefault(table, {})[key] = value.strip()
+        else:
+            corrections[name] = value.strip()
+    try:
+        missing = services().archive.correct_draft(certificate_id, g.user, corrections)
+    except ArchiveError as exc:
+        flash(str(exc), "error")
+    else:
+        flash(
+            f"{certificate_id} corrected"
+            + (f"; still missing: {', '.join(m['field'] for m in missing)}." if missing else
+               "; it states everything a certificate must and can be issued."),
+            "ok",
+        )
+    return redirect(url_for("pages.certificate", certificate_id=certificate_id), 303)
 
 
 @bp.post("/certificates/<certificate_id>/amend")
