@@ -13,8 +13,9 @@ import pytest
 from lxml import etree
 from pypdf import PdfReader
 
-from service.certify import certify_run
-from service.dcc import (
+from service.calibrations.certify import certify_run
+from service.intake import load_run
+from service.render.dcc import (
     DCC_NS,
     SI_NS,
     CertificateIncomplete,
@@ -23,8 +24,7 @@ from service.dcc import (
     si_unit,
     si_value,
 )
-from service.intake import load_run
-from service.pdf import render_pdf
+from service.render.pdf import render_pdf
 
 EXAMPLE = Path(__file__).resolve().parents[1] / "example_runs" / "cbt-hollowmere"
 # The schema files stay in the shared folder next to the repository; never copied into it.
