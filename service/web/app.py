@@ -43,6 +43,9 @@ DEFAULTS: dict[str, Any] = {
     "ANALYSIS_OPTIONS": {},
     # Public keys (hex) of lab keys used before a key change, so their entries still verify.
     "TRUSTED_PUBLIC_KEYS": (),
+    # The laboratory's copy of the DCC 3.3.0 dcc.xsd; when set (here or by COLDCERT_DCC_SCHEMA),
+    # every DCC rendering is validated against it before it is served.
+    "DCC_SCHEMA": None,
     "SESSION_COOKIE_HTTPONLY": True,
     "SESSION_COOKIE_SAMESITE": "Lax",
 }
