@@ -17,8 +17,8 @@ from sqlalchemy import func, select
 
 from service import storage as st
 from service.archive import canonical_json, verify_signed_document
-from service.openapi import openapi_document
 from service.storage import sha256_hex, utc_now
+from service.web.openapi import openapi_document
 from tests.service_support import (
     EXAMPLE,
     LiveServer,
@@ -549,7 +549,7 @@ def test_signed_record_is_canonical_json(lab, issued):
 
 
 def test_command_line_verify_and_reproduce(lab, issued, tmp_path, capsys):
-    from service.cli import main as cli_main
+    from service.cli.main import main as cli_main
 
     instance = lab.app.instance_path
     cert = issued["certificate_id"]

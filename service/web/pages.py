@@ -21,11 +21,11 @@ from flask import (
 from sqlalchemy import func, select
 
 from service import storage as st
-from service.api import READERS, accept_uploaded, queue_reproduction, services, verify_and_log
 from service.archive import ArchiveError, log_event
-from service.auth import ROLES, AuthError, create_token, create_user, list_users, roles_required
-from service.jobs import job_status
-from service.upload import UploadError
+from service.queue.jobs import job_status
+from service.web.api import READERS, accept_uploaded, queue_reproduction, services, verify_and_log
+from service.web.auth import ROLES, AuthError, create_token, create_user, list_users, roles_required
+from service.web.upload import UploadError
 
 bp = Blueprint("pages", __name__)
 

@@ -15,7 +15,7 @@ import sys
 import threading
 from pathlib import Path
 
-from service.cli import CommandError
+from service.cli.main import CommandError
 
 DEFAULT_INSTANCE = "instance"
 
@@ -34,7 +34,7 @@ def _add_instance(parser: argparse.ArgumentParser) -> None:
 
 
 def _app(args: argparse.Namespace, **config):
-    from service.app import create_app
+    from service.web.app import create_app
 
     return create_app({"INSTANCE_PATH": _instance(args), **config})
 
@@ -185,7 +185,7 @@ def _read_password(args: argparse.Namespace) -> str:
 
 
 def _add_admin(args: argparse.Namespace) -> int:
-    from service.auth import AuthError, create_user
+    from service.web.auth import AuthError, create_user
 
     app = _app(args)
     password = _read_password(args)
@@ -205,7 +205,7 @@ def _add_admin(args: argparse.Namespace) -> int:
 
 
 def _new_token(args: argparse.Namespace) -> int:
-    from service.auth import AuthError, create_token
+    from service.web.auth import AuthError, create_token
 
     app = _app(args)
     try:
@@ -286,7 +286,7 @@ def _verify(args: argparse.Namespace) -> int:
 
 def _reproduce(args: argparse.Namespace) -> int:
     from service.archive import ArchiveError
-    from service.jobs import import_string
+    from service.queue.jobs import import_string
 
     app = _existing_app(args)
     services = app.extensions["coldcert"]
