@@ -21,7 +21,7 @@ from flask import Flask, jsonify, render_template, request
 from werkzeug.exceptions import HTTPException
 
 from service.archive import Archive, LabKey
-from service.jobs import WorkerPool, WorkerSettings
+from service.queue.jobs import WorkerPool, WorkerSettings
 from service.storage import Storage, default_database_url
 
 logger = logging.getLogger(__name__)
@@ -35,7 +35,7 @@ DEFAULTS: dict[str, Any] = {
     "DATABASE_URL": None,
     "WORKERS": 2,
     "START_WORKERS": False,
-    "CERTIFY": "service.certify:certify_run",
+    "CERTIFY": "service.calibrations.certify:certify_run",
     "LOAD_RUN": "service.intake:load_run",
     "CERTIFICATE_PREFIX": "CC",
     # Keyword options passed to the analysis and recorded with each certificate ({"fast": True}
@@ -129,7 +129,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     services = Services(storage, archive, key, settings)
     app.extensions["coldcert"] = services
 
-    from service import api, auth, pages
+    from service.web import api, auth, pages
 
     app.register_blueprint(auth.bp)
     app.register_blueprint(api.bp)
