@@ -4,6 +4,7 @@
 from __future__ import annotations
 
 import json
+import logging
 import mimetypes
 import os
 from html import escape
@@ -29,6 +30,7 @@ from service.web.openapi import openapi_document
 from service.web.upload import UploadError, accept_run, parse_seed
 
 bp = Blueprint("api", __name__, url_prefix="/api")
+logger = logging.getLogger(__name__)
 
 READERS = ("operator", "approver", "auditor")
 AUDIT = ("auditor", "approver")
@@ -208,19 +210,26 @@ def get_certificate(certificate_id: str):
 def _cached_pdf(record: dict[str, Any], plots_sha256: str | None) -> bytes:
     """PDF of a record; laying out the plots takes seconds, so identical requests reuse it.
 
-    The PDF is a pure function of the record and the plots (reportlab's invariant mode), so a
-    cache keyed by their digests can never serve a stale document.
+    The PDF is a pure function of the record and the plots (reportlab's invariant mode). The
+    cache is keyed by the SHA-256 of those inputs and each file is named with the SHA-256 of its
+    own bytes as well, checked on every read: a damaged or swapped file is laid out again, never
+    served (``KEY-PDFSHA256.pdf``).
     """
     from service.render.pdf import RENDERER_VERSION, render_pdf
 
     key = sha256_hex(
         canonical_json({"record": record, "plots": plots_sha256, "renderer": RENDERER_VERSION})
     )
-    path = Path(current_app.instance_path) / "cache" / "pdf" / f"{key}.pdf"
-    if path.is_file():
-        return path.read_bytes()
+    folder = Path(current_app.instance_path) / "cache" / "pdf"
+    for path in sorted(folder.glob(f"{key}-*.pdf")):
+        data = path.read_bytes()
+        if path.stem == f"{key}-{sha256_hex(data)}":
+            return data
+        logger.warning("PDF cache file %s does not match its name; laying out again", path.name)
+        path.unlink(missing_ok=True)
     pdf = render_pdf(record, services().archive.plots(plots_sha256))
-    path.parent.mkdir(parents=True, exist_ok=True)
+    path = folder / f"{key}-{sha256_hex(pdf)}.pdf"
+    folder.mkdir(parents=True, exist_ok=True)
     tmp = path.with_suffix(f".{os.getpid()}.tmp")
     tmp.write_bytes(pdf)
     os.replace(tmp, path)
@@ -310,7 +319,7 @@ def get_output_file(certificate_id: str, name: str):
     if entry is None:
         names = ", ".join(sorted(info["extra_files"])) or "none"
         return error(404, f"{certificate_id} has no output file {name!r} (it has: {names})")
-    data = services().storage.blobs.get(entry["sha256"])
+    data = services().archive.checked_blob(entry["sha256"], f"output file {name} of {certificate_id}")
     media = mimetypes.guess_type(name)[0] or "application/octet-stream"
     response = Response(data, mimetype=media)
     response.headers["Content-Disposition"] = f'attachment; filename="{certificate_id}-{name}"'
