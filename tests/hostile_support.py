@@ -59,7 +59,7 @@ def canned_certify(run: Any, seed: int, progress=None, **options: Any) -> Canned
 
 def draft(services, submitter: dict, seed: int, files: list[tuple[str, bytes]]) -> str:
     """Record a run and draft its certificate from the canned analysis; return the id."""
-    from service.jobs import new_id  # noqa: PLC0415 - one import path, moved by the layers work
+    from service.queue.jobs import new_id
 
     output = canned_output(seed)
     run_id = new_id("run")

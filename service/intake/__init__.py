@@ -19,12 +19,15 @@ import re
 import tomllib
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from datetime import datetime
 from pathlib import Path
 
 import numpy as np
 
 MIN_SWEEP_POINTS = 30
 MAX_FILE_BYTES = 50 * 1024 * 1024
+#: Largest seed: it is stored in a 64-bit signed integer column.
+MAX_SEED = 2**63 - 1
 
 KIND_CBT = "cbt_thermometry"
 KIND_SENSOR = "sensor_calibration"
@@ -68,6 +71,7 @@ def integer_parser(lo: int, hi: int | None = None) -> Callable[[str], int]:
     """A metadata value parser for whole numbers in [lo, hi] (shared by every job's keys)."""
 
     def parse(text: str) -> int:
+        _ascii_number(text)
         try:
             value = float(text)
         except ValueError:
@@ -86,6 +90,7 @@ def real_parser(lo: float = -math.inf, hi: float = math.inf, lo_open: bool = Fal
     """A metadata value parser for finite numbers in a range (shared by every job's keys)."""
 
     def parse(text: str) -> float:
+        _ascii_number(text)
         try:
             value = float(text)
         except ValueError:
@@ -102,7 +107,25 @@ def real_parser(lo: float = -math.inf, hi: float = math.inf, lo_open: bool = Fal
     return parse
 
 
+def _ascii_number(text: str) -> None:
+    # float() also reads full-width and other scripts' digits ("１２"); a lab file holding them
+    # was most likely pasted from somewhere it should not have been, so say so.
+    if not text.isascii():
+        raise ValueError(f"expected a number written in ASCII digits, got {text!r}")
+
+
 def _text(text: str) -> str:
+    return text
+
+
+def iso_datetime(text: str) -> str:
+    """An ISO 8601 date or date-time (e.g. 2026-11-24T13:00:00Z), kept as written."""
+    try:
+        datetime.fromisoformat(text)
+    except ValueError:
+        raise ValueError(
+            f"expected an ISO 8601 date-time such as 2026-11-24T13:00:00Z, got {text!r}"
+        ) from None
     return text
 
 
@@ -114,8 +137,8 @@ METADATA_KEYS: dict[str, KeySpec] = {
     "series_resistance_ohm": KeySpec(real_parser(0.0), "two-wire lead resistance in series with the array"),
     "ground_capacitance_ratio": KeySpec(real_parser(0.0), "C_0/C, island-to-ground over junction capacitance"),
     "sensor_resistance_ohm": KeySpec(real_parser(0.0, lo_open=True), "fridge sensor's resistance during the sweep"),
-    "sweep_started": KeySpec(_text, "ISO 8601 date-time when the sweep began"),
-    "sweep_ended": KeySpec(_text, "ISO 8601 date-time when the sweep ended"),
+    "sweep_started": KeySpec(iso_datetime, "ISO 8601 date-time when the sweep began"),
+    "sweep_ended": KeySpec(iso_datetime, "ISO 8601 date-time when the sweep ended"),
     "bath_temperature_K": KeySpec(real_parser(0.0, lo_open=True), "fridge reading, for information only"),
     "device": KeySpec(_text, "device identifier"),
     "note": KeySpec(_text, "free text"),
@@ -273,6 +296,11 @@ def parse_csv(name: str, raw: bytes) -> DataFile:
             free.setdefault("comments", []).append(body)
             continue
         key, value = (s.strip() for s in body.split(":", 1))
+        if not key:
+            raise IntakeError(
+                "a metadata line needs a key before ':' (e.g. '# junctions_in_series: 33')",
+                file=name, line=i,
+            )
         if key in metadata:
             raise IntakeError("this key is given twice", file=name, line=i, field=key)
         spec = METADATA_KEYS.get(key)
@@ -358,8 +386,16 @@ def parse_manifest(raw: bytes, name: str = "run.toml") -> dict:
     run = data.get("run", {})
     if "kind" in run and run["kind"] not in KINDS:
         raise IntakeError(f"expected one of {', '.join(KINDS)}", file=name, field="run.kind")
-    if "seed" in run and not (isinstance(run["seed"], int) and run["seed"] >= 0):
-        raise IntakeError("expected a non-negative integer", file=name, field="run.seed")
+    if "seed" in run and not (
+        isinstance(run["seed"], int)
+        and not isinstance(run["seed"], bool)
+        and 0 <= run["seed"] <= MAX_SEED
+    ):
+        raise IntakeError(
+            f"expected a whole number from 0 to {MAX_SEED} (a 64-bit signed integer)",
+            file=name,
+            field="run.seed",
+        )
     if "coverage_probability" in run:
         p = run["coverage_probability"]
         if not (isinstance(p, float | int) and 0.5 <= p < 1):
@@ -455,10 +491,11 @@ def detect_kind(files: list[DataFile], manifest: dict) -> str:
         return KIND_SENSOR
     if sweeps:
         return KIND_CBT
-    cols = sorted({c for f in files for c in f.columns})
+    found = "; ".join(f"{f.name}: {', '.join(f.columns)}" for f in files)
     raise IntakeError(
         "cannot tell what job these files are for: expected CBT sweeps (bias_V with conductance_S "
-        f"or current_A) or pump records (time_s,current_A,pump_on or gate_V,current_A); found columns {cols}",
+        f"or current_A) or pump records (time_s,current_A,pump_on or gate_V,current_A); found {found}",
+        file=files[0].name if len(files) == 1 else None,
     )
 
 
