@@ -132,7 +132,7 @@ def zip_bombs(url: str, token: str, pid: int, count: int = 4, size_mb: int = 250
 def fuzz_cli(count: int) -> None:
     from hypothesis import HealthCheck, Phase, given, settings
 
-    from service.cli import main
+    from service.cli.main import main
     from tests.fuzz_strategies import plain_uploads
 
     outcome: collections.Counter = collections.Counter()

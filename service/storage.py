@@ -38,6 +38,7 @@ from sqlalchemy import (
     create_engine,
     event,
 )
+from sqlalchemy.engine import make_url
 
 logger = logging.getLogger(__name__)
 
@@ -345,6 +346,7 @@ class Storage:
 def _make_engine(database_url: str) -> Engine:
     if not database_url.startswith("sqlite"):
         return create_engine(database_url, pool_pre_ping=True)
+    _private_database_file(database_url)
     engine = create_engine(database_url, connect_args={"timeout": 60, "check_same_thread": False})
 
     @event.listens_for(engine, "connect")
@@ -365,6 +367,24 @@ def _make_engine(database_url: str) -> Engine:
         conn.exec_driver_sql("BEGIN IMMEDIATE" if immediate else "BEGIN")
 
     return engine
+
+
+def _private_database_file(database_url: str) -> None:
+    """Create the SQLite file readable by the service's owner only (like the keys and blobs);
+    SQLite gives its -wal and -shm files the same mode. An existing file is tightened too."""
+    path = make_url(database_url).database
+    if not path or path == ":memory:" or path.startswith("file:"):
+        return
+    try:
+        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+    except FileExistsError:
+        mode = os.stat(path).st_mode & 0o777
+        if mode & 0o077 and os.access(path, os.W_OK) and os.stat(path).st_uid == os.geteuid():
+            os.chmod(path, mode & 0o700)
+        return
+    except OSError:
+        return  # a folder we cannot write: the engine reports it with the path
+    os.close(fd)
 
 
 def default_database_url(instance_path: str | os.PathLike[str]) -> str:

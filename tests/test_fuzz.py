@@ -54,7 +54,7 @@ def test_intake_accepts_or_refuses_with_intake_error(csv, manifest):
 @FUZZ
 @given(files=plain_uploads())
 def test_command_line_check_never_ends_in_a_traceback(files):
-    from service.cli import main
+    from service.cli.main import main
 
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp) / "run"

@@ -63,7 +63,7 @@ def test_one_token_can_be_revoked(lab):
 
 
 def test_a_password_change_ends_existing_sessions(lab):
-    from service.auth import create_user
+    from service.web.auth import create_user
 
     create_user(lab.services.storage, "sam", "operator", password=PASSWORD)
     browser, reply = _browser_login(lab, "sam")
@@ -77,7 +77,7 @@ def test_a_password_change_ends_existing_sessions(lab):
 
 
 def test_failed_logins_are_throttled(lab):
-    from service.auth import create_user
+    from service.web.auth import create_user
 
     create_user(lab.services.storage, "tess", "operator", password=PASSWORD)
     statuses = [_browser_login(lab, "tess", "wrong password!")[1].status_code for _ in range(6)]
@@ -165,7 +165,7 @@ def test_a_read_only_copy_can_be_verified(tmp_path_factory):
             os.chmod(path, mode)
         for args in (["verify", "--all"], ["verify", cert]):
             done = subprocess.run(
-                [sys.executable, "-m", "service.cli", *args, "--instance", str(instance)],
+                [sys.executable, "-m", "service.cli.main", *args, "--instance", str(instance)],
                 capture_output=True, text=True, timeout=120, preexec_fn=_as_other_user,
                 env={**os.environ, "HOME": "/tmp"},
             )

@@ -20,9 +20,13 @@ from service.queue.jobs import enqueue, import_string, job_status
 from service.storage import sha256_hex
 from service.web.auth import (
     AuthError,
-    create_token,
+    TokenAlreadyRevoked,
+    TokenNotFound,
+    create_token_entry,
     create_user,
+    list_tokens,
     list_users,
+    revoke_token,
     roles_required,
     update_user,
 )
@@ -468,9 +472,28 @@ def patch_user(username: str):
 @roles_required("admin")
 def post_token(username: str):
     body = _json_body()
-    token = create_token(
-        services().storage, username, body.get("label", ""), actor=g.user["username"]
+    token_id, token = create_token_entry(
+        services().storage, username, str(body.get("label", "")), actor=g.user["username"]
     )
-    response = jsonify(username=username, token=token, note="shown once; store it safely")
+    response = jsonify(
+        username=username, token=token, token_id=token_id, note="shown once; store it safely"
+    )
     response.status_code = 201
     return response
+
+
+@bp.get("/users/<username>/tokens")
+@roles_required("admin")
+def get_tokens(username: str):
+    return jsonify(username=username, tokens=list_tokens(services().storage, username))
+
+
+@bp.post("/users/<username>/tokens/<int:token_id>/revoke")
+@roles_required("admin")
+def revoke(username: str, token_id: int):
+    try:
+        return jsonify(revoke_token(services().storage, username, token_id, g.user["username"]))
+    except TokenNotFound as exc:
+        return error(404, str(exc))
+    except TokenAlreadyRevoked as exc:
+        return error(409, str(exc))
