@@ -21,6 +21,7 @@ import tempfile
 from collections.abc import Iterator
 from datetime import UTC, datetime
 from pathlib import Path
+from urllib.parse import quote
 
 from sqlalchemy import (
     Boolean,
@@ -216,9 +217,11 @@ def sha256_hex(data: bytes) -> str:
 class BlobStore:
     """Content-addressed raw files under ``root``: ``root/ab/cd/abcd…`` named by SHA-256."""
 
-    def __init__(self, root: str | os.PathLike[str]) -> None:
+    def __init__(self, root: str | os.PathLike[str], read_only: bool = False) -> None:
         self.root = Path(root)
-        (self.root / "tmp").mkdir(parents=True, exist_ok=True)
+        self.read_only = read_only
+        if not read_only:
+            (self.root / "tmp").mkdir(parents=True, exist_ok=True)
 
     def path(self, digest: str) -> Path:
         if len(digest) != 64 or any(c not in "0123456789abcdef" for c in digest):
@@ -286,16 +289,23 @@ def _fsync_directory(path: Path) -> None:
 class Storage:
     """Database engine plus blob folder for one service instance."""
 
-    def __init__(self, database_url: str, blob_root: str | os.PathLike[str]) -> None:
+    def __init__(
+        self, database_url: str, blob_root: str | os.PathLike[str], read_only: bool = False
+    ) -> None:
+        """``read_only`` opens an archive copy for auditing: SQLite in read-only mode, no
+        pragma or schema that writes, nothing created in the blob folder."""
         self.database_url = database_url
-        self.engine: Engine = _make_engine(database_url)
-        self.blobs = BlobStore(blob_root)
+        self.read_only = read_only
+        self.engine: Engine = _make_engine(database_url, read_only=read_only)
+        self.blobs = BlobStore(blob_root, read_only=read_only)
 
     @property
     def is_sqlite(self) -> bool:
         return self.engine.dialect.name == "sqlite"
 
     def create_schema(self) -> None:
+        if self.read_only:
+            return
         metadata.create_all(self.engine)
         if self.is_sqlite:
             with self.engine.begin() as conn:
@@ -343,10 +353,20 @@ class Storage:
         self.engine.dispose()
 
 
-def _make_engine(database_url: str) -> Engine:
+def _make_engine(database_url: str, read_only: bool = False) -> Engine:
     if not database_url.startswith("sqlite"):
+        if read_only:
+            # The server refuses writes in this session; the role should lack them too.
+            return create_engine(
+                database_url,
+                pool_pre_ping=True,
+                execution_options={"postgresql_readonly": True},
+            )
         return create_engine(database_url, pool_pre_ping=True)
-    _private_database_file(database_url)
+    if read_only:
+        database_url = _read_only_sqlite_url(database_url)
+    else:
+        _private_database_file(database_url)
     engine = create_engine(database_url, connect_args={"timeout": 60, "check_same_thread": False})
 
     @event.listens_for(engine, "connect")
@@ -355,8 +375,10 @@ def _make_engine(database_url: str) -> Engine:
         # start transactions lazily, defeating BEGIN IMMEDIATE).
         dbapi_conn.isolation_level = None
         cursor = dbapi_conn.cursor()
-        cursor.execute("PRAGMA journal_mode=WAL")
-        cursor.execute("PRAGMA synchronous=FULL")
+        if not read_only:
+            # Both pragmas write to the file; a read-only copy keeps the mode it was saved in.
+            cursor.execute("PRAGMA journal_mode=WAL")
+            cursor.execute("PRAGMA synchronous=FULL")
         cursor.execute("PRAGMA foreign_keys=ON")
         cursor.execute("PRAGMA busy_timeout=60000")
         cursor.close()
@@ -367,6 +389,21 @@ def _make_engine(database_url: str) -> Engine:
         conn.exec_driver_sql("BEGIN IMMEDIATE" if immediate else "BEGIN")
 
     return engine
+
+
+def _read_only_sqlite_url(database_url: str) -> str:
+    """The URI form of a SQLite URL opened read-only.
+
+    With no pending write-ahead log (no ``-wal`` file, or an empty one) the file is also
+    opened ``immutable``, so SQLite needs no ``-shm`` file and works on read-only media; with a
+    pending log it must read the log, which needs its ``-shm`` beside it.
+    """
+    path = make_url(database_url).database
+    if not path or path == ":memory:":
+        return database_url
+    wal = Path(path + "-wal")
+    immutable = "&immutable=1" if not wal.exists() or wal.stat().st_size == 0 else ""
+    return f"sqlite:///file:{quote(str(Path(path).resolve()))}?mode=ro{immutable}&uri=true"
 
 
 def _private_database_file(database_url: str) -> None:

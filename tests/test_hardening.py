@@ -141,40 +141,71 @@ def test_a_full_disk_answers_507_naming_what_is_full(lab, monkeypatch):
 # ---- a read-only instance ---------------------------------------------------------------------
 
 
-def _as_other_user():
-    # Root ignores file modes; drop to "nobody" so that the read-only instance is really so.
-    if os.geteuid() == 0:
-        os.setgid(65534)
-        os.setuid(65534)
+@pytest.fixture()
+def read_only_copy(tmp_path):
+    """An instance with one issued certificate, then made read-only and stripped of the private
+    key (an auditor's copy needs only the public key)."""
+    lab = make_lab(tmp_path)
+    services = lab.services
+    cert = draft(services, user(services, "olga"), 21, [("r.csv", b"time_s,current_A\n0,1\n")])
+    services.archive.issue(cert, user(services, "arno"))
+    services.storage.dispose()
+    instance = Path(lab.app.instance_path)
+    (instance / "keys" / "lab_ed25519_private.pem").unlink()
+    for path in [instance, *instance.rglob("*")]:
+        os.chmod(path, 0o555 if path.is_dir() else 0o444)
+    yield instance, cert, lab.tokens["aude"]
+    for path in [instance, *instance.rglob("*")]:
+        os.chmod(path, 0o755 if path.is_dir() else 0o644)
 
 
-def test_a_read_only_copy_can_be_verified(tmp_path_factory):
-    import tempfile
+def _snapshot(folder: Path) -> dict[str, tuple]:
+    return {
+        str(p.relative_to(folder)): (p.stat().st_size, p.stat().st_mtime_ns, p.stat().st_mode)
+        for p in [folder, *folder.rglob("*")]
+    }
 
-    base = Path(tempfile.mkdtemp(prefix="coldcert-readonly-test-"))
-    try:
-        os.chmod(base, 0o755)
-        lab = make_lab(base)
-        services = lab.services
-        cert = draft(services, user(services, "olga"), 21, [("r.csv", b"time_s,current_A\n0,1\n")])
-        services.archive.issue(cert, user(services, "arno"))
-        services.storage.dispose()
-        instance = Path(lab.app.instance_path)
-        for path in [instance, *instance.rglob("*")]:
-            mode = 0o555 if path.is_dir() else 0o444
-            os.chmod(path, mode)
-        for args in (["verify", "--all"], ["verify", cert]):
-            done = subprocess.run(
-                [sys.executable, "-m", "service.cli.main", *args, "--instance", str(instance)],
-                capture_output=True, text=True, timeout=120, preexec_fn=_as_other_user,
-                env={**os.environ, "HOME": "/tmp"},
-            )
-            assert "Traceback" not in done.stderr, done.stderr
-            assert done.returncode == 0, (done.stdout, done.stderr)
-            assert "valid" in done.stdout.lower()
-    finally:
-        for path in [base, *base.rglob("*")]:
-            os.chmod(path, 0o755 if path.is_dir() else 0o644)
-        import shutil
 
-        shutil.rmtree(base, ignore_errors=True)
+def _cli(*args: str) -> subprocess.CompletedProcess:
+    return subprocess.run(
+        [sys.executable, "-m", "service.cli.main", *args],
+        capture_output=True, text=True, timeout=300,
+    )
+
+
+def test_a_read_only_copy_is_verified_without_writing_anything(read_only_copy):
+    instance, cert, _ = read_only_copy
+    before = _snapshot(instance)
+    for args in (["verify", "--all"], ["verify", cert]):
+        done = _cli(*args, "--instance", str(instance), "--read-only")
+        assert "Traceback" not in done.stderr, done.stderr
+        assert done.returncode == 0, (done.stdout, done.stderr)
+        assert "valid" in done.stdout and "NOT" not in done.stdout
+    assert _snapshot(instance) == before
+
+
+def test_a_read_only_copy_serves_reading_and_refuses_changes(read_only_copy):
+    from service.web.app import create_app
+
+    instance, cert, token = read_only_copy
+    before = _snapshot(instance)
+    app = create_app({"INSTANCE_PATH": str(instance), "READ_ONLY": True, "TESTING": True})
+    client = app.test_client()
+    headers = {"Authorization": f"Bearer {token}"}
+    reply = client.get(f"/api/certificates/{cert}/verify", headers=headers)
+    assert reply.status_code == 200 and reply.get_json()["valid"] is True
+    assert client.get(f"/api/certificates/{cert}/html", headers=headers).status_code == 200
+    refused = client.post(f"/api/certificates/{cert}/withdraw", json={"reason": "x"},
+                          headers=headers)
+    assert refused.status_code == 503 and "read-only" in refused.get_json()["error"]
+    app.extensions["coldcert"].storage.dispose()
+    assert _snapshot(instance) == before
+
+
+@pytest.mark.skipif(os.geteuid() == 0, reason="root may write any file, so an unwritable "
+                    "instance cannot be made here; run the tests as an ordinary user")
+def test_an_unwritable_instance_is_opened_read_only_by_itself(read_only_copy):
+    instance, cert, _ = read_only_copy
+    done = _cli("verify", "--all", "--instance", str(instance))
+    assert "Traceback" not in done.stderr, done.stderr
+    assert done.returncode == 0, (done.stdout, done.stderr)

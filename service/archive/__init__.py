@@ -228,6 +228,48 @@ class LabKey:
             "public_key_pem": self.public_pem(),
         }
 
+    @classmethod
+    def load_for_reading(cls, key_dir: str | os.PathLike[str]) -> LabKey | PublicLabKey:
+        """The lab key of a read-only archive copy: the private key if the copy has it, else
+        only the public key (all that verifying needs); nothing is created."""
+        key_dir = Path(key_dir)
+        private_path = key_dir / cls.PRIVATE_NAME
+        if private_path.is_file():
+            loaded = serialization.load_pem_private_key(private_path.read_bytes(), password=None)
+            if isinstance(loaded, Ed25519PrivateKey):
+                return cls(loaded)
+        public_path = key_dir / cls.PUBLIC_NAME
+        if not public_path.is_file():
+            raise ArchiveError(
+                f"{key_dir} holds neither the lab's private nor its public key "
+                f"({cls.PUBLIC_NAME}); verification needs the public key"
+            )
+        public = serialization.load_pem_public_key(public_path.read_bytes())
+        if not isinstance(public, Ed25519PublicKey):
+            raise ArchiveError(f"{public_path} does not hold an Ed25519 public key")
+        return PublicLabKey(public)
+
+
+class PublicLabKey:
+    """The lab's public key alone: verifies, never signs (a read-only archive copy)."""
+
+    def __init__(self, public: Ed25519PublicKey) -> None:
+        self._public = public
+        self.public_raw: bytes = public.public_bytes(
+            serialization.Encoding.Raw, serialization.PublicFormat.Raw
+        )
+        self.key_id: str = sha256_hex(self.public_raw)[:16]
+
+    def sign(self, data: bytes) -> str:
+        raise ArchiveError("this archive copy is open read-only and holds no signing key", 503)
+
+    def public_pem(self) -> str:
+        return self._public.public_bytes(
+            serialization.Encoding.PEM, serialization.PublicFormat.SubjectPublicKeyInfo
+        ).decode("ascii")
+
+    public_info = LabKey.public_info
+
 
 def _write_exclusive(path: Path, data: bytes, mode: int) -> None:
     fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, mode)

@@ -384,8 +384,10 @@ def amend_certificate(certificate_id: str):
 def verify_and_log(certificate_id: str):
     """Verify one certificate and record who did it (API and web page alike)."""
     report = services().archive.verify(certificate_id)
-    with services().storage.write() as conn:
-        log_event(conn, g.user["username"], "certificate.verified", certificate_id, {"valid": report.valid})
+    if not services().storage.read_only:  # a read-only audit copy cannot log; it only reports
+        with services().storage.write() as conn:
+            log_event(conn, g.user["username"], "certificate.verified", certificate_id,
+                      {"valid": report.valid})
     return report
 
 

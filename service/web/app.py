@@ -51,6 +51,9 @@ DEFAULTS: dict[str, Any] = {
     # Reverse proxies in front of the service whose X-Forwarded-For/-Proto/-Host headers are
     # believed (0: none); with TLS ending at the proxy, 1 lets cookies be marked Secure.
     "TRUSTED_PROXIES": 0,
+    # Open the instance for reading only (an audit copy); also chosen when the folder or the
+    # database file cannot be written. Changes answer 503; nothing is created.
+    "READ_ONLY": False,
     "SESSION_COOKIE_HTTPONLY": True,
     "SESSION_COOKIE_SAMESITE": "Lax",
 }
@@ -131,8 +134,21 @@ class Services:
             self.pool = None
 
 
-def _secret_key(instance: Path) -> str:
+def _unwritable(instance: Path) -> bool:
+    """An existing instance whose folder or database this process may not write (an auditor's
+    read-only copy, a backup on read-only media)."""
+    database = instance / "coldcert.sqlite3"
+    if not instance.is_dir():
+        return False
+    return not os.access(instance, os.W_OK) or (
+        database.is_file() and not os.access(database, os.W_OK)
+    )
+
+
+def _secret_key(instance: Path, read_only: bool = False) -> str:
     path = instance / "session_secret"
+    if read_only and not path.is_file():
+        return secrets.token_hex(32)  # sessions of a read-only copy last as long as the process
     if not path.exists():
         fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
         with os.fdopen(fd, "w") as handle:
@@ -164,14 +180,22 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
 
         app.wsgi_app = ProxyFix(app.wsgi_app, x_for=proxies, x_proto=proxies, x_host=proxies)
     instance = Path(app.instance_path)
-    instance.mkdir(parents=True, exist_ok=True)
+    read_only = bool(app.config["READ_ONLY"]) or _unwritable(instance)
+    app.config["READ_ONLY"] = read_only
+    if read_only:
+        logger.warning("instance %s is open read-only: nothing can be changed", instance)
+    else:
+        instance.mkdir(parents=True, exist_ok=True)
     if not app.config.get("SECRET_KEY"):
-        app.config["SECRET_KEY"] = _secret_key(instance)
+        app.config["SECRET_KEY"] = _secret_key(instance, read_only)
 
     database_url = app.config["DATABASE_URL"] or default_database_url(instance)
-    storage = Storage(database_url, instance / "blobs")
+    storage = Storage(database_url, instance / "blobs", read_only=read_only)
     storage.create_schema()
-    key = LabKey.load_or_create(instance / "keys")
+    if read_only:
+        key = LabKey.load_for_reading(instance / "keys")
+    else:
+        key = LabKey.load_or_create(instance / "keys")
     try:
         trusted = [bytes.fromhex(h) for h in app.config.get("TRUSTED_PUBLIC_KEYS", ())]
     except ValueError:
@@ -239,7 +263,20 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
             response.headers.setdefault("Referrer-Policy", "same-origin")
         return response
 
-    if app.config["START_WORKERS"]:
+    @app.before_request
+    def _refuse_changes_when_read_only():
+        if read_only and request.method in ("POST", "PUT", "PATCH", "DELETE") and (
+            request.endpoint != "auth.login"
+        ):
+            message = "this instance is open read-only (an audit copy); nothing can be changed"
+            if request.path.startswith("/api/"):
+                response = jsonify(error=message)
+                response.status_code = 503
+                return response
+            return render_template("error.html", code=503, message=message), 503
+        return None
+
+    if app.config["START_WORKERS"] and not read_only:
         services.start_workers(app.config["WORKERS"])
         atexit.register(services.stop_workers)
     return app

@@ -368,14 +368,21 @@ def _template_helpers() -> Mapping[str, Any]:
     return {"csrf_token": csrf_token, "has_role": has_role}
 
 
+def _log_sign_in(actor: str, action: str, subject: str) -> None:
+    # A read-only audit copy cannot record sign-ins (nor count failures, which then never wait).
+    if _storage().read_only:
+        return
+    with _storage().write() as conn:
+        log_event(conn, actor, action, subject)
+
+
 @bp.route("/login", methods=["GET", "POST"])
 def login():
     if request.method == "POST":
         username = request.form.get("username", "").strip()[:80]
         wait = _login_wait(username)
         if wait:
-            with _storage().write() as conn:
-                log_event(conn, username or "?", "login.throttled", username)
+            _log_sign_in(username or "?", "login.throttled", username)
             flash(
                 f"Too many failed sign-ins for this name; try again in {wait // 60 + 1} minutes.",
                 "error",
@@ -384,8 +391,7 @@ def login():
         user = check_password(_storage(), username, request.form.get("password", ""))
         if user is None:
             flash("Unknown user name or wrong password.", "error")
-            with _storage().write() as conn:
-                log_event(conn, username or "?", "login.failed", username)
+            _log_sign_in(username or "?", "login.failed", username)
             return render_template("login.html"), 401
         session.clear()
         session["user_id"] = user["id"]
@@ -393,8 +399,7 @@ def login():
             row = conn.execute(select(st.users).where(st.users.c.id == user["id"])).one()
         session["password_epoch"] = _password_epoch(row)
         csrf_token()
-        with _storage().write() as conn:
-            log_event(conn, user["username"], "login", user["username"])
+        _log_sign_in(user["username"], "login", user["username"])
         target = request.args.get("next", "")
         # Only same-site paths, never another host.
         if not target.startswith("/") or target.startswith("//"):
