@@ -42,7 +42,7 @@ from cryptography.hazmat.primitives.asymmetric.ed25519 import (
 from sqlalchemy import Connection, and_, func, or_, select
 
 from service import storage as st
-from service.dcc import missing_for_issue
+from service.render.dcc import missing_for_issue
 from service.storage import Storage, sha256_hex, utc_now
 
 logger = logging.getLogger(__name__)
