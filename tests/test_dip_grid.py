@@ -1,5 +1,7 @@
 """The cheap evaluation grid of tabulated dips (analysis.cbt.dip_grid) against its references."""
 
+import pickle
+
 import numpy as np
 import pytest
 
@@ -79,3 +81,13 @@ def test_full_model_grid_matches_todays_table_spline(n):
     walkers = xs[None, :, None] + np.array([-0.1, 0.0, 0.1])  # lock-in nodes on the last axis
     assert np.max(np.abs(shape(walkers, us) - shape.reference(walkers, us))) < 1e-13
     assert shape.model_error(1.0) >= shape._grid.measured_error
+
+
+def test_full_model_travels_between_processes_by_its_defining_numbers():
+    # Parallel sweep fits send shapes between processes: by (N, C_0/C), rebuilt from a cache.
+    shape = FullTunnellingShape(33)
+    copy = pickle.loads(pickle.dumps(shape))
+    assert len(pickle.dumps(shape)) < 1000
+    assert copy == shape and copy.name == shape.name
+    x = np.linspace(-20.0, 20.0, 81)
+    assert np.array_equal(copy(x, 1.3), shape(x, 1.3))

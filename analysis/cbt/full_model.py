@@ -170,6 +170,11 @@ class FullTunnellingShape:
         self._check_u(u_arr)
         return 1.0 - u_arr * self._grid.reduced(x, u_arr)
 
+    def __reduce__(self):
+        # Sent between processes (parallel sweep fits) by its two defining numbers, and rebuilt
+        # from a per-process cache, instead of shipping the spline and the grid (~4 MB).
+        return (shared_shape, (int(self.n_junctions), float(self.c0_ratio)))
+
     def _check_u(self, u_arr: np.ndarray) -> None:
         if not u_arr.size:
             return
@@ -247,3 +252,9 @@ class FullTunnellingShape:
         i = int(np.argmax(g >= 1.0 - 0.5 * depth))
         slope = (g[i + 1] - g[i - 1]) / (xs[i + 1] - xs[i - 1])
         return self.model_error(u) / (abs(slope) * xs[i])
+
+
+@lru_cache(maxsize=16)
+def shared_shape(n_junctions: int, c0_ratio: float = 0.0) -> FullTunnellingShape:
+    """One FullTunnellingShape per (N, C_0/C) and process (the grid is built once)."""
+    return FullTunnellingShape(n_junctions, c0_ratio)
