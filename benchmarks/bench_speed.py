@@ -125,7 +125,8 @@ def run_cli(args: list[str], tree: Path) -> tuple[float, float]:
     env = dict(os.environ, PYTHONPATH=str(tree), OPENBLAS_NUM_THREADS="1")
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
     start = time.perf_counter()
-    done = subprocess.run([sys.executable, "-m", "service.cli", *args], cwd=tree, env=env,
+    module = "service.cli.main" if (tree / "service" / "cli" / "main.py").exists() else "service.cli"
+    done = subprocess.run([sys.executable, "-m", module, *args], cwd=tree, env=env,
                           stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True, check=False)
     wall = time.perf_counter() - start
     after = resource.getrusage(resource.RUSAGE_CHILDREN)
