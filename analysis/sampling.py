@@ -82,13 +82,31 @@ class NotConvergedError(RuntimeError):
 def initial_ball(
     centre: np.ndarray, scale: np.ndarray, walkers: int, rng: np.random.Generator,
     log_prob: Callable[[np.ndarray], np.ndarray], spread: float = 0.1,
+    covariance: np.ndarray | None = None,
 ) -> np.ndarray:
-    """Walkers in a Gaussian ball of ``spread`` × ``scale`` around ``centre``, all of finite log_prob."""
+    """Walkers in a Gaussian ball of ``spread`` × ``scale`` around ``centre``, all of finite log_prob.
+
+    With ``covariance`` (e.g. the inverse Fisher matrix of a least-squares optimum) the ball has
+    that shape and ``spread`` scales it: spread 1 draws the walkers from the Gaussian
+    approximation of the posterior itself, so little of the chain is spent forgetting the start.
+    """
     centre = np.asarray(centre, dtype=float)
     # A zero or vanishing scale (e.g. a standard error on a prior boundary) would give a flat ball.
     floor = np.abs(centre) * 1e-4 + 1e-12
-    scale = np.maximum(np.asarray(scale, dtype=float), floor)
-    pos = centre + spread * scale * rng.standard_normal((walkers, centre.size))
+    if covariance is not None:
+        cov = np.atleast_2d(np.asarray(covariance, dtype=float))
+        cov = 0.5 * (cov + cov.T) + np.diag(floor**2)
+        try:
+            factor = np.linalg.cholesky(cov)
+        except np.linalg.LinAlgError:
+            factor = np.diag(np.sqrt(np.maximum(np.diag(cov), floor**2)))
+    else:
+        factor = np.diag(np.maximum(np.asarray(scale, dtype=float), floor))
+
+    def draw(k: int, spread: float) -> np.ndarray:
+        return centre + spread * rng.standard_normal((k, centre.size)) @ factor.T
+
+    pos = draw(walkers, spread)
     for attempt in range(200):
         bad = ~np.isfinite(log_prob(pos))
         if not bad.any():
@@ -97,7 +115,7 @@ def initial_ball(
         # prior boundary then still gets a full-rank half-ball), shrinking only if that keeps failing.
         if attempt and attempt % 40 == 0:
             spread *= 0.5
-        pos[bad] = centre + spread * scale * rng.standard_normal((int(bad.sum()), centre.size))
+        pos[bad] = draw(int(bad.sum()), spread)
     raise ValueError("could not place walkers where the posterior is finite; check the start point")
 
 
@@ -108,6 +126,8 @@ def sample_posterior(
     *,
     names: tuple[str, ...] | None = None,
     scale: np.ndarray | None = None,
+    covariance: np.ndarray | None = None,
+    ball_spread: float | None = None,
     walkers: int | None = None,
     block: int = 200,
     max_steps: int = 20_000,
@@ -121,7 +141,9 @@ def sample_posterior(
 
     ``log_prob`` takes an (n_walkers, n_params) array and returns (n_walkers,) log densities (with
     ``vectorized=True``), −inf outside the prior. ``scale`` is a typical parameter uncertainty
-    (e.g. least-squares standard errors) that sizes the initial ball. ``progress(fraction, step)``
+    (e.g. least-squares standard errors) that sizes the initial ball; ``covariance`` (e.g. the
+    least-squares covariance) shapes it instead, drawn at ``ball_spread`` (default 1 with a
+    covariance, 0.1 with a scale). ``progress(fraction, step)``
     is called after each block with a conservative completed fraction.
     """
     if seed is None:
@@ -132,7 +154,9 @@ def sample_posterior(
     names = names or tuple(f"p{i}" for i in range(ndim))
     rng = np.random.default_rng(seed)
     sc = scale if scale is not None else np.abs(initial) * 1e-3 + 1e-12
-    p0 = initial_ball(initial, sc, nwalk, rng, log_prob if vectorized else _vectorise(log_prob))
+    spread = ball_spread if ball_spread is not None else (1.0 if covariance is not None else 0.1)
+    p0 = initial_ball(initial, sc, nwalk, rng, log_prob if vectorized else _vectorise(log_prob),
+                      spread=spread, covariance=covariance)
 
     # emcee draws from a legacy RandomState; seed it from our generator so one seed fixes all.
     moves = [(emcee.moves.DEMove(), 0.8), (emcee.moves.DESnookerMove(), 0.2)] if differential_evolution else None
