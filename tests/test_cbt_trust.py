@@ -162,3 +162,78 @@ def test_dip_outside_central_half_is_refused():
     keep = bias >= -0.2 * bias.max()
     with pytest.raises(ModelEdgeError, match="bias offset"):
         fit_sweep(SweepData(bias[keep], g[keep], setup), seed=1, shape=FullTunnellingShape(3), settings=QUICK)
+
+
+def test_gum_g42_degrees_of_freedom_of_an_uncertain_uncertainty():
+    from analysis.budget import degrees_of_freedom_from_reliability
+
+    # GUM (JCGM 100:2008) G.4.2: an uncertainty judged reliable to about 25 % has ν = 8.
+    assert degrees_of_freedom_from_reliability(0.25) == pytest.approx(8.0)
+    assert degrees_of_freedom_from_reliability(0.5) == pytest.approx(2.0)  # eq. (G.3), derived
+    assert degrees_of_freedom_from_reliability(0.0) == np.inf
+
+
+def test_budget_has_a_row_for_every_input_and_lists_defaults():
+    from analysis.cbt.uncertainty import (
+        DEFAULT_RELIABILITY,
+        TypeBInputs,
+        defaulted_inputs,
+        temperature_budget,
+    )
+
+    bias, g, setup = noisy_exact(1.0, seed=12)
+    shape = FullTunnellingShape(3)
+    fit = fit_sweep(SweepData(bias, g, setup), seed=1, shape=shape, settings=QUICK)
+    silent = TypeBInputs()
+    budget, factor = temperature_budget(fit, shape, setup, silent)
+    names = [r.quantity for r in budget.rows]
+    for needed in ("posterior", "bias-voltage scale", "excitation", "non-uniformity", "series", "self-heating",
+                   "model truncation"):
+        assert any(needed in n for n in names), needed
+    # Nothing stated: no correction applied from a default spread, and no defaulted row silently zero.
+    assert factor == 1.0
+    for row in budget.rows:
+        if "not stated" in row.note:
+            assert row.contribution > 0, row.quantity
+            assert row.degrees_of_freedom == pytest.approx(0.5 / DEFAULT_RELIABILITY**2), row.quantity
+    deviations = " | ".join(defaulted_inputs(silent, setup, heating_model_given=False))
+    for word in ("bias-voltage scale", "excitation amplitude not stated", "spread not stated",
+                 "series (lead) resistance not stated", "no electron-phonon coupling"):
+        assert word in deviations, word
+    # Defaulted rows make the coverage factor larger than the normal 1.96 (finite ν_eff).
+    assert budget.coverage_factor > 1.96
+    stated = TypeBInputs(bias_scale_relative_u=0.0, bias_scale_stated=True, resistance_spread=0.0,
+                         resistance_spread_stated=True, excitation_amplitude_stated=True,
+                         series_resistance_stated=True)
+    tight, _ = temperature_budget(fit, shape, setup, stated)
+    assert tight.combined_standard_uncertainty < budget.combined_standard_uncertainty
+    assert defaulted_inputs(stated, setup, heating_model_given=True) == []
+
+
+def test_correlated_noise_gets_a_noise_model_and_a_structure_row():
+    from analysis.cbt.uncertainty import TypeBInputs, temperature_budget
+
+    bias, g, setup = exact_sweep(3, T_TRUE, 1.0, G_T)
+    rng = np.random.default_rng(21)
+    e = np.empty(g.size)
+    e[0] = rng.standard_normal()
+    for i in range(1, g.size):
+        e[i] = 0.7 * e[i - 1] + np.sqrt(1 - 0.49) * rng.standard_normal()
+    shape = FullTunnellingShape(3)
+    fit = fit_sweep(SweepData(bias, g + 3e-4 * G_T * e, setup), seed=1, shape=shape, settings=QUICK)
+    assert fit.diagnosis.noise_correlation == pytest.approx(0.7, abs=0.12)
+    assert abs(fit.temperature - T_TRUE) < 3 * fit.temperature_std
+    budget, _ = temperature_budget(fit, shape, setup, TypeBInputs())
+    assert any("residual structure" in r.quantity for r in budget.rows)
+    # Not blamed on heating: no heating template fires on AR(1) noise.
+    assert not any(t.significant and t.cause == "self-heating" for t in fit.diagnosis.templates)
+
+
+def test_slope_is_named_and_the_background_added():
+    bias, g, setup = noisy_exact(1.0, seed=13, relative_noise=2e-4)
+    v = bias / bias.max()
+    g = g * (1 + 4e-3 * v)
+    fit = fit_sweep(SweepData(bias, g, setup), seed=1, shape=FullTunnellingShape(3), settings=QUICK)
+    assert fit.diagnosis.background_added
+    assert any("linear background" in f for f in fit.diagnosis.findings)
+    assert abs(fit.temperature - T_TRUE) < 3 * fit.temperature_std

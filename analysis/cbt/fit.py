@@ -530,7 +530,7 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
         ls = least_squares_fit(shape, data, ls["theta"])
     outliers = tuple(sorted(excluded - given))
 
-    background_added = False
+    background_added, slope_t = False, 0.0
     for _ in range(2):
         order = data.used_order()
         white = replace(data, noise_correlation=0.0)
@@ -565,7 +565,7 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
         slope = next((t for t in tests if t.cause == "slope"), None)
         if auto_background and slope is not None and slope.significant:
             data = replace(data, background=True, noise_correlation=0.0)
-            background_added = True
+            background_added, slope_t = True, slope.t_statistic
             ls = least_squares_fit(shape, data, theta)
             continue
         break
@@ -576,7 +576,7 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
         findings.append(f"{len(outliers)} isolated outlier(s) beyond {threshold:.1f} robust standard deviations "
                         f"left out of the fit (at {_describe_points(data, outliers)})")
     if background_added:
-        findings.append(f"a linear slope under the dip (t = {slope.t_statistic:.1f}) was found and a linear "
+        findings.append(f"a linear slope under the dip (t = {slope_t:.1f}) was found and a linear "
                         "background fitted; state linear_background to make this explicit")
     if data.noise_correlation != 0.0:
         findings.append(f"the noise is correlated between neighbouring points (lag-1 {r1:.2f}): an AR(1) "
