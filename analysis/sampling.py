@@ -119,6 +119,56 @@ def initial_ball(
     raise ValueError("could not place walkers where the posterior is finite; check the start point")
 
 
+def independence_move(centre: np.ndarray, covariance: np.ndarray, df: float = 5.0,
+                      inflate: float = 1.25) -> emcee.moves.MHMove:
+    """Independence Metropolis–Hastings proposal from a multivariate Student t.
+
+    Proposals are drawn from t_df(centre, inflate² × covariance) whatever the walker's position
+    and accepted with the Metropolis–Hastings ratio p(x′) q(x) / (p(x) q(x′)) (Tierney, Ann. Stat.
+    22, 1701 (1994), the independence chain). With a Gaussian approximation of the posterior (the
+    least-squares optimum and its covariance) nearly every proposal is an independent draw, so the
+    autocorrelation time falls to 1–2 steps; the heavier t tails (df = 5) and the 1.25 inflation
+    keep q wider than the posterior, the condition for geometric ergodicity of this chain
+    (Mengersen & Tweedie, Ann. Stat. 24, 101 (1996)). Its random numbers come from emcee's seeded
+    state, so chains stay reproducible.
+    """
+    centre = np.asarray(centre, dtype=float)
+    d = centre.size
+    factor = np.linalg.cholesky(np.atleast_2d(covariance) * inflate**2)
+
+    def log_q(x: np.ndarray) -> np.ndarray:
+        z = np.linalg.solve(factor, (np.atleast_2d(x) - centre).T)
+        return -0.5 * (df + d) * np.log1p(np.sum(z * z, axis=0) / df)
+
+    def propose(coords: np.ndarray, random: np.random.RandomState) -> tuple[np.ndarray, np.ndarray]:
+        k = coords.shape[0]
+        z = random.randn(k, d) / np.sqrt(random.chisquare(df, k) / df)[:, None]
+        new = centre + z @ factor.T
+        return new, log_q(coords) - log_q(new)
+
+    return emcee.moves.MHMove(propose)
+
+
+#: Move sets by name: ``"de-snooker"`` differential evolution 0.8 + snooker 0.2 (the default),
+#: ``"stretch"`` the affine-invariant stretch move, ``"independence"`` the independence proposal
+#: of :func:`independence_move` 0.7 with differential evolution 0.3 (needs a covariance; the DE
+#: share keeps the chain moving where the Gaussian approximation is poor).
+MOVE_SETS = ("de-snooker", "stretch", "independence")
+
+
+def _moves(name: str, initial: np.ndarray, covariance: np.ndarray | None):
+    if name == "de-snooker":
+        return [(emcee.moves.DEMove(), 0.8), (emcee.moves.DESnookerMove(), 0.2)], "differential evolution 0.8 + snooker 0.2"
+    if name == "stretch":
+        return None, "stretch"
+    if name == "independence":
+        if covariance is None:
+            raise ValueError("the independence move needs a covariance (e.g. from least squares)")
+        return ([(independence_move(initial, covariance), 0.9), (emcee.moves.DEMove(), 0.1)],
+                "independence t5 (least-squares covariance × 1.25²) 0.9 + differential evolution 0.1")
+    raise ValueError(f"unknown move set {name!r}; expected one of {MOVE_SETS}")
+
+
 def sample_posterior(
     log_prob: Callable[[np.ndarray], np.ndarray],
     initial: np.ndarray,
@@ -136,6 +186,7 @@ def sample_posterior(
     vectorized: bool = True,
     differential_evolution: bool = True,
     progress: ProgressCallback | None = None,
+    moves: str | None = None,
 ) -> PosteriorResult:
     """Run emcee from around ``initial`` until the convergence rule holds (module docstring).
 
@@ -144,7 +195,9 @@ def sample_posterior(
     (e.g. least-squares standard errors) that sizes the initial ball; ``covariance`` (e.g. the
     least-squares covariance) shapes it instead, drawn at ``ball_spread`` (default 1 with a
     covariance, 0.1 with a scale). ``progress(fraction, step)``
-    is called after each block with a conservative completed fraction.
+    is called after each block with a conservative completed fraction. ``moves`` names a move
+    set of :data:`MOVE_SETS` (default: differential evolution, or stretch when
+    ``differential_evolution`` is False).
     """
     if seed is None:
         raise ValueError("an explicit seed is required for a reproducible posterior")
@@ -159,8 +212,9 @@ def sample_posterior(
                       spread=spread, covariance=covariance)
 
     # emcee draws from a legacy RandomState; seed it from our generator so one seed fixes all.
-    moves = [(emcee.moves.DEMove(), 0.8), (emcee.moves.DESnookerMove(), 0.2)] if differential_evolution else None
-    sampler = emcee.EnsembleSampler(nwalk, ndim, log_prob, vectorize=vectorized, moves=moves)
+    move_name = moves or ("de-snooker" if differential_evolution else "stretch")
+    move_list, move_words = _moves(move_name, initial, covariance)
+    sampler = emcee.EnsembleSampler(nwalk, ndim, log_prob, vectorize=vectorized, moves=move_list)
     sampler._random = np.random.RandomState(int(rng.integers(0, 2**31 - 1)))
 
     state = p0
@@ -207,7 +261,7 @@ def sample_posterior(
         burn_in=burn,
         converged=converged,
         seed=seed,
-        moves="differential evolution 0.8 + snooker 0.2" if differential_evolution else "stretch",
+        moves=move_words,
     )
 
 

@@ -22,7 +22,7 @@ import math
 from dataclasses import dataclass, field, replace
 
 import numpy as np
-from scipy import optimize
+from scipy import linalg, optimize
 
 from analysis.cbt.models import (
     HALF_WIDTH_FACTOR,
@@ -38,7 +38,7 @@ from analysis.cbt.models import (
 from analysis.cbt.robust import (
     MAX_OUTLIER_FRACTION,
     ResidualDiagnosis,
-    correlation_is_significant,
+    choose_noise_model,
     difference_noise_scale,
     flag_outliers,
     hac_inflation,
@@ -80,6 +80,9 @@ class SweepData:
     background: bool = False
     excluded: tuple[int, ...] = ()
     noise_correlation: float = 0.0
+    #: Lower Cholesky factor of the noise correlation of the used points in bias order (a general
+    #: stationary noise model, analysis.cbt.robust.NoiseModel); None for white or AR(1) noise.
+    noise_factor: np.ndarray | None = field(default=None, repr=False, compare=False)
 
     def used_order(self) -> np.ndarray:
         """Indices of the points in the likelihood, sorted by bias."""
@@ -96,10 +99,14 @@ class FitSettings:
     """Sampler settings. Defaults give certificate-grade chains; tests may use lighter ones."""
 
     walkers: int = 12
-    block: int = 100
+    block: int = 50
     max_steps: int = 20_000
     min_tau_multiple: float = 50.0
     tau_tolerance: float = 0.05
+    #: analysis.sampling.MOVE_SETS; the independence proposal from the least-squares covariance
+    #: has τ ≈ 2 steps on these posteriors against ≈ 13 for differential evolution
+    #: (benchmarks/bench_cbt_sampler.py).
+    moves: str = "independence"
 
 
 @dataclass(frozen=True)
@@ -175,6 +182,11 @@ def whiten(data: SweepData, values: np.ndarray, axis: int = -1) -> np.ndarray:
         z[..., 0] = math.sqrt(1.0 - rho * rho) * y[..., 0]
         z[..., 1:] = y[..., 1:] - rho * y[..., :-1]
         y = z
+    if data.noise_factor is not None:
+        # General stationary noise with correlation L Lᵀ: z = L⁻¹ y is white (GLS by Cholesky).
+        m = y.shape[-1]
+        flat = y.reshape(-1, m).T
+        y = linalg.solve_triangular(data.noise_factor, flat, lower=True, check_finite=False).T.reshape(y.shape)
     return np.moveaxis(y, -1, axis)
 
 
@@ -499,8 +511,8 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
 
     1. Soft-L1 least squares from the ordinary optimum ``ls`` (a few spikes cannot pull it); 2. residuals screened
     for isolated outliers, which are excluded and named (more than 5 % of the points: refused);
-    3. lag-1 correlation of the residuals: if significant, an AR(1) noise model (Prais–Winsten)
-    with ρ estimated from the residuals; 4. templates of a slope, an asymmetry and self-heating
+    3. a noise model (white, AR(1) or 1/f + white) chosen from the residuals' periodogram by
+    Whittle's likelihood and AIC, used in the likelihood (Prais–Winsten or Cholesky whitening); 4. templates of a slope, an asymmetry and self-heating
     tested against the whitened residuals; a significant slope adds the linear background (when
     ``auto_background``); 5. the Newey–West inflation of u(T) for what the noise model misses.
     Returns the data as the posterior should see them, the final least-squares fit and the findings.
@@ -530,45 +542,47 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
         ls = least_squares_fit(shape, data, ls["theta"])
     outliers = tuple(sorted(excluded - given))
 
+    # A slope is tested first, under white noise: a deterministic line would otherwise be taken
+    # for low-frequency noise. Under genuinely correlated noise this test fires more easily; the
+    # background it then adds costs a little precision and no bias.
     background_added, slope_t = False, 0.0
-    for _ in range(2):
-        order = data.used_order()
-        white = replace(data, noise_correlation=0.0)
-        ls_white = ls if data.noise_correlation == 0.0 else least_squares_fit(shape, white, ls["theta"])
-        curve = _design(shape, data, ls_white["theta"][None, :])[0] @ ls_white["amplitudes"]
-        resid = ((data.conductance - curve) * _weights(data))[order]
-        r1 = lag1_correlation(resid)
-        rho = float(np.clip(r1, -0.95, 0.95)) if correlation_is_significant(r1, resid.size) else 0.0
-        if rho != 0.0:
-            data = replace(data, noise_correlation=rho)
-            ls = least_squares_fit(shape, data, ls_white["theta"])
-        else:
-            data, ls = white, ls_white
+    data = replace(data, noise_correlation=0.0, noise_factor=None)
+    if not data.background:
+        ls = least_squares_fit(shape, data, ls["theta"])
         theta = ls["theta"]
-        model, jac_w, e_w = _model_parts(shape, data, theta)
+        _, jac_w, e_w = _model_parts(shape, data, theta)
         s_curve = _design(shape, data, theta[None, :])[0][:, 0] * ls["amplitudes"][0]
-        centred = data.bias - theta[2]
-        v_half = fwhm_volts(shape, data.setup, theta[0], theta[1])
-        templates = {
-            "asymmetry": (whiten(data, np.sign(centred) * (ls["amplitudes"][0] - s_curve)),
-                          "the dip is asymmetric: check for a thermal gradient along the array, a drifting "
-                          "bias offset or background-charge jumps"),
-            "self-heating": (whiten(data, _heating_template(shape, data, theta, ls, v_half)),
-                             "the residuals show the bias-dependent broadening of self-heating: give the "
-                             "electron-phonon coupling (island volume and constant) to fit a heating model"),
-        }
-        if not data.background:
-            templates["slope"] = (whiten(data, centred * s_curve),
-                                  "a linear slope under the dip: fit it with the linear background option "
-                                  "(linear_background)")
-        tests = template_tests(jac_w, e_w, templates)
-        slope = next((t for t in tests if t.cause == "slope"), None)
-        if auto_background and slope is not None and slope.significant:
-            data = replace(data, background=True, noise_correlation=0.0)
-            background_added, slope_t = True, slope.t_statistic
+        slope_test = template_tests(jac_w, e_w, {"slope": (whiten(data, (data.bias - theta[2]) * s_curve), "")})
+        if auto_background and slope_test and slope_test[0].significant:
+            data = replace(data, background=True)
+            background_added, slope_t = True, slope_test[0].t_statistic
             ls = least_squares_fit(shape, data, theta)
-            continue
-        break
+    order = data.used_order()
+    curve = _design(shape, data, ls["theta"][None, :])[0] @ ls["amplitudes"]
+    resid = ((data.conductance - curve) * _weights(data))[order]
+    r1 = lag1_correlation(resid)
+    noise = choose_noise_model(resid)
+    if noise.kind != "white":
+        data = replace(data, noise_correlation=noise.rho, noise_factor=noise.factor)
+        ls = least_squares_fit(shape, data, ls["theta"])
+    theta = ls["theta"]
+    _, jac_w, e_w = _model_parts(shape, data, theta)
+    s_curve = _design(shape, data, theta[None, :])[0][:, 0] * ls["amplitudes"][0]
+    centred = data.bias - theta[2]
+    v_half = fwhm_volts(shape, data.setup, theta[0], theta[1])
+    templates = {
+        "asymmetry": (whiten(data, np.sign(centred) * (ls["amplitudes"][0] - s_curve)),
+                      "the dip is asymmetric: check for a thermal gradient along the array, a drifting "
+                      "bias offset or background-charge jumps"),
+        "self-heating": (whiten(data, _heating_template(shape, data, theta, ls, v_half)),
+                         "the residuals show the bias-dependent broadening of self-heating: give the "
+                         "electron-phonon coupling (island volume and constant) to fit a heating model"),
+    }
+    if not data.background:
+        templates["slope"] = (whiten(data, centred * s_curve),
+                              "a linear slope under the dip: fit it with the linear background option "
+                              "(linear_background)")
+    tests = template_tests(jac_w, e_w, templates)
     inflation = float(hac_inflation(jac_w, e_w)[0])
     r1_after = lag1_correlation(e_w)
     findings = []
@@ -578,9 +592,9 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
     if background_added:
         findings.append(f"a linear slope under the dip (t = {slope_t:.1f}) was found and a linear "
                         "background fitted; state linear_background to make this explicit")
-    if data.noise_correlation != 0.0:
-        findings.append(f"the noise is correlated between neighbouring points (lag-1 {r1:.2f}): an AR(1) "
-                        f"noise model with ρ = {data.noise_correlation:.2f} is used in the likelihood")
+    if noise.kind != "white":
+        findings.append(f"the noise is not white (lag-1 correlation {r1:.2f}): a {noise.describe()} noise "
+                        "model, chosen from the residuals' periodogram, is used in the likelihood")
     for t in tests:
         if t.significant:
             findings.append(f"{t.advice} (t = {t.t_statistic:.1f}; adding it would move T by "
@@ -590,7 +604,8 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
                         f"inflated by {inflation:.2f} (Newey–West, lag {newey_west_lag(e_w.size)})")
     diagnosis = ResidualDiagnosis(
         outliers=outliers, outlier_scale=scale, outlier_threshold=threshold,
-        lag1_before_whitening=r1, noise_correlation=data.noise_correlation, lag1_after_whitening=r1_after,
+        lag1_before_whitening=r1, noise_correlation=data.noise_correlation, noise_model=noise.describe(),
+        lag1_after_whitening=r1_after,
         structure_inflation=inflation, hac_lag=newey_west_lag(e_w.size), templates=tuple(tests),
         background_added=background_added, findings=tuple(findings),
     )
@@ -666,7 +681,7 @@ def fit_sweep(
         covariance=to_log @ ls["covariance"] @ to_log,
         walkers=settings.walkers, block=settings.block, max_steps=settings.max_steps,
         min_tau_multiple=settings.min_tau_multiple, tau_tolerance=settings.tau_tolerance,
-        progress=progress,
+        progress=progress, moves=settings.moves,
     )
     s = post.samples.copy()
     s[:, 0] = np.exp(s[:, 0])
@@ -674,7 +689,9 @@ def fit_sweep(
     edge = edge_of_posterior(shape, s, bounds)
     if edge is not None:
         raise edge
-    coef, rss, _, ata = _profile(shape, data, s)
+    # Amplitude summaries from at most 600 evenly spaced samples (plenty for a standard deviation).
+    sub = s[:: max(1, s.shape[0] // 600)]
+    coef, rss, _, ata = _profile(shape, data, sub)
     n, k = data.used_order().size, coef.shape[1]
     # Amplitudes: law of total variance over the conditional least-squares estimates.
     sigma2 = rss / (n - k)

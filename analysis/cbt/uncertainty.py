@@ -121,7 +121,8 @@ def temperature_budget(
     row; the coupling ΣΩ does (it sets the bias dependence), with a sensitivity from two
     least-squares refits of ``data`` at ΣΩ (1 ± 1 %). Without a heating model the row is the
     shift of T that adding the first-order heating term to the fit would cause
-    (analysis.cbt.robust, template "self-heating"), with its t-statistic in the note.
+    (analysis.cbt.robust, template "self-heating") when the data show it (|t| ≥ 4), else zero with
+    the detection limit in the note.
 
     Returns the Budget (whose estimate is the corrected temperature) and the applied
     non-uniformity correction factor. The correction for a *stated* resistance spread σ_R is
@@ -139,8 +140,8 @@ def temperature_budget(
     nu_fit = max(1.0, fit.corrected_bias.size - 4.0)
     diagnosis = fit.diagnosis
     noise_words = ""
-    if diagnosis is not None and diagnosis.noise_correlation != 0.0:
-        noise_words = f"; AR(1) noise model, ρ = {diagnosis.noise_correlation:.2f}"
+    if diagnosis is not None and diagnosis.noise_model != "white":
+        noise_words = f"; noise model {diagnosis.noise_model}"
     rows.append(
         BudgetRow(
             "temperature from the fit (posterior)", fit.temperature, fit.temperature_std, "K", "A", "posterior",
@@ -259,12 +260,19 @@ def temperature_budget(
     elif setup.heating is None:
         test = diagnosis.template("self-heating") if diagnosis is not None else None
         if test is not None:
+            # A significant heating signature: its shift of T is carried in full. Below the detection
+            # limit the data show no heating, the row is zero and says how large a shift would have
+            # been seen (counting an insignificant estimate would only pad U on clean sweeps).
+            limit = 4.0 * test.temperature_shift_std
             rows.append(
                 BudgetRow(
-                    "self-heating (no heating model)", 0.0, abs(test.temperature_shift), "K", "B", "normal", 1.0,
-                    sensitivity_unit="1",
-                    note=f"shift of T if a first-order heating term were fitted (t = {test.t_statistic:.1f}"
-                    f"{', significant' if test.significant else ', not significant'}); give the coupling to model it",
+                    "self-heating (no heating model)", 0.0, abs(test.temperature_shift) if test.significant else 0.0,
+                    "K", "B", "normal", 1.0, sensitivity_unit="1",
+                    note=(f"residuals show self-heating (t = {test.t_statistic:.1f}): fitting a first-order heating "
+                          f"term would shift T by {test.temperature_shift:.2g} K, carried here; give the coupling "
+                          "to model it") if test.significant else
+                    (f"tested, not seen: heating signature t = {test.t_statistic:.1f}; a heating shift of T larger "
+                     f"than about {limit:.2g} K would have been detected"),
                 )
             )
         else:
