@@ -20,6 +20,7 @@ from dataclasses import dataclass
 
 from analysis.cbt.fit import (
     FitSettings,
+    ModelEdgeError,
     SweepData,
     SweepFit,
     fit_sweep,
@@ -73,7 +74,15 @@ def fit_sweep_chosen(
     start = initial_guess(data)
     u0 = float(least_squares_fit(higher_order_shape, data, start)["theta"][1])
     choice = choose_shape(max(u0, 0.0), data.setup.junctions_in_series, c0_ratio)
-    fit = fit_sweep(data, seed=seed, shape=choice.shape, settings=settings, progress=progress)
+    try:
+        fit = fit_sweep(data, seed=seed, shape=choice.shape, settings=settings, progress=progress)
+    except ModelEdgeError as exc:
+        # At the edge of the first model's range: another model may hold the sweep inside its own.
+        refined = choose_shape(max(exc.u_estimate, 0.0), data.setup.junctions_in_series, c0_ratio)
+        if refined.shape == choice.shape:
+            raise
+        choice = refined
+        fit = fit_sweep(data, seed=seed, shape=choice.shape, settings=settings, progress=progress)
     refined = choose_shape(fit.u, data.setup.junctions_in_series, c0_ratio)
     if refined.shape != choice.shape:  # the start was on the wrong side of a boundary
         choice = refined
