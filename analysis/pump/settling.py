@@ -1,0 +1,459 @@
+"""The settling transient after each pump switch, measured from the on/off record itself.
+
+After the pump is switched on or off the indicated current does not jump to its new level: the
+ammeter's filter, dielectric relaxation in the cabling and the pump's own start-up leave a
+transient that decays over seconds. Readings inside it are dropped before the on and off segments
+are averaged (Giblin et al., Nat. Commun. 3, 930 (2012), drop the readings just after each switch),
+but a tail left in the kept readings does not cancel in the on − off difference unless the
+transients after switch-on and switch-off are equal and opposite — a lagging ammeter, an overshoot
+at both switches or a start-up transient of the pump all bias the result.
+
+So the transient is measured rather than assumed. Every segment after a switch is aligned on its
+switch and the segments are stacked (one matrix per switch direction and segment length). The
+reading k of segment s is modelled as
+
+    y_sk = L_s + A_dir(s) exp(−t_k/τ) + β t_k + noise,                                        (1)
+
+t_k the time since the switch, L_s a free level per segment (profiled out by subtracting each
+segment's mean over the fitted window, which makes the fit exact in the L_s — Frisch–Waugh), A_on
+and A_off the amplitudes after switch-on and switch-off, τ shared, and β a common within-segment
+slope that absorbs the offset drift. For a given τ the model is linear; τ is found by a grid and a
+bounded refinement of the residual sum of squares. The stacked sums make each evaluation cost one
+pass over the positions of a segment, not over the record.
+
+Residual bias of a discard (derived). With readings before d dropped, segment s contributes
+the mean of A exp(−t_k/τ) over its kept readings, ḡ_s(d) A, to its mean. The cycle difference
+ΔI_j = Ī_on,j − [(1 − w_j) Ī_off,j + w_j Ī_off,j+1] therefore carries
+
+    b_j(d) = A_on ḡ_on,j(d) − A_off [(1 − w_j) ḡ_off,j(d) + w_j ḡ_off,j+1(d)],                (2)
+
+and the mean difference the average of b_j over cycles. For equal segments of n readings at
+spacing Δt with the first m dropped, ḡ(d) = e^{−mΔt/τ} (1 − e^{−(n−m)Δt/τ}) / [(n − m)(1 − e^{−Δt/τ})]
+(a geometric series), so b = (A_on − A_off) ḡ(d): a transient that is the same after both switches
+cancels and one of opposite sign doubles.
+
+Uncertainty. The reading noise is coloured and the offset wanders, so the least-squares covariance
+of (1) would be wrong. The fit is repeated with each of G contiguous blocks of segments left out,
+and the delete-a-group jackknife variance u² = (G − 1)/G Σ_g (θ_(g) − θ̄)² (Efron & Tibshirani,
+An Introduction to the Bootstrap (1993), ch. 11, eq. 11.5 for G = n) of every fitted quantity,
+including the residual bias b(d), uses the record's own noise, whatever its colour.
+
+Choice of the discard. The discard d is the smallest one (never less than the operator's stated
+settling time) for which the bound |b̂(d)| + t_{0.975,G−1} u(b̂(d)) is at most a tenth of the
+standard uncertainty of the result; the bound enters the budget as a rectangular allowance.
+Because the fitted shape is only an approximation of the real transient (two time constants, a
+filter response, an overshoot), the fit is repeated over the readings from d/2 onwards until the
+discard no longer grows: what decides the residual bias is the tail near and beyond d, and a fit
+over that window follows the slowest component present there rather than the fast bulk of the
+transient. If no discard leaving at least a fifth of each segment meets the bound — a transient
+that cannot be resolved, or segments too short to outlast it — the record is refused.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import optimize, stats
+
+#: The discard must bring the residual bias bound below this fraction of the standard uncertainty.
+BIAS_FRACTION_OF_U = 0.1
+#: At least this fraction of every segment must remain after the discard.
+MIN_KEPT_FRACTION = 0.2
+#: Largest time constant searched, as a fraction of the median segment duration: a slower
+#: relaxation cannot be told from a change of the pump current within a segment.
+MAX_TAU_FRACTION = 0.25
+#: Contiguous blocks of segments left out in turn by the jackknife.
+JACKKNIFE_BLOCKS = 20
+#: |A|/u(A) above which an amplitude counts as resolved.
+RESOLVED_Z = 3.0
+
+
+class SettlingError(ValueError):
+    """The settling transient cannot be handled: unresolved and longer than the segments allow.
+
+    ``analysis`` holds the measured transient when the refusal came after the fit."""
+
+    def __init__(self, message: str, analysis: SettlingAnalysis | None = None) -> None:
+        super().__init__(message)
+        self.analysis = analysis
+
+
+# --------------------------------------------------------------------------------------------
+# Stacking
+
+
+@dataclass(frozen=True, eq=False)
+class _Stack:
+    """Segments of one switch direction and length, aligned on the switch."""
+
+    direction: int  # 1: after switch-on, 0: after switch-off
+    segments: np.ndarray  # segment numbers (rows)
+    since: np.ndarray  # mean time since the switch at each position, s
+    values: np.ndarray  # (rows, positions), A
+    block: np.ndarray  # jackknife block of each row
+
+
+@dataclass(frozen=True, eq=False)
+class StackedRecord:
+    """The record's segments after a switch, stacked by direction and length."""
+
+    stacks: tuple[_Stack, ...]
+    reading_interval_s: float
+    segment_duration_s: float  # median
+    blocks: int
+
+
+def stack_segments(time_s: np.ndarray, current_a: np.ndarray, starts: np.ndarray,
+                   stops: np.ndarray, states: np.ndarray, blocks: int = JACKKNIFE_BLOCKS
+                   ) -> StackedRecord:
+    """Stack every segment that begins at a switch (the first segment of the record does not:
+    whether the pump had just been switched before the record started is unknown)."""
+    t = np.asarray(time_s, dtype=float)
+    y = np.asarray(current_a, dtype=float)
+    lengths = stops - starts
+    dt = float(np.median(np.diff(t)))
+    ends = np.append(t[starts[1:]], t[-1] + dt)
+    duration = float(np.median((ends - t[starts])[1:])) if starts.size > 1 else float(ends[0] - t[0])
+    switched = np.arange(1, starts.size)
+    if switched.size < 2:
+        raise SettlingError("the record needs at least two switches to measure the settling transient")
+    span = t[starts[-1]] - t[starts[1]]
+    g = max(2, min(blocks, switched.size // 2))
+    block_of = np.minimum(((t[starts] - t[starts[1]]) / (span if span > 0 else 1.0) * g).astype(int),
+                          g - 1)
+    stacks = []
+    for direction in (1, 0):
+        mine = switched[states[switched] == direction]
+        for length in np.unique(lengths[mine]):
+            rows = mine[lengths[mine] == length]
+            idx = starts[rows, None] + np.arange(length)[None, :]
+            since = t[idx] - t[starts[rows], None]
+            stacks.append(_Stack(direction, rows, since.mean(axis=0), y[idx], block_of[rows]))
+    return StackedRecord(tuple(stacks), dt, duration, g)
+
+
+# --------------------------------------------------------------------------------------------
+# Fit of the shared transient
+
+
+@dataclass(frozen=True)
+class TransientFit:
+    """Amplitudes after switch-on and switch-off, the shared time constant and the slope."""
+
+    amplitude_on_a: float
+    amplitude_off_a: float
+    tau_s: float
+    slope_a_per_s: float
+    window_start_s: float  # readings at least this long after the switch were fitted
+
+    def shape(self, since_s: np.ndarray, direction: int) -> np.ndarray:
+        """A_dir exp(−t/τ): the fitted transient at times t after a switch (eq. 1)."""
+        a = self.amplitude_on_a if direction == 1 else self.amplitude_off_a
+        return a * np.exp(-np.asarray(since_s, dtype=float) / self.tau_s)
+
+
+@dataclass(frozen=True)
+class _Sums:
+    """Column sums and row counts of one stack over the fitted window, per jackknife block."""
+
+    direction: int
+    since: np.ndarray
+    total: np.ndarray  # column sums over all rows
+    rows: int
+    by_block: np.ndarray  # (blocks, positions)
+    rows_by_block: np.ndarray
+
+
+def _window_sums(rec: StackedRecord, start_s: float) -> list[_Sums]:
+    out = []
+    for s in rec.stacks:
+        cols = s.since >= start_s
+        if cols.sum() < 3:
+            continue
+        v = s.values[:, cols]
+        by_block = np.zeros((rec.blocks, v.shape[1]))
+        np.add.at(by_block, s.block, v)
+        out.append(_Sums(s.direction, s.since[cols], v.sum(axis=0), v.shape[0], by_block,
+                         np.bincount(s.block, minlength=rec.blocks)))
+    return out
+
+
+def _solve(sums: list[_Sums], tau: float, leave_out: int | None) -> tuple[np.ndarray, float]:
+    """Least-squares (A_on, A_off, β) of eq. (1) at fixed τ, and the explained sum of squares."""
+    xtx = np.zeros((3, 3))
+    xty = np.zeros(3)
+    for s in sums:
+        c = s.total if leave_out is None else s.total - s.by_block[leave_out]
+        n = s.rows if leave_out is None else s.rows - s.rows_by_block[leave_out]
+        if n == 0:
+            continue
+        e = np.exp(-s.since / tau)
+        e = e - e.mean()
+        z = s.since - s.since.mean()
+        a = 0 if s.direction == 1 else 1
+        xtx[a, a] += n * (e @ e)
+        xtx[a, 2] += n * (e @ z)
+        xtx[2, a] += n * (e @ z)
+        xtx[2, 2] += n * (z @ z)
+        xty[a] += e @ c
+        xty[2] += z @ c
+    try:
+        theta = np.linalg.solve(xtx, xty)
+    except np.linalg.LinAlgError:
+        theta = np.linalg.lstsq(xtx, xty, rcond=None)[0]
+    return theta, float(theta @ xty)
+
+
+def _fit(sums: list[_Sums], tau_grid: np.ndarray, leave_out: int | None, start_s: float
+         ) -> TransientFit:
+    explained = np.array([_solve(sums, tau, leave_out)[1] for tau in tau_grid])
+    i = int(np.argmax(explained))
+    lo = tau_grid[max(i - 1, 0)]
+    hi = tau_grid[min(i + 1, tau_grid.size - 1)]
+    tau = float(tau_grid[i])
+    if hi > lo:
+        res = optimize.minimize_scalar(lambda lt: -_solve(sums, math.exp(lt), leave_out)[1],
+                                       bounds=(math.log(lo), math.log(hi)), method="bounded",
+                                       options={"xatol": 1e-4})
+        if -res.fun >= explained[i]:
+            tau = float(math.exp(res.x))
+    theta, _ = _solve(sums, tau, leave_out)
+    return TransientFit(float(theta[0]), float(theta[1]), tau, float(theta[2]), start_s)
+
+
+def _tau_grid(rec: StackedRecord) -> np.ndarray:
+    lo = 0.3 * rec.reading_interval_s
+    hi = max(MAX_TAU_FRACTION * rec.segment_duration_s, 2 * lo)
+    return np.geomspace(lo, hi, 48)
+
+
+# --------------------------------------------------------------------------------------------
+# Residual bias of a discard
+
+
+def _mean_decay(since: np.ndarray, d: float, tau: float) -> float:
+    """ḡ(d): mean of exp(−t_k/τ) over the positions with t_k ≥ d (eq. 2)."""
+    kept = since[since >= d]
+    return float(np.mean(np.exp(-kept / tau))) if kept.size else 0.0
+
+
+def residual_bias(rec: StackedRecord, fit: TransientFit, d: float,
+                  segment_weight: np.ndarray) -> float:
+    """Mean over cycles of eq. (2): the bias the fitted transient leaves in the mean cycle
+    difference when readings within d of each switch are dropped.
+
+    ``segment_weight[s]`` is segment s's total weight in the mean difference (+1/J for each on
+    segment, −(1 − w_j)/J and −w_j/J for the off segments of cycle j, J cycles)."""
+    total = 0.0
+    for s in rec.stacks:
+        w = float(np.sum(segment_weight[s.segments]))
+        if w:
+            a = fit.amplitude_on_a if s.direction == 1 else fit.amplitude_off_a
+            total += w * a * _mean_decay(s.since, d, fit.tau_s)
+    return total
+
+
+# --------------------------------------------------------------------------------------------
+# The measured transient and the discard it calls for
+
+
+@dataclass(frozen=True, eq=False)
+class TransientComponent:
+    """One fit of eq. (1) over the readings from ``fit.window_start_s`` on, with its jackknife."""
+
+    fit: TransientFit
+    replicates: tuple[TransientFit, ...]
+    amplitude_on_u_a: float
+    amplitude_off_u_a: float
+    tau_u_s: float
+    resolved: bool
+
+    def as_dict(self) -> dict:
+        f = self.fit
+        return {
+            "fit_window_start_s": f.window_start_s,
+            "amplitude_after_switch_on_A": f.amplitude_on_a,
+            "amplitude_after_switch_on_u_A": self.amplitude_on_u_a,
+            "amplitude_after_switch_off_A": f.amplitude_off_a,
+            "amplitude_after_switch_off_u_A": self.amplitude_off_u_a,
+            "time_constant_s": f.tau_s, "time_constant_u_s": self.tau_u_s,
+            "resolved": self.resolved,
+        }
+
+
+@dataclass(frozen=True, eq=False)
+class SettlingAnalysis:
+    """The measured transient, its jackknife uncertainties and the discard chosen from it."""
+
+    components: tuple[TransientComponent, ...]  # first: the whole segment; then peeled windows
+    discard_s: float  # readings earlier than this after each switch are dropped
+    minimum_discard_s: float  # the operator's stated settling time (the floor)
+    residual_bias_a: float  # b̂(d) of the component that sets the bound, not corrected for
+    residual_bias_u_a: float  # its jackknife standard uncertainty
+    bias_bound_a: float  # |b̂| + t u: half-width of the rectangular budget allowance
+    target_a: float  # BIAS_FRACTION_OF_U × the standard uncertainty it was compared with
+    profile_since_s: dict[int, np.ndarray]  # stacked mean profile for the plot, by direction
+    profile_values_a: dict[int, np.ndarray]  # mean of (reading − segment level)
+    profile_noise_a: float  # standard error of one stacked position
+    blocks: int
+
+    @property
+    def fit(self) -> TransientFit:
+        return self.components[0].fit
+
+    @property
+    def resolved(self) -> bool:
+        return self.components[0].resolved
+
+    def describe(self) -> str:
+        parts = []
+        for c in self.components:
+            f = c.fit
+            parts.append(f"A_on = {f.amplitude_on_a * 1e15:.3g} ± {c.amplitude_on_u_a * 1e15:.2g} fA, "
+                         f"A_off = {f.amplitude_off_a * 1e15:.3g} ± {c.amplitude_off_u_a * 1e15:.2g} fA, "
+                         f"τ = {f.tau_s:.3g} ± {c.tau_u_s:.2g} s (fitted from {f.window_start_s:g} s)")
+        return ("settling transient measured from the record: " + "; ".join(parts)
+                + f"; readings within {self.discard_s:g} s after each switch dropped")
+
+    def as_dict(self) -> dict:
+        return {
+            "model": "A exp(−t/τ) after each switch, shared τ, per-segment levels, common slope",
+            "components": [c.as_dict() for c in self.components],
+            "discard_s": self.discard_s, "minimum_discard_s": self.minimum_discard_s,
+            "residual_bias_A": self.residual_bias_a, "residual_bias_u_A": self.residual_bias_u_a,
+            "residual_bias_bound_A": self.bias_bound_a, "bias_target_A": self.target_a,
+            "jackknife_blocks": self.blocks,
+        }
+
+
+def _jackknife_u(values: np.ndarray) -> float:
+    g = values.size
+    return float(math.sqrt((g - 1) / g * np.sum((values - values.mean()) ** 2)))
+
+
+def _profile(rec: StackedRecord) -> tuple[dict, dict, float]:
+    """Stacked mean of (reading − segment mean) per direction, and the standard error of one
+    stacked position (median over positions of the spread across segments / √segments)."""
+    since: dict[int, np.ndarray] = {}
+    vals: dict[int, np.ndarray] = {}
+    noise = []
+    for direction in (1, 0):
+        mine = [s for s in rec.stacks if s.direction == direction]
+        if not mine:
+            continue
+        s = max(mine, key=lambda s: s.values.shape[0])  # the commonest length
+        dev = s.values - s.values.mean(axis=1, keepdims=True)
+        since[direction] = s.since
+        vals[direction] = dev.mean(axis=0)
+        if dev.shape[0] > 1:
+            noise.append(float(np.median(dev.std(axis=0, ddof=1))) / math.sqrt(dev.shape[0]))
+    return since, vals, (float(np.median(noise)) if noise else 0.0)
+
+
+def _component(rec: StackedRecord, start: float, grid: np.ndarray) -> TransientComponent | None:
+    sums = _window_sums(rec, start)
+    if not sums:
+        return None
+    fit = _fit(sums, grid, None, start)
+    reps = tuple(_fit(sums, grid, b, start) for b in range(rec.blocks))
+    ua = _jackknife_u(np.array([r.amplitude_on_a for r in reps]))
+    uo = _jackknife_u(np.array([r.amplitude_off_a for r in reps]))
+    ut = _jackknife_u(np.array([r.tau_s for r in reps]))
+    # Resolution is judged on the transient at the window start, A exp(−w/τ): the amplitude at
+    # t = 0 of a window that starts late is an extrapolation that τ's uncertainty inflates.
+    z = 0.0
+    for direction in (1, 0):
+        at = np.array([float(r.shape(start, direction)) for r in reps])
+        u = _jackknife_u(at)
+        v = abs(float(fit.shape(start, direction)))
+        z = max(z, v / u if u > 0 else (math.inf if v > 0 else 0.0))
+    return TransientComponent(fit, reps, ua, uo, ut, bool(z >= RESOLVED_Z))
+
+
+def choose_discard(
+    rec: StackedRecord, minimum_s: float,
+    weights_and_u: Callable[[float], tuple[np.ndarray, float]],
+    max_components: int = 4,
+) -> SettlingAnalysis:
+    """Measure the transient, choose the discard and the correction for what it leaves.
+
+    Peeling: the first fit covers the whole segment; while a fit is resolved, the next one starts
+    where that fit's transient has fallen to the noise of one stacked position, and so looks for a
+    slower component the faster one hid (the method of residuals for sums of exponentials; common
+    practice, no source). The last fit describes the readings from its window start on, so the
+    discard is never shorter than that start. Among the discards d allowed, the one chosen
+    minimises the standard uncertainty of the corrected result, u(d)² + u(b̂(d))², u(d) the Type A
+    (and chain) uncertainty with readings before d dropped and u(b̂) the jackknife uncertainty of
+    the residual bias (eq. 2) of the last fit. The mean difference is corrected by b̂(d).
+
+    Refused (SettlingError) when, at the chosen discard, the transient's uncertainty exceeds the
+    rest of the uncertainty: the segments are then too short to outlast a transient the record
+    cannot resolve well enough.
+
+    ``weights_and_u(d)`` returns the per-segment weights of the mean cycle difference and the
+    standard uncertainty (A, indicated) the result would have with discard d."""
+    grid = _tau_grid(rec)
+    positions = np.unique(np.concatenate([s.since for s in rec.stacks]))
+    first = positions[positions > 0.5 * rec.reading_interval_s]
+    if first.size == 0:
+        raise SettlingError("segments of a single reading cannot be analysed")
+    latest = (1.0 - MIN_KEPT_FRACTION) * rec.segment_duration_s
+    if minimum_s > latest:
+        raise SettlingError(
+            f"the stated settling time {minimum_s:g} s leaves less than {MIN_KEPT_FRACTION:.0%} of "
+            f"each {rec.segment_duration_s:g} s segment")
+    since, vals, noise = _profile(rec)
+    components: list[TransientComponent] = []
+    start = float(first[0])
+    while len(components) < max_components:
+        c = _component(rec, start, grid)
+        if c is None:
+            break
+        components.append(c)
+        if not c.resolved:
+            break
+        f = c.fit
+        peak = max(abs(f.amplitude_on_a), abs(f.amplitude_off_a))
+        if noise <= 0 or peak <= noise:
+            break
+        nxt = positions[positions >= f.tau_s * math.log(peak / noise)]
+        if nxt.size == 0 or nxt[0] <= start or nxt[0] > latest:
+            break
+        start = float(nxt[0])
+    if not components:
+        raise SettlingError("no segment is long enough to fit the settling transient")
+    last = components[-1]
+    low = max(minimum_s, float(first[0]), last.fit.window_start_s)
+    candidates = positions[(positions >= low) & (positions <= latest)]
+    if candidates.size == 0:
+        candidates = np.array([low])
+    best = None
+    for d in candidates:
+        weights, u = weights_and_u(float(d))
+        b = residual_bias(rec, last.fit, float(d), weights)
+        ub = _jackknife_u(np.array([residual_bias(rec, r, float(d), weights)
+                                    for r in last.replicates]))
+        total = math.hypot(u, ub)
+        if best is None or total < best[-1]:
+            best = (float(d), b, ub, u, total)
+    d, b, ub, u, _ = best
+    tq = float(stats.t.ppf(0.975, rec.blocks - 1))
+    result = SettlingAnalysis(tuple(components), d, minimum_s, b, ub, abs(b) + tq * ub,
+                              BIAS_FRACTION_OF_U * u, since, vals, noise, rec.blocks)
+    if ub > u:
+        c = components[-1]
+        fit = c.fit
+        what = ("the transient is resolved" if c.resolved else
+                "the transient cannot be resolved from the noise")
+        raise SettlingError(
+            f"the settling transient after each switch (fitted from {fit.window_start_s:g} s: "
+            f"A_on = {fit.amplitude_on_a * 1e15:.3g} ± {c.amplitude_on_u_a * 1e15:.2g} fA, "
+            f"A_off = {fit.amplitude_off_a * 1e15:.3g} ± {c.amplitude_off_u_a * 1e15:.2g} fA, "
+            f"τ = {fit.tau_s:.3g} ± {c.tau_u_s:.2g} s) is too uncertain: {what}, and even with the "
+            f"best discard ({d:g} s of each {rec.segment_duration_s:g} s segment) the uncertainty "
+            f"of its residual bias ({ub * 1e15:.3g} fA) exceeds that of the rest of the result "
+            f"({u * 1e15:.3g} fA); record longer segments or more cycles", result)
+    return result
