@@ -452,15 +452,36 @@ def _sampler(x: ChainInput):
     return draw
 
 
+def validation_tolerance(uc: float) -> float:
+    """δ of JCGM 101 7.9.2 for u_c stated to two significant digits: half a unit of the second."""
+    return 0.5 * 10.0 ** (math.floor(math.log10(uc)) - 1) if uc > 0 else 0.0
+
+
+def interval_end_numerical_u(mc: gum.MonteCarloResult) -> float:
+    """Standard deviation of a Monte Carlo coverage-interval end from M trials.
+
+    A sample p-quantile has variance p(1 − p)/(M g(y_p)²), g the output density (asymptotic
+    variance of a sample quantile; from memory, any order-statistics text). With g approximated by
+    the Gaussian of the Monte Carlo standard uncertainty u, g(y_p) = φ(z_p)/u. Used to tell whether
+    trial count resolves the validation tolerance."""
+    p = (1.0 - mc.coverage_probability) / 2.0
+    z = stats.norm.ppf(p)
+    return mc.standard_uncertainty * math.sqrt(p * (1 - p) / mc.draws) / stats.norm.pdf(z)
+
+
 @dataclass(frozen=True)
 class MonteCarloValidation:
-    """JCGM 101 clause 8: does the GUM interval agree with the Monte Carlo one?"""
+    """JCGM 101 clause 8: does the GUM interval agree with the Monte Carlo one?
+
+    ``validated`` is None when the two intervals differ by more than δ but by no more than the
+    Monte Carlo's own numerical resolution allows (inconclusive, not a failure)."""
 
     monte_carlo: gum.MonteCarloResult
     tolerance: float  # δ: half a unit of the last significant digit of u_c (2 digits)
     low_difference: float  # |y − U − y_low|
     high_difference: float  # |y + U − y_high|
-    validated: bool
+    validated: bool | None
+    numerical_u: float  # standard deviation of an interval end from the finite trial count
 
     def as_dict(self) -> dict:
         mc = self.monte_carlo
@@ -473,6 +494,7 @@ class MonteCarloValidation:
             "shortest_interval": list(mc.shortest_interval),
             "tolerance": self.tolerance, "low_end_difference": self.low_difference,
             "high_end_difference": self.high_difference,
+            "interval_end_numerical_u": self.numerical_u,
             "gum_framework_validated": self.validated,
         }
 
@@ -480,13 +502,26 @@ class MonteCarloValidation:
 def validate_with_monte_carlo(budget: gum.Budget, mc: gum.MonteCarloResult) -> MonteCarloValidation:
     """Compare the GUM interval y ± U with the probabilistically symmetric Monte Carlo interval
     (JCGM 101:2008, 8.2): validated when both ends agree within δ, half a unit of the last of two
-    significant digits of u_c (7.9.2)."""
-    uc = budget.combined_standard_uncertainty
-    delta = 0.5 * 10.0 ** (math.floor(math.log10(uc)) - 1) if uc > 0 else 0.0
+    significant digits of u_c (7.9.2).
+
+    The Monte Carlo ends carry their own sampling noise: the adaptive procedure (7.9) stops when
+    twice its standard deviation is within δ, so an exactly right GUM interval would fail this
+    comparison about one time in twenty. An end counts as failed only when it misses by more
+    than δ plus twice its numerical standard deviation (:func:`interval_end_numerical_u`); a miss
+    inside that margin leaves the outcome open (None), stated as such, not as a failure.
+    """
+    delta = validation_tolerance(budget.combined_standard_uncertainty)
     lo, hi = mc.symmetric_interval
     d_low = abs(budget.estimate - budget.expanded_uncertainty - lo)
     d_high = abs(budget.estimate + budget.expanded_uncertainty - hi)
-    return MonteCarloValidation(mc, delta, d_low, d_high, bool(d_low <= delta and d_high <= delta))
+    nu = interval_end_numerical_u(mc)
+    if d_low <= delta and d_high <= delta:
+        verdict: bool | None = True
+    elif max(d_low, d_high) > delta + 2.0 * nu:
+        verdict = False
+    else:
+        verdict = None
+    return MonteCarloValidation(mc, delta, d_low, d_high, verdict, nu)
 
 
 @dataclass(frozen=True)
@@ -588,7 +623,7 @@ def precision_budget(
                                    electrons_per_cycle=electrons_per_cycle, **kw)
 
     uc = budget.combined_standard_uncertainty
-    tol = 0.5 * 10.0 ** (math.floor(math.log10(uc)) - 1) if uc > 0 else None
+    tol = validation_tolerance(uc) if uc > 0 else None
     mc = gum.monte_carlo(model, samplers, seed, coverage_probability, draws=monte_carlo_draws,
                          tolerance=tol, batch=100_000, max_draws=5_000_000)
     return PrecisionResult(d, current, i0, budget, validate_with_monte_carlo(budget, mc), type_a, ch)
@@ -614,7 +649,7 @@ class RecordAnalysis:
     def warnings(self) -> list[str]:
         """What a reader of the certificate must be told about this record."""
         out = list(self.notes[1:])
-        if not self.precision.validation.validated:
+        if self.precision.validation.validated is False:
             out.append(
                 "the JCGM 101 Monte Carlo interval differs from the GUM interval by more than the "
                 "numerical tolerance (JCGM 101 clause 8): the Monte Carlo interval is the better "
@@ -707,5 +742,10 @@ def analyse_record(
         notes.append(f"only {cycles.differences.size} cycles: the Type A uncertainty rests on "
                      "few degrees of freedom")
     notes.extend(ta.notes)
+    if settle is not None and settle.limiting:
+        notes.append(
+            f"the settling transient limits this result: the uncertainty of its correction "
+            f"({settle.residual_bias_u_a * 1e15:.2g} fA) exceeds that of the rest "
+            "(longer segments would lower it)")
     return RecordAnalysis(cycles, allan, ta, prec, frequency_hz, electrons_per_cycle, tuple(notes),
                           settle)

@@ -141,7 +141,11 @@ def stack_segments(time_s: np.ndarray, current_a: np.ndarray, starts: np.ndarray
 
 @dataclass(frozen=True)
 class TransientFit:
-    """Amplitudes after switch-on and switch-off, the shared time constant and the slope."""
+    """Amplitudes after switch-on and switch-off, the shared time constant and the slope.
+
+    The amplitudes are the transient's values at the start w of the fitted window: eq. (1) is
+    written A_dir,w exp(−(t − w)/τ), which is the same model and keeps a late window's fit from
+    extrapolating (and overflowing) back to the switch."""
 
     amplitude_on_a: float
     amplitude_off_a: float
@@ -150,9 +154,9 @@ class TransientFit:
     window_start_s: float  # readings at least this long after the switch were fitted
 
     def shape(self, since_s: np.ndarray, direction: int) -> np.ndarray:
-        """A_dir exp(−t/τ): the fitted transient at times t after a switch (eq. 1)."""
+        """A_dir,w exp(−(t − w)/τ): the fitted transient at times t after a switch (eq. 1)."""
         a = self.amplitude_on_a if direction == 1 else self.amplitude_off_a
-        return a * np.exp(-np.asarray(since_s, dtype=float) / self.tau_s)
+        return a * np.exp(-(np.asarray(since_s, dtype=float) - self.window_start_s) / self.tau_s)
 
 
 @dataclass(frozen=True)
@@ -181,7 +185,8 @@ def _window_sums(rec: StackedRecord, start_s: float) -> list[_Sums]:
     return out
 
 
-def _solve(sums: list[_Sums], tau: float, leave_out: int | None) -> tuple[np.ndarray, float]:
+def _solve(sums: list[_Sums], tau: float, leave_out: int | None, start: float
+           ) -> tuple[np.ndarray, float]:
     """Least-squares (A_on, A_off, β) of eq. (1) at fixed τ, and the explained sum of squares."""
     xtx = np.zeros((3, 3))
     xty = np.zeros(3)
@@ -190,7 +195,7 @@ def _solve(sums: list[_Sums], tau: float, leave_out: int | None) -> tuple[np.nda
         n = s.rows if leave_out is None else s.rows - s.rows_by_block[leave_out]
         if n == 0:
             continue
-        e = np.exp(-s.since / tau)
+        e = np.exp(-(s.since - start) / tau)
         e = e - e.mean()
         z = s.since - s.since.mean()
         a = 0 if s.direction == 1 else 1
@@ -209,18 +214,18 @@ def _solve(sums: list[_Sums], tau: float, leave_out: int | None) -> tuple[np.nda
 
 def _fit(sums: list[_Sums], tau_grid: np.ndarray, leave_out: int | None, start_s: float
          ) -> TransientFit:
-    explained = np.array([_solve(sums, tau, leave_out)[1] for tau in tau_grid])
+    explained = np.array([_solve(sums, tau, leave_out, start_s)[1] for tau in tau_grid])
     i = int(np.argmax(explained))
     lo = tau_grid[max(i - 1, 0)]
     hi = tau_grid[min(i + 1, tau_grid.size - 1)]
     tau = float(tau_grid[i])
     if hi > lo:
-        res = optimize.minimize_scalar(lambda lt: -_solve(sums, math.exp(lt), leave_out)[1],
+        res = optimize.minimize_scalar(lambda lt: -_solve(sums, math.exp(lt), leave_out, start_s)[1],
                                        bounds=(math.log(lo), math.log(hi)), method="bounded",
                                        options={"xatol": 1e-4})
         if -res.fun >= explained[i]:
             tau = float(math.exp(res.x))
-    theta, _ = _solve(sums, tau, leave_out)
+    theta, _ = _solve(sums, tau, leave_out, start_s)
     return TransientFit(float(theta[0]), float(theta[1]), tau, float(theta[2]), start_s)
 
 
@@ -234,10 +239,11 @@ def _tau_grid(rec: StackedRecord) -> np.ndarray:
 # Residual bias of a discard
 
 
-def _mean_decay(since: np.ndarray, d: float, tau: float) -> float:
-    """ḡ(d): mean of exp(−t_k/τ) over the positions with t_k ≥ d (eq. 2)."""
+def _mean_decay(since: np.ndarray, d: float, tau: float, start: float) -> float:
+    """ḡ(d): mean of exp(−(t_k − w)/τ) over the positions with t_k ≥ d (eq. 2, amplitudes
+    referred to the window start w)."""
     kept = since[since >= d]
-    return float(np.mean(np.exp(-kept / tau))) if kept.size else 0.0
+    return float(np.mean(np.exp(-(kept - start) / tau))) if kept.size else 0.0
 
 
 def residual_bias(rec: StackedRecord, fit: TransientFit, d: float,
@@ -252,7 +258,7 @@ def residual_bias(rec: StackedRecord, fit: TransientFit, d: float,
         w = float(np.sum(segment_weight[s.segments]))
         if w:
             a = fit.amplitude_on_a if s.direction == 1 else fit.amplitude_off_a
-            total += w * a * _mean_decay(s.since, d, fit.tau_s)
+            total += w * a * _mean_decay(s.since, d, fit.tau_s, fit.window_start_s)
     return total
 
 
@@ -270,6 +276,13 @@ class TransientComponent:
     amplitude_off_u_a: float
     tau_u_s: float
     resolved: bool
+    at_limit: bool  # τ̂ at the top of the searched range: the transient may be slower still
+    # For an unresolved fit: fits at fixed τ across the searched range, each with its jackknife.
+    alternatives: tuple[tuple[TransientFit, tuple[TransientFit, ...]], ...] = ()
+
+    @property
+    def hypotheses(self) -> tuple[tuple[TransientFit, tuple[TransientFit, ...]], ...]:
+        return ((self.fit, self.replicates),) + self.alternatives
 
     def as_dict(self) -> dict:
         f = self.fit
@@ -280,7 +293,7 @@ class TransientComponent:
             "amplitude_after_switch_off_A": f.amplitude_off_a,
             "amplitude_after_switch_off_u_A": self.amplitude_off_u_a,
             "time_constant_s": f.tau_s, "time_constant_u_s": self.tau_u_s,
-            "resolved": self.resolved,
+            "resolved": self.resolved, "time_constant_at_search_limit": self.at_limit,
         }
 
 
@@ -299,6 +312,7 @@ class SettlingAnalysis:
     profile_values_a: dict[int, np.ndarray]  # mean of (reading − segment level)
     profile_noise_a: float  # standard error of one stacked position
     blocks: int
+    limiting: bool = False  # the transient's uncertainty exceeds the rest at the chosen discard
 
     @property
     def fit(self) -> TransientFit:
@@ -314,7 +328,8 @@ class SettlingAnalysis:
             f = c.fit
             parts.append(f"A_on = {f.amplitude_on_a * 1e15:.3g} ± {c.amplitude_on_u_a * 1e15:.2g} fA, "
                          f"A_off = {f.amplitude_off_a * 1e15:.3g} ± {c.amplitude_off_u_a * 1e15:.2g} fA, "
-                         f"τ = {f.tau_s:.3g} ± {c.tau_u_s:.2g} s (fitted from {f.window_start_s:g} s)")
+                         f"τ = {f.tau_s:.3g} ± {c.tau_u_s:.2g} s (fitted from {f.window_start_s:g} s "
+                         "after the switch, amplitudes there)")
         return ("settling transient measured from the record: " + "; ".join(parts)
                 + f"; readings within {self.discard_s:g} s after each switch dropped")
 
@@ -325,7 +340,7 @@ class SettlingAnalysis:
             "discard_s": self.discard_s, "minimum_discard_s": self.minimum_discard_s,
             "residual_bias_A": self.residual_bias_a, "residual_bias_u_A": self.residual_bias_u_a,
             "residual_bias_bound_A": self.bias_bound_a, "bias_target_A": self.target_a,
-            "jackknife_blocks": self.blocks,
+            "jackknife_blocks": self.blocks, "transient_limits_uncertainty": self.limiting,
         }
 
 
@@ -370,7 +385,22 @@ def _component(rec: StackedRecord, start: float, grid: np.ndarray) -> TransientC
         u = _jackknife_u(at)
         v = abs(float(fit.shape(start, direction)))
         z = max(z, v / u if u > 0 else (math.inf if v > 0 else 0.0))
-    return TransientComponent(fit, reps, ua, uo, ut, bool(z >= RESOLVED_Z))
+    resolved = bool(z >= RESOLVED_Z)
+    alternatives = ()
+    if not resolved:
+        # τ is not fixed by the data: every τ in the range stays a hypothesis. At fixed τ the fit
+        # is linear, so its jackknife is that of a smooth statistic.
+        alternatives = tuple(
+            (_fixed(sums, tau, None, start), tuple(_fixed(sums, tau, b, start)
+                                                  for b in range(rec.blocks)))
+            for tau in grid[::3])
+    return TransientComponent(fit, reps, ua, uo, ut, resolved,
+                              bool(fit.tau_s >= 0.95 * grid[-1]), alternatives)
+
+
+def _fixed(sums: list[_Sums], tau: float, leave_out: int | None, start: float) -> TransientFit:
+    theta, _ = _solve(sums, tau, leave_out, start)
+    return TransientFit(float(theta[0]), float(theta[1]), float(tau), float(theta[2]), start)
 
 
 def choose_discard(
@@ -383,15 +413,24 @@ def choose_discard(
     Peeling: the first fit covers the whole segment; while a fit is resolved, the next one starts
     where that fit's transient has fallen to the noise of one stacked position, and so looks for a
     slower component the faster one hid (the method of residuals for sums of exponentials; common
-    practice, no source). The last fit describes the readings from its window start on, so the
-    discard is never shorter than that start. Among the discards d allowed, the one chosen
-    minimises the standard uncertainty of the corrected result, u(d)² + u(b̂(d))², u(d) the Type A
-    (and chain) uncertainty with readings before d dropped and u(b̂) the jackknife uncertainty of
-    the residual bias (eq. 2) of the last fit. The mean difference is corrected by b̂(d).
+    practice, no source); peeling stops at the first fit that is not resolved. The discard is
+    never shorter than the start of the last resolved fit's window, so that every kept reading
+    lies inside every window used. At each discard d the fit that allows the largest residual bias
+    |b̂(d)| + t u(b̂(d)) (eq. 2, jackknife u) sets the correction: a fast component fitted over the
+    whole segment cannot hide a slower one a later window saw, and a later window whose fit
+    wandered to a short τ cannot hide the slow tail an earlier fit measured. Among the discards
+    allowed, the one chosen minimises the standard uncertainty of the corrected result,
+    u(d)² + u(b̂(d))², u(d) the Type A (and chain) uncertainty with readings before d dropped.
+    The mean difference is corrected by b̂(d).
 
-    Refused (SettlingError) when, at the chosen discard, the transient's uncertainty exceeds the
-    rest of the uncertainty: the segments are then too short to outlast a transient the record
-    cannot resolve well enough.
+    A fit that is not resolved leaves τ open: each τ of the searched range (at fixed τ the fit is
+    linear) is then a hypothesis, and the one allowing the largest bias sets the correction.
+
+    Refused (SettlingError) when a resolved fit's τ reaches the top of the searched range (the
+    transient may be slower still), or when, at the chosen discard, the transient's uncertainty exceeds the
+    rest of the uncertainty and the fit that sets it is not resolved: the segments are then too
+    short to outlast a transient the record cannot resolve. When the fit is resolved the result
+    stands, with ``limiting`` set so that the certificate says the transient limits it.
 
     ``weights_and_u(d)`` returns the per-segment weights of the mean cycle difference and the
     standard uncertainty (A, indicated) the result would have with discard d."""
@@ -419,38 +458,56 @@ def choose_discard(
         peak = max(abs(f.amplitude_on_a), abs(f.amplitude_off_a))
         if noise <= 0 or peak <= noise:
             break
-        nxt = positions[positions >= f.tau_s * math.log(peak / noise)]
+        nxt = positions[positions >= start + f.tau_s * math.log(peak / noise)]
         if nxt.size == 0 or nxt[0] <= start or nxt[0] > latest:
             break
         start = float(nxt[0])
     if not components:
         raise SettlingError("no segment is long enough to fit the settling transient")
-    last = components[-1]
-    low = max(minimum_s, float(first[0]), last.fit.window_start_s)
+    # The first fit and every resolved later one; an unresolved last fit only says that nothing
+    # more can be seen (its jackknife, over a τ the data do not fix, is not a smooth statistic).
+    used = [components[0]] + [c for c in components[1:] if c.resolved]
+    tq = float(stats.t.ppf(0.975, rec.blocks - 1))
+    low = max(minimum_s, float(first[0]), used[-1].fit.window_start_s)
     candidates = positions[(positions >= low) & (positions <= latest)]
     if candidates.size == 0:
         candidates = np.array([low])
     best = None
     for d in candidates:
         weights, u = weights_and_u(float(d))
-        b = residual_bias(rec, last.fit, float(d), weights)
-        ub = _jackknife_u(np.array([residual_bias(rec, r, float(d), weights)
-                                    for r in last.replicates]))
+        # The component that allows the largest residual bias sets the correction.
+        worst = None
+        for c in used:
+            for fit, reps in c.hypotheses:
+                b = residual_bias(rec, fit, float(d), weights)
+                ub = _jackknife_u(np.array([residual_bias(rec, r, float(d), weights)
+                                            for r in reps]))
+                if worst is None or abs(b) + tq * ub > abs(worst[0]) + tq * worst[1]:
+                    worst = (b, ub)
+        b, ub = worst
         total = math.hypot(u, ub)
         if best is None or total < best[-1]:
             best = (float(d), b, ub, u, total)
     d, b, ub, u, _ = best
-    tq = float(stats.t.ppf(0.975, rec.blocks - 1))
     result = SettlingAnalysis(tuple(components), d, minimum_s, b, ub, abs(b) + tq * ub,
-                              BIAS_FRACTION_OF_U * u, since, vals, noise, rec.blocks)
-    if ub > u:
-        c = components[-1]
+                              BIAS_FRACTION_OF_U * u, since, vals, noise, rec.blocks, ub > u)
+    slow = [c for c in used if c.resolved and c.at_limit]
+    if slow:
+        fit = slow[0].fit
+        raise SettlingError(
+            f"the settling transient after each switch is too slow for these segments: fitted "
+            f"from {fit.window_start_s:g} s after the switch, its time constant reaches the "
+            f"largest the analysis accepts ({fit.tau_s:.3g} s, a quarter of the "
+            f"{rec.segment_duration_s:g} s segment), so it may be slower still and its tail in "
+            "the kept readings cannot be bounded; record longer segments", result)
+    if ub > u and not used[-1].resolved:
+        c = used[-1]
         fit = c.fit
         what = ("the transient is resolved" if c.resolved else
                 "the transient cannot be resolved from the noise")
         raise SettlingError(
-            f"the settling transient after each switch (fitted from {fit.window_start_s:g} s: "
-            f"A_on = {fit.amplitude_on_a * 1e15:.3g} ± {c.amplitude_on_u_a * 1e15:.2g} fA, "
+            f"the settling transient after each switch (fitted from {fit.window_start_s:g} s, "
+            f"values there: A_on = {fit.amplitude_on_a * 1e15:.3g} ± {c.amplitude_on_u_a * 1e15:.2g} fA, "
             f"A_off = {fit.amplitude_off_a * 1e15:.3g} ± {c.amplitude_off_u_a * 1e15:.2g} fA, "
             f"τ = {fit.tau_s:.3g} ± {c.tau_u_s:.2g} s) is too uncertain: {what}, and even with the "
             f"best discard ({d:g} s of each {rec.segment_duration_s:g} s segment) the uncertainty "
