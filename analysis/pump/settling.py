@@ -56,7 +56,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import optimize, stats
+from scipy import stats
 
 #: The discard must bring the residual bias bound below this fraction of the standard uncertainty.
 BIAS_FRACTION_OF_U = 0.1
@@ -185,47 +185,64 @@ def _window_sums(rec: StackedRecord, start_s: float) -> list[_Sums]:
     return out
 
 
-def _solve(sums: list[_Sums], tau: float, leave_out: int | None, start: float
-           ) -> tuple[np.ndarray, float]:
-    """Least-squares (A_on, A_off, β) of eq. (1) at fixed τ, and the explained sum of squares."""
-    xtx = np.zeros((3, 3))
-    xty = np.zeros(3)
+def _solve(sums: list[_Sums], taus: np.ndarray, leave_out: int | None, start: float
+           ) -> tuple[np.ndarray, np.ndarray]:
+    """Least-squares (A_on, A_off, β) of eq. (1) at each fixed τ, and the explained sums of
+    squares (the residual sum of squares is their complement, so the best τ maximises them)."""
+    taus = np.atleast_1d(np.asarray(taus, dtype=float))
+    xtx = np.zeros((taus.size, 3, 3))
+    xty = np.zeros((taus.size, 3))
     for s in sums:
         c = s.total if leave_out is None else s.total - s.by_block[leave_out]
         n = s.rows if leave_out is None else s.rows - s.rows_by_block[leave_out]
         if n == 0:
             continue
-        e = np.exp(-(s.since - start) / tau)
-        e = e - e.mean()
+        e = np.exp(-(s.since[None, :] - start) / taus[:, None])
+        e -= e.mean(axis=1, keepdims=True)
         z = s.since - s.since.mean()
         a = 0 if s.direction == 1 else 1
-        xtx[a, a] += n * (e @ e)
-        xtx[a, 2] += n * (e @ z)
-        xtx[2, a] += n * (e @ z)
-        xtx[2, 2] += n * (z @ z)
-        xty[a] += e @ c
-        xty[2] += z @ c
-    try:
-        theta = np.linalg.solve(xtx, xty)
-    except np.linalg.LinAlgError:
-        theta = np.linalg.lstsq(xtx, xty, rcond=None)[0]
-    return theta, float(theta @ xty)
+        ez = e @ z
+        xtx[:, a, a] += n * np.einsum("ij,ij->i", e, e)
+        xtx[:, a, 2] += n * ez
+        xtx[:, 2, a] += n * ez
+        xtx[:, 2, 2] += n * (z @ z)
+        xty[:, a] += e @ c
+        xty[:, 2] += z @ c
+    # A direction with no segment in the window leaves its row empty: pin its amplitude to 0.
+    for k in (0, 1):
+        empty = xtx[:, k, k] == 0
+        xtx[empty, k, k] = 1.0
+    theta = np.linalg.solve(xtx, xty[..., None])[..., 0]
+    return theta, np.einsum("ij,ij->i", theta, xty)
 
 
 def _fit(sums: list[_Sums], tau_grid: np.ndarray, leave_out: int | None, start_s: float
          ) -> TransientFit:
-    explained = np.array([_solve(sums, tau, leave_out, start_s)[1] for tau in tau_grid])
+    """τ by the grid, then two finer grids between the best point's neighbours (log-spaced) and
+    the vertex of a parabola through the best three; each stage is one vectorised solve."""
+    grid = tau_grid
+    for _ in range(3):
+        _, explained = _solve(sums, grid, leave_out, start_s)
+        i = int(np.argmax(explained))
+        lo, hi = grid[max(i - 1, 0)], grid[min(i + 1, grid.size - 1)]
+        best = float(grid[i])
+        if hi <= lo:
+            break
+        grid = np.geomspace(lo, hi, 17)
+    _, explained = _solve(sums, grid, leave_out, start_s)
     i = int(np.argmax(explained))
-    lo = tau_grid[max(i - 1, 0)]
-    hi = tau_grid[min(i + 1, tau_grid.size - 1)]
-    tau = float(tau_grid[i])
-    if hi > lo:
-        res = optimize.minimize_scalar(lambda lt: -_solve(sums, math.exp(lt), leave_out, start_s)[1],
-                                       bounds=(math.log(lo), math.log(hi)), method="bounded",
-                                       options={"xatol": 1e-4})
-        if -res.fun >= explained[i]:
-            tau = float(math.exp(res.x))
-    theta, _ = _solve(sums, tau, leave_out, start_s)
+    tau = float(grid[i])
+    if 0 < i < grid.size - 1:
+        x = np.log(grid[i - 1 : i + 2])
+        y = explained[i - 1 : i + 2]
+        den = (x[0] - x[1]) * (x[0] - x[2]) * (x[1] - x[2])
+        a = (x[2] * (y[1] - y[0]) + x[1] * (y[0] - y[2]) + x[0] * (y[2] - y[1])) / den
+        b = (x[2] ** 2 * (y[0] - y[1]) + x[1] ** 2 * (y[2] - y[0]) + x[0] ** 2 * (y[1] - y[2])) / den
+        if a < 0:
+            tau = float(np.clip(math.exp(-b / (2 * a)), grid[i - 1], grid[i + 1]))
+    elif grid.size == 1:
+        tau = best
+    theta = _solve(sums, np.array([tau]), leave_out, start_s)[0][0]
     return TransientFit(float(theta[0]), float(theta[1]), tau, float(theta[2]), start_s)
 
 
@@ -390,17 +407,21 @@ def _component(rec: StackedRecord, start: float, grid: np.ndarray) -> TransientC
     if not resolved:
         # τ is not fixed by the data: every τ in the range stays a hypothesis. At fixed τ the fit
         # is linear, so its jackknife is that of a smooth statistic.
-        alternatives = tuple(
-            (_fixed(sums, tau, None, start), tuple(_fixed(sums, tau, b, start)
-                                                  for b in range(rec.blocks)))
-            for tau in grid[::3])
+        taus = grid[::3]
+        full = _fixed(sums, taus, None, start)
+        reps_by_block = [_fixed(sums, taus, b, start) for b in range(rec.blocks)]
+        alternatives = tuple((full[k], tuple(r[k] for r in reps_by_block))
+                             for k in range(taus.size))
     return TransientComponent(fit, reps, ua, uo, ut, resolved,
                               bool(fit.tau_s >= 0.95 * grid[-1]), alternatives)
 
 
-def _fixed(sums: list[_Sums], tau: float, leave_out: int | None, start: float) -> TransientFit:
-    theta, _ = _solve(sums, tau, leave_out, start)
-    return TransientFit(float(theta[0]), float(theta[1]), float(tau), float(theta[2]), start)
+def _fixed(sums: list[_Sums], taus: np.ndarray, leave_out: int | None, start: float
+           ) -> list[TransientFit]:
+    """Fits of eq. (1) at each of the fixed time constants ``taus``."""
+    theta = _solve(sums, taus, leave_out, start)[0]
+    return [TransientFit(float(th[0]), float(th[1]), float(tau), float(th[2]), start)
+            for th, tau in zip(theta, taus, strict=True)]
 
 
 def choose_discard(
