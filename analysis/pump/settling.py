@@ -67,6 +67,8 @@ MIN_KEPT_FRACTION = 0.2
 MAX_TAU_FRACTION = 0.25
 #: Contiguous blocks of segments left out in turn by the jackknife.
 JACKKNIFE_BLOCKS = 20
+#: Discards evaluated on the first pass of the scan (a long segment has more positions).
+MAX_SCANNED = 24
 #: |A|/u(A) above which an amplitude counts as resolved.
 RESOLVED_Z = 3.0
 
@@ -493,22 +495,28 @@ def choose_discard(
     candidates = positions[(positions >= low) & (positions <= latest)]
     if candidates.size == 0:
         candidates = np.array([low])
-    best = None
-    for d in candidates:
-        weights, u = weights_and_u(float(d))
+    def evaluate(d: float) -> tuple[float, float, float, float, float]:
+        weights, u = weights_and_u(d)
         # The component that allows the largest residual bias sets the correction.
         worst = None
         for c in used:
             for fit, reps in c.hypotheses:
-                b = residual_bias(rec, fit, float(d), weights)
-                ub = _jackknife_u(np.array([residual_bias(rec, r, float(d), weights)
-                                            for r in reps]))
+                b = residual_bias(rec, fit, d, weights)
+                ub = _jackknife_u(np.array([residual_bias(rec, r, d, weights) for r in reps]))
                 if worst is None or abs(b) + tq * ub > abs(worst[0]) + tq * worst[1]:
                     worst = (b, ub)
         b, ub = worst
-        total = math.hypot(u, ub)
-        if best is None or total < best[-1]:
-            best = (float(d), b, ub, u, total)
+        return (d, b, ub, u, math.hypot(u, ub))
+
+    # Every candidate when there are few; else every k-th, then all between the best one's
+    # neighbours (the total uncertainty varies slowly with d).
+    step = max(1, int(math.ceil(candidates.size / MAX_SCANNED)))
+    tried = {int(k): evaluate(float(candidates[k])) for k in range(0, candidates.size, step)}
+    k_best = min(tried, key=lambda k: tried[k][-1])
+    for k in range(max(0, k_best - step + 1), min(candidates.size, k_best + step)):
+        if k not in tried:
+            tried[k] = evaluate(float(candidates[k]))
+    best = min(tried.values(), key=lambda x: x[-1])
     d, b, ub, u, _ = best
     result = SettlingAnalysis(tuple(components), d, minimum_s, b, ub, abs(b) + tq * ub,
                               BIAS_FRACTION_OF_U * u, since, vals, noise, rec.blocks, ub > u)
