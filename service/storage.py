@@ -17,7 +17,11 @@ import contextlib
 import hashlib
 import logging
 import os
+import re
+import shutil
+import socket
 import tempfile
+import time
 from collections.abc import Iterator
 from datetime import UTC, datetime
 from pathlib import Path
@@ -214,6 +218,29 @@ def sha256_hex(data: bytes) -> str:
     return hashlib.sha256(data).hexdigest()
 
 
+#: Temporary folders older than this are removed whoever made them (a process that runs a
+#: day-long analysis keeps touching its files; common practice, no source).
+SCRATCH_MAX_AGE_SECONDS = 24 * 3600
+_SCRATCH_PREFIXES = ("coldcert-upload-", "coldcert-job-", "coldcert-reproduce-")
+_OWNER = re.compile(r"(?P<pid>\d+)@(?P<host>[^+/]+)\+")
+
+
+def _owner() -> str:
+    """``PID@HOST+``: who made a temporary file, readable back by :data:`_OWNER`."""
+    return f"{os.getpid()}@{socket.gethostname()}+"
+
+
+def pid_alive(pid: int) -> bool:
+    """Whether a process with this id exists on this host."""
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
 class BlobStore:
     """Content-addressed raw files under ``root``: ``root/ab/cd/abcd…`` named by SHA-256."""
 
@@ -235,7 +262,9 @@ class BlobStore:
         if final.exists() and final.stat().st_size == len(data):
             return digest
         final.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp_name = tempfile.mkstemp(dir=self.root / "tmp", prefix=digest[:12], suffix=".part")
+        fd, tmp_name = tempfile.mkstemp(
+            dir=self.root / "tmp", prefix=f"{_owner()}{digest[:12]}", suffix=".part"
+        )
         try:
             with os.fdopen(fd, "wb") as handle:
                 handle.write(data)
@@ -256,6 +285,57 @@ class BlobStore:
             raise KeyError(
                 f"raw file {digest} is missing from the blob folder {self.root}"
             ) from None
+
+    def scratch(self, purpose: str) -> tempfile.TemporaryDirectory:
+        """A private temporary folder for raw data being checked or analysed (removed on exit).
+
+        It lives in the blob folder's ``tmp`` (same disk as the blobs, inside the instance) and
+        its name carries this process's id and host, so that :meth:`clean_scratch` can remove
+        what a killed process left behind without touching a live one's.
+        """
+        return tempfile.TemporaryDirectory(
+            prefix=f"coldcert-{purpose}-{_owner()}", dir=self.root / "tmp"
+        )
+
+    def clean_scratch(self, older_than: float = SCRATCH_MAX_AGE_SECONDS) -> list[str]:
+        """Remove temporary folders and partial blobs left by processes that are gone: those of
+        this host whose process no longer exists, and any older than ``older_than`` seconds.
+        Returns the names removed."""
+        removed = []
+        if self.read_only:
+            return removed
+        host, now = socket.gethostname(), time.time()
+        places = [self.root / "tmp", Path(tempfile.gettempdir())]
+        for place in places:
+            try:
+                entries = list(place.iterdir())
+            except OSError:
+                continue
+            for entry in entries:
+                name = entry.name
+                legacy = place != self.root / "tmp"
+                if legacy and not name.startswith(_SCRATCH_PREFIXES):
+                    continue
+                match = _OWNER.search(name)
+                try:
+                    age = now - entry.lstat().st_mtime
+                except OSError:
+                    continue
+                dead = match is not None and match["host"] == host and not pid_alive(int(match["pid"]))
+                if not (dead or age > older_than):
+                    continue
+                try:
+                    if entry.is_dir() and not entry.is_symlink():
+                        shutil.rmtree(entry)
+                    else:
+                        entry.unlink()
+                except OSError:
+                    continue
+                removed.append(name)
+        if removed:
+            logger.warning("removed %d temporary file(s) left by stopped processes: %s",
+                           len(removed), removed[:10])
+        return removed
 
     def exists(self, digest: str) -> bool:
         return self.path(digest).is_file()

@@ -209,3 +209,66 @@ def test_an_unwritable_instance_is_opened_read_only_by_itself(read_only_copy):
     done = _cli("verify", "--all", "--instance", str(instance))
     assert "Traceback" not in done.stderr, done.stderr
     assert done.returncode == 0, (done.stdout, done.stderr)
+
+
+# ---- after a crash ----------------------------------------------------------------------------
+
+
+def _dead_pid() -> int:
+    child = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"],
+                           capture_output=True, text=True, check=True)
+    return int(child.stdout)
+
+
+def test_temporary_files_of_a_killed_process_are_removed_on_restart(tmp_path):
+    import socket
+
+    from service.web.app import create_app
+
+    lab = make_lab(tmp_path)
+    scratch = lab.services.storage.blobs.root / "tmp"
+    lab.services.storage.dispose()
+    host, dead, alive = socket.gethostname(), _dead_pid(), os.getpid()
+    left = scratch / f"coldcert-upload-{dead}@{host}+k1"
+    left.mkdir()
+    (left / "sweep.csv").write_bytes(b"raw data of a killed upload")
+    part = scratch / f"{dead}@{host}+0123456789abxyz.part"
+    part.write_bytes(b"half a blob")
+    live = scratch / f"coldcert-job-{alive}@{host}+k2"
+    live.mkdir()
+    app = create_app({"INSTANCE_PATH": str(Path(lab.app.instance_path)), "TESTING": True})
+    try:
+        assert not left.exists() and not part.exists()
+        assert live.exists(), "a live process's folder was removed"
+    finally:
+        app.extensions["coldcert"].storage.dispose()
+
+
+def test_a_failed_job_can_be_retried_a_bounded_number_of_times(lab):
+    from sqlalchemy import update
+
+    from service import storage as st
+
+    client = lab.client()
+    accepted = lab.upload(client)
+    assert accepted.status_code == 202, accepted.get_json()
+    job = accepted.get_json()["job_id"]
+
+    def fail():
+        with lab.services.storage.write() as conn:
+            conn.execute(update(st.jobs).where(st.jobs.c.id == job).values(
+                status="failed", error="interrupted 3 times (worker died each time)", attempts=3))
+
+    assert client.post(f"/api/jobs/{job}/retry", headers=lab.headers("olga")).status_code == 409
+    for retry in (1, 2):
+        fail()
+        reply = client.post(f"/api/jobs/{job}/retry", headers=lab.headers("olga"))
+        assert reply.status_code == 202, reply.get_json()
+        assert reply.get_json()["retry"] == retry
+        status = client.get(f"/api/jobs/{job}", headers=lab.headers("olga")).get_json()
+        assert status["status"] == "queued" and status["attempts"] == 0
+    fail()
+    refused = client.post(f"/api/jobs/{job}/retry", headers=lab.headers("olga"))
+    assert refused.status_code == 409 and "limit" in refused.get_json()["error"]
+    assert client.post("/api/jobs/job-nothing/retry", headers=lab.headers("olga")).status_code == 404
+    assert client.post(f"/api/jobs/{job}/retry", headers=lab.headers("aude")).status_code == 403

@@ -26,7 +26,6 @@ import logging
 import math
 import os
 import platform
-import tempfile
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import asdict, dataclass, field
 from importlib import metadata as importlib_metadata
@@ -1619,7 +1618,7 @@ class Archive:
         """Re-run the archived analysis on the archived raw data and compare every number."""
         info = self.get(certificate_id)
         record = info["record"]
-        with tempfile.TemporaryDirectory(prefix="coldcert-reproduce-") as tmp:
+        with self.storage.blobs.scratch("reproduce") as tmp:
             folder = self.materialise_run(info["files"], Path(tmp) / "run")
             run = load_run(folder)
             output = analysis_output(certify(run, info["seed"], progress, **info["options"]))

@@ -16,7 +16,7 @@ from sqlalchemy import select
 
 from service import storage as st
 from service.archive import ArchiveError, canonical_json, log_event
-from service.queue.jobs import enqueue, import_string, job_status
+from service.queue.jobs import RetryRefused, enqueue, import_string, job_status, retry
 from service.storage import sha256_hex
 from service.web.auth import (
     AuthError,
@@ -165,6 +165,19 @@ def get_run(run_id: str):
     info["files"] = files
     info["jobs"] = [dict(j._mapping) for j in job_rows]
     return jsonify(info)
+
+
+@bp.post("/jobs/<job_id>/retry")
+@roles_required("operator", "approver")
+def retry_job(job_id: str):
+    """Queue a failed job again (bounded; see queue.jobs.MAX_RETRIES)."""
+    try:
+        result = retry(services().storage, job_id, g.user)
+    except RetryRefused as exc:
+        return error(exc.status, str(exc))
+    response = jsonify(**result, job_url=url_for("api.get_job", job_id=job_id))
+    response.status_code = 202
+    return response
 
 
 @bp.get("/jobs/<job_id>")

@@ -192,6 +192,8 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     database_url = app.config["DATABASE_URL"] or default_database_url(instance)
     storage = Storage(database_url, instance / "blobs", read_only=read_only)
     storage.create_schema()
+    # Raw data a killed process left in temporary folders (an upload being checked, a fit).
+    storage.blobs.clean_scratch()
     if read_only:
         key = LabKey.load_for_reading(instance / "keys")
     else:

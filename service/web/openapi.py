@@ -135,6 +135,14 @@ def openapi_document() -> dict[str, Any]:
                     parameters=[_param("job_id")],
                 )
             },
+            "/api/jobs/{job_id}/retry": {
+                "post": _op(
+                    "Queue a failed job again (at most twice; each retry is logged)",
+                    ["operator", "approver"],
+                    {"202": _json("queued again"), "404": _ERROR, "409": _ERROR},
+                    parameters=[_param("job_id")],
+                )
+            },
             "/api/certificates": {
                 "get": _op(
                     "Search the archive",

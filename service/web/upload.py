@@ -16,7 +16,6 @@ import io
 import json
 import secrets
 import tarfile
-import tempfile
 import zipfile
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
@@ -396,7 +395,7 @@ def accept_run(
         raise UploadError(
             "an amendment must say why it replaces the earlier certificate", field="reason"
         )
-    with tempfile.TemporaryDirectory(prefix="coldcert-upload-") as tmp:
+    with storage.blobs.scratch("upload") as tmp:
         folder = Path(tmp) / "run"
         folder.mkdir()
         ignored = unpack(uploads, folder, max_bytes, max_files)
