@@ -51,7 +51,17 @@ def canned_output(seed: int) -> CannedOutput:
 
 
 def canned_certify(run: Any, seed: int, progress=None, **options: Any) -> CannedOutput:
-    """A stand-in analysis for the service machinery (see the module docstring)."""
+    """A stand-in analysis for the service machinery (see the module docstring).
+
+    ``COLDCERT_CANNED_DELAY`` (seconds) makes it take that long, so that a test can kill the
+    service while fits are in flight."""
+    import os
+    import time
+
+    delay = float(os.environ.get("COLDCERT_CANNED_DELAY", "0") or 0)
+    if progress:
+        progress(0.5, "canned analysis")
+    time.sleep(delay)
     if progress:
         progress(1.0, "canned analysis")
     return canned_output(seed)
