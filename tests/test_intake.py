@@ -82,9 +82,17 @@ def test_typo_key():
     assert "excitation_rms_V" in err.message
 
 
-def test_unrelated_unknown_key_kept_as_text():
-    run = load_files({"s.csv": sweep_text(meta="# junctions_in_series: 33\n# cryostat: Blue fridge 2\n")})
-    assert run.files[0].free_text["cryostat"] == "Blue fridge 2"
+def test_unrelated_unknown_key_is_refused_once_every_kind_is_known():
+    # The service, the command line and the workers load every kind first (their keys are
+    # registered); a key no kind knows is then a mistake, not free text. Remarks go in '# note:'.
+    from service.calibrations.registry import register_every_kind
+
+    register_every_kind()
+    err = refuse(sweep_text(meta="# junctions_in_series: 33\n# cryostat: Blue fridge 2\n"),
+                 field="cryostat", line=2)
+    assert "note" in err.message
+    run = load_files({"s.csv": sweep_text(meta="# junctions_in_series: 33\n# note: Blue fridge 2\n")})
+    assert run.files[0].metadata["note"] == "Blue fridge 2"
 
 
 def test_empty_and_binary_files():

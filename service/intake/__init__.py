@@ -163,6 +163,18 @@ def register_keys(keys: dict[str, KeySpec]) -> None:
     METADATA_KEYS.update(keys)
 
 
+#: Whether every calibration kind has registered its keys (see :func:`all_keys_registered`).
+_ALL_KEYS_REGISTERED = False
+
+
+def all_keys_registered() -> None:
+    """Declare that every kind's keys are in :data:`METADATA_KEYS`; from then on a key no kind
+    knows is refused instead of kept as free text. Called by the entry points (web service,
+    command line, workers) after loading every kind (``calibrations.registry``)."""
+    global _ALL_KEYS_REGISTERED
+    _ALL_KEYS_REGISTERED = True
+
+
 # --------------------------------------------------------------------------------------------
 
 
@@ -313,6 +325,12 @@ def parse_csv(name: str, raw: bytes) -> DataFile:
             close = difflib.get_close_matches(key, METADATA_KEYS.keys(), n=1, cutoff=0.8)
             if close:
                 raise IntakeError(f"unknown key; did you mean {close[0]!r}?", file=name, line=i, field=key)
+            if _ALL_KEYS_REGISTERED:
+                raise IntakeError(
+                    "unknown key; write remarks as '# note: …' or as a comment line without ':' "
+                    "(keys are listed in docs/formats.md)",
+                    file=name, line=i, field=key,
+                )
             free[key] = value
             continue
         try:
