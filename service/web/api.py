@@ -301,17 +301,33 @@ def withdraw_certificate(certificate_id: str):
     return jsonify(services().archive.withdraw(certificate_id, g.user, body.get("reason", "")))
 
 
-@bp.post("/certificates/<certificate_id>/amend")
-@roles_required("operator")
-def amend_certificate(certificate_id: str):
-    body = _json_body()
+def _corrections(body: dict[str, Any]) -> dict[str, Any] | None:
+    """The ``corrections`` object of a request body (a JSON object or its text), else None."""
     corrections = body.get("corrections") or {}
     if isinstance(corrections, str):
         try:
             corrections = json.loads(corrections)
         except ValueError:
-            return error(400, "corrections must be a JSON object", field="corrections")
-    if not isinstance(corrections, dict):
+            return None
+    return corrections if isinstance(corrections, dict) else None
+
+
+@bp.post("/certificates/<certificate_id>/corrections")
+@roles_required("operator")
+def correct_draft(certificate_id: str):
+    corrections = _corrections(_json_body())
+    if corrections is None:
+        return error(400, "corrections must be a JSON object", field="corrections")
+    missing = services().archive.correct_draft(certificate_id, g.user, corrections)
+    return jsonify(certificate_id=certificate_id, missing=missing)
+
+
+@bp.post("/certificates/<certificate_id>/amend")
+@roles_required("operator")
+def amend_certificate(certificate_id: str):
+    body = _json_body()
+    corrections = _corrections(body)
+    if corrections is None:
         return error(400, "corrections must be a JSON object", field="corrections")
     new_id = services().archive.amend(certificate_id, g.user, body.get("reason", ""), corrections)
     response = jsonify(
