@@ -82,12 +82,9 @@ def test_typo_key():
     assert "excitation_rms_V" in err.message
 
 
-def test_unrelated_unknown_key_is_refused_once_every_kind_is_known():
-    # The service, the command line and the workers load every kind first (their keys are
-    # registered); a key no kind knows is then a mistake, not free text. Remarks go in '# note:'.
-    from service.calibrations.registry import register_every_kind
-
-    register_every_kind()
+def test_unrelated_unknown_key_is_refused():
+    # Intake's table holds every kind's keys; a key none knows is a mistake, not free text.
+    # Remarks go in '# note:'.
     err = refuse(sweep_text(meta="# junctions_in_series: 33\n# cryostat: Blue fridge 2\n"),
                  field="cryostat", line=2)
     assert "note" in err.message

@@ -48,13 +48,3 @@ def calibration_for(kind: str) -> ModuleType:
     except KeyError:
         raise NotImplementedError(f"runs of kind {kind!r} are not supported by this version") from None
     return loader()
-
-
-def register_every_kind() -> None:
-    """Load every kind, so that each has registered its metadata keys with intake, and tell
-    intake that a key none of them knows is a mistake to refuse (issue: quiet acceptance)."""
-    from service.intake import all_keys_registered
-
-    for loader in CALIBRATIONS.values():
-        loader()
-    all_keys_registered()

@@ -107,10 +107,7 @@ def cmd_certify(args) -> int:
     from service.calibrations.certify import certify_run
     from service.calibrations.outcome import CertificationRefused
     from service.calibrations.parallel import WORKERS_VARIABLE, WorkersError, worker_count
-    from service.calibrations.registry import register_every_kind
     from service.intake import IntakeError, load_run
-
-    register_every_kind()
 
     if args.workers is not None:
         os.environ[WORKERS_VARIABLE] = str(args.workers)
@@ -146,10 +143,7 @@ def cmd_certify(args) -> int:
 
 
 def cmd_check(args) -> int:
-    from service.calibrations.registry import register_every_kind
     from service.intake import IntakeError, load_run
-
-    register_every_kind()
 
     try:
         run = load_run(args.run)

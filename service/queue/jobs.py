@@ -34,7 +34,6 @@ from sqlalchemy import Connection, and_, select
 
 from service import storage as st
 from service.archive import Archive, LabKey, analysis_output, log_event, software_versions
-from service.calibrations.registry import register_every_kind
 from service.storage import Storage, pid_alive, utc_now
 
 logger = logging.getLogger(__name__)
@@ -400,7 +399,6 @@ def worker_main(settings: WorkerSettings, stop: Any) -> None:
     )
     certify = import_string(settings.certify)
     load_run = import_string(settings.load_run)
-    register_every_kind()  # the same metadata keys as the upload check (unknown ones refused)
     worker = f"{_host_id()}:{os.getpid()}:{uuid.uuid4().hex[:8]}"
     # A worker whose service was killed outright (no chance to set ``stop``) must not linger.
     parent = multiprocessing.parent_process()

@@ -23,7 +23,6 @@ from flask.sessions import SecureCookieSessionInterface
 from werkzeug.exceptions import HTTPException
 
 from service.archive import Archive, LabKey
-from service.calibrations.registry import register_every_kind
 from service.queue.jobs import WorkerPool, WorkerSettings
 from service.storage import Storage, default_database_url
 
@@ -195,8 +194,6 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     storage.create_schema()
     # Raw data a killed process left in temporary folders (an upload being checked, a fit).
     storage.blobs.clean_scratch()
-    # Uploads are checked against every kind's metadata keys; unknown ones are refused.
-    register_every_kind()
     if read_only:
         key = LabKey.load_for_reading(instance / "keys")
     else:
