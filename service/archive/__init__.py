@@ -1142,6 +1142,7 @@ class Archive:
                 info["sha256"] = chain_row.sha256
                 info["previous_sha256"] = chain_row.previous_sha256
                 info["signature"] = chain_row.signature
+                info["key_id"] = chain_row.key_id
             elif conn.execute(
                 select(st.chain.c.sequence).where(st.chain.c.certificate_id == certificate_id)
             ).first() is not None:

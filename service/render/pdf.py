@@ -178,7 +178,8 @@ def _flowables(blocks: list[content.Block], width: float) -> list[Any]:
     return story
 
 
-def render_pdf(record: Mapping[str, Any], plots: Mapping[str, str] | None = None) -> bytes:
+def render_pdf(record: Mapping[str, Any], plots: Mapping[str, str] | None = None,
+               seal: Mapping[str, Any] | None = None) -> bytes:
     """The certificate as PDF bytes (A4): the same blocks as the HTML page, laid out on pages."""
     cid = str(record.get("certificate_id", "unnumbered"))
     state = str(record.get("state", "draft"))
@@ -197,6 +198,6 @@ def render_pdf(record: Mapping[str, Any], plots: Mapping[str, str] | None = None
         invariant=1,  # no creation time or random id: the same record gives the same bytes
     )
     width = A4[0] - 36 * mm
-    story = _flowables(content.certificate_blocks(record, plots), width)
+    story = _flowables(content.certificate_blocks(record, plots, seal), width)
     doc.build(story, canvasmaker=_numbered_canvas(cid, state))
     return buffer.getvalue()

@@ -223,7 +223,20 @@ def get_certificate(certificate_id: str):
     return jsonify(services().archive.get(certificate_id))
 
 
-def _cached_pdf(record: dict[str, Any], plots_sha256: str | None) -> bytes:
+def seal_of(info: dict[str, Any]) -> dict[str, Any] | None:
+    """The signature details an issued certificate's renderings show (None for a draft)."""
+    if info.get("sequence") is None:
+        return None
+    return {
+        "sequence": info["sequence"],
+        "sha256": info["sha256"],
+        "key_id": info.get("key_id") or services().key.key_id,
+        "public_key_url": url_for("api.public_key", _external=True),
+    }
+
+
+def _cached_pdf(record: dict[str, Any], plots_sha256: str | None,
+                seal: dict[str, Any] | None = None) -> bytes:
     """PDF of a record; laying out the plots takes seconds, so identical requests reuse it.
 
     The PDF is a pure function of the record and the plots (reportlab's invariant mode). The
@@ -234,7 +247,8 @@ def _cached_pdf(record: dict[str, Any], plots_sha256: str | None) -> bytes:
     from service.render.pdf import RENDERER_VERSION, render_pdf
 
     key = sha256_hex(
-        canonical_json({"record": record, "plots": plots_sha256, "renderer": RENDERER_VERSION})
+        canonical_json({"record": record, "plots": plots_sha256, "seal": seal,
+                        "renderer": RENDERER_VERSION})
     )
     folder = Path(current_app.instance_path) / "cache" / "pdf"
     for path in sorted(folder.glob(f"{key}-*.pdf")):
@@ -243,7 +257,7 @@ def _cached_pdf(record: dict[str, Any], plots_sha256: str | None) -> bytes:
             return data
         logger.warning("PDF cache file %s does not match its name; laying out again", path.name)
         path.unlink(missing_ok=True)
-    pdf = render_pdf(record, services().archive.plots(plots_sha256))
+    pdf = render_pdf(record, services().archive.plots(plots_sha256), seal)
     path = folder / f"{key}-{sha256_hex(pdf)}.pdf"
     folder.mkdir(parents=True, exist_ok=True)
     tmp = path.with_suffix(f".{os.getpid()}.tmp")
@@ -263,9 +277,10 @@ def render(info: dict[str, Any], fmt: str) -> tuple[bytes | str, str]:
     if fmt == "html":
         from service.render.html import render_html
 
-        return render_html(record, services().archive.plots(info.get("plots_sha256"))), RENDERINGS[fmt]
+        plots = services().archive.plots(info.get("plots_sha256"))
+        return render_html(record, plots, seal_of(info)), RENDERINGS[fmt]
     if fmt == "pdf":
-        return _cached_pdf(record, info.get("plots_sha256")), RENDERINGS[fmt]
+        return _cached_pdf(record, info.get("plots_sha256"), seal_of(info)), RENDERINGS[fmt]
     if fmt == "xml":
         from service.render.dcc import configured_schema, render_dcc, validate_dcc
 
