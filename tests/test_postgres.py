@@ -28,13 +28,18 @@ pytestmark = pytest.mark.skipif(
 @pytest.fixture()
 def server_storage(tmp_path):
     storage = Storage(URL, tmp_path / "blobs")
-    with storage.engine.begin() as conn:
-        st.metadata.drop_all(conn)
-    storage.create_schema()
+    _drop_everything(storage)
+    storage.create_schema()  # the migrations, as on every start
+    assert storage.schema_revision() is not None
     yield storage
+    _drop_everything(storage)
+    storage.dispose()
+
+
+def _drop_everything(storage: Storage) -> None:
     with storage.engine.begin() as conn:
         st.metadata.drop_all(conn)
-    storage.dispose()
+        conn.exec_driver_sql("DROP TABLE IF EXISTS alembic_version")
 
 
 def _people(storage: Storage) -> dict[str, dict]:
