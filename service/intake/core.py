@@ -211,6 +211,11 @@ def parse_csv(name: str, raw: bytes) -> DataFile:
             free.setdefault("comments", []).append(body)
             continue
         key, value = (s.strip() for s in body.split(":", 1))
+        if not key:
+            raise IntakeError(
+                "a metadata line needs a key before ':' (e.g. '# junctions_in_series: 33')",
+                file=name, line=i,
+            )
         if key in metadata:
             raise IntakeError("this key is given twice", file=name, line=i, field=key)
         spec = METADATA_KEYS.get(key)
@@ -394,10 +399,11 @@ def detect_kind(files: list[DataFile], manifest: dict) -> str:
         return KIND_SENSOR
     if sweeps:
         return KIND_CBT
-    cols = sorted({c for f in files for c in f.columns})
+    found = "; ".join(f"{f.name}: {', '.join(f.columns)}" for f in files)
     raise IntakeError(
         "cannot tell what job these files are for: expected CBT sweeps (bias_V with conductance_S "
-        f"or current_A) or pump records (time_s,current_A,pump_on or gate_V,current_A); found columns {cols}",
+        f"or current_A) or pump records (time_s,current_A,pump_on or gate_V,current_A); found {found}",
+        file=files[0].name if len(files) == 1 else None,
     )
 
 

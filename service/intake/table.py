@@ -34,6 +34,7 @@ def integer_parser(lo: int, hi: int | None = None) -> Callable[[object], int]:
     def parse(value: object) -> int:
         if isinstance(value, bool):
             raise ValueError(f"expected a whole number, got {value!r}")
+        _ascii_number(value)
         try:
             number = float(value)  # type: ignore[arg-type]
         except (TypeError, ValueError):
@@ -55,6 +56,7 @@ def real_parser(lo: float = -math.inf, hi: float = math.inf, lo_open: bool = Fal
     def parse(value: object) -> float:
         if isinstance(value, bool):
             raise ValueError(f"expected a number, got {value!r}")
+        _ascii_number(value)
         try:
             number = float(value)  # type: ignore[arg-type]
         except (TypeError, ValueError):
@@ -69,6 +71,13 @@ def real_parser(lo: float = -math.inf, hi: float = math.inf, lo_open: bool = Fal
         return number
 
     return parse
+
+
+def _ascii_number(value: object) -> None:
+    # float() also reads full-width and other scripts' digits ("１２"); a lab file holding them
+    # was most likely pasted from somewhere it should not have been, so say so.
+    if isinstance(value, str) and not value.isascii():
+        raise ValueError(f"expected a number written in ASCII digits, got {value!r}")
 
 
 def choice_parser(*options: str) -> Callable[[object], str]:
@@ -101,6 +110,12 @@ def iso_datetime(value: object) -> datetime:
             f"expected an ISO 8601 date-time such as 2026-11-24T09:00:00Z, got {value!r}"
         ) from None
     return parsed if parsed.tzinfo is not None else parsed.replace(tzinfo=UTC)
+
+
+def iso_datetime_text(value: object) -> str:
+    """An ISO 8601 date or date-time, checked and kept as written (e.g. 2026-11-24T13:00:00Z)."""
+    iso_datetime(value)
+    return str(value).strip()
 
 
 @dataclass(frozen=True)
@@ -136,8 +151,8 @@ METADATA_KEYS: dict[str, KeySpec] = {
     "series_resistance_ohm": KeySpec(_non_negative, "two-wire lead resistance in series with the array", THERMOMETRY),
     "ground_capacitance_ratio": KeySpec(_non_negative, "C_0/C, island-to-ground over junction capacitance", THERMOMETRY),
     "sensor_resistance_ohm": KeySpec(_positive, "fridge sensor's resistance during the sweep", THERMOMETRY),
-    "sweep_started": KeySpec(text, "ISO 8601 date-time when the sweep began", THERMOMETRY),
-    "sweep_ended": KeySpec(text, "ISO 8601 date-time when the sweep ended", THERMOMETRY),
+    "sweep_started": KeySpec(iso_datetime_text, "ISO 8601 date-time when the sweep began", THERMOMETRY),
+    "sweep_ended": KeySpec(iso_datetime_text, "ISO 8601 date-time when the sweep ended", THERMOMETRY),
     "bath_temperature_K": KeySpec(_positive, "fridge reading, for information only", THERMOMETRY),
     "device": KeySpec(text, "device identifier"),
     "note": KeySpec(text, "free text"),
@@ -165,7 +180,8 @@ _coverage = real_parser(0.5, 0.9999)
 
 MANIFEST_FIELDS: dict[str, KeySpec] = {
     "run.kind": KeySpec(choice_parser(*KINDS), "calibration kind (detected from the files if absent)"),
-    "run.seed": KeySpec(integer_parser(0), "seed of every random draw"),
+    # Stored in a 64-bit signed integer column.
+    "run.seed": KeySpec(integer_parser(0, 2**63 - 1), "seed of every random draw"),
     "run.coverage_probability": KeySpec(_coverage, "coverage probability of U (default 0.95)"),
     "run.linear_background": KeySpec(boolean, "fit a linear background under the dip", THERMOMETRY),
     "run.traceability": KeySpec(text, "traceability statement replacing the default"),

@@ -4,6 +4,7 @@
 from __future__ import annotations
 
 import json
+import logging
 import mimetypes
 import os
 from pathlib import Path
@@ -14,13 +15,17 @@ from sqlalchemy import select
 
 from service import storage as st
 from service.archive import ArchiveError, canonical_json, log_event
-from service.queue.jobs import enqueue, import_string, job_status
+from service.queue.jobs import RetryRefused, enqueue, import_string, job_status, retry
 from service.storage import sha256_hex
 from service.web.auth import (
     AuthError,
-    create_token,
+    TokenAlreadyRevoked,
+    TokenNotFound,
+    create_token_entry,
     create_user,
+    list_tokens,
     list_users,
+    revoke_token,
     roles_required,
     update_user,
 )
@@ -28,6 +33,7 @@ from service.web.openapi import openapi_document
 from service.web.upload import UploadError, accept_run, parse_seed
 
 bp = Blueprint("api", __name__, url_prefix="/api")
+logger = logging.getLogger(__name__)
 
 READERS = ("operator", "approver", "auditor")
 AUDIT = ("auditor", "approver")
@@ -160,6 +166,19 @@ def get_run(run_id: str):
     return jsonify(info)
 
 
+@bp.post("/jobs/<job_id>/retry")
+@roles_required("operator", "approver")
+def retry_job(job_id: str):
+    """Queue a failed job again (bounded; see queue.jobs.MAX_RETRIES)."""
+    try:
+        result = retry(services().storage, job_id, g.user)
+    except RetryRefused as exc:
+        return error(exc.status, str(exc))
+    response = jsonify(**result, job_url=url_for("api.get_job", job_id=job_id))
+    response.status_code = 202
+    return response
+
+
 @bp.get("/jobs/<job_id>")
 @roles_required(*READERS)
 def get_job(job_id: str):
@@ -207,19 +226,26 @@ def get_certificate(certificate_id: str):
 def _cached_pdf(record: dict[str, Any], plots_sha256: str | None) -> bytes:
     """PDF of a record; laying out the plots takes seconds, so identical requests reuse it.
 
-    The PDF is a pure function of the record and the plots (reportlab's invariant mode), so a
-    cache keyed by their digests can never serve a stale document.
+    The PDF is a pure function of the record and the plots (reportlab's invariant mode). The
+    cache is keyed by the SHA-256 of those inputs and each file is named with the SHA-256 of its
+    own bytes as well, checked on every read: a damaged or swapped file is laid out again, never
+    served (``KEY-PDFSHA256.pdf``).
     """
     from service.render.pdf import RENDERER_VERSION, render_pdf
 
     key = sha256_hex(
         canonical_json({"record": record, "plots": plots_sha256, "renderer": RENDERER_VERSION})
     )
-    path = Path(current_app.instance_path) / "cache" / "pdf" / f"{key}.pdf"
-    if path.is_file():
-        return path.read_bytes()
+    folder = Path(current_app.instance_path) / "cache" / "pdf"
+    for path in sorted(folder.glob(f"{key}-*.pdf")):
+        data = path.read_bytes()
+        if path.stem == f"{key}-{sha256_hex(data)}":
+            return data
+        logger.warning("PDF cache file %s does not match its name; laying out again", path.name)
+        path.unlink(missing_ok=True)
     pdf = render_pdf(record, services().archive.plots(plots_sha256))
-    path.parent.mkdir(parents=True, exist_ok=True)
+    path = folder / f"{key}-{sha256_hex(pdf)}.pdf"
+    folder.mkdir(parents=True, exist_ok=True)
     tmp = path.with_suffix(f".{os.getpid()}.tmp")
     tmp.write_bytes(pdf)
     os.replace(tmp, path)
@@ -281,7 +307,7 @@ def get_output_file(certificate_id: str, name: str):
     if entry is None:
         names = ", ".join(sorted(info["extra_files"])) or "none"
         return error(404, f"{certificate_id} has no output file {name!r} (it has: {names})")
-    data = services().storage.blobs.get(entry["sha256"])
+    data = services().archive.checked_blob(entry["sha256"], f"output file {name} of {certificate_id}")
     media = mimetypes.guess_type(name)[0] or "application/octet-stream"
     response = Response(data, mimetype=media)
     response.headers["Content-Disposition"] = f'attachment; filename="{certificate_id}-{name}"'
@@ -342,8 +368,10 @@ def amend_certificate(certificate_id: str):
 def verify_and_log(certificate_id: str):
     """Verify one certificate and record who did it (API and web page alike)."""
     report = services().archive.verify(certificate_id)
-    with services().storage.write() as conn:
-        log_event(conn, g.user["username"], "certificate.verified", certificate_id, {"valid": report.valid})
+    if not services().storage.read_only:  # a read-only audit copy cannot log; it only reports
+        with services().storage.write() as conn:
+            log_event(conn, g.user["username"], "certificate.verified", certificate_id,
+                      {"valid": report.valid})
     return report
 
 
@@ -430,9 +458,28 @@ def patch_user(username: str):
 @roles_required("admin")
 def post_token(username: str):
     body = _json_body()
-    token = create_token(
-        services().storage, username, body.get("label", ""), actor=g.user["username"]
+    token_id, token = create_token_entry(
+        services().storage, username, str(body.get("label", "")), actor=g.user["username"]
     )
-    response = jsonify(username=username, token=token, note="shown once; store it safely")
+    response = jsonify(
+        username=username, token=token, token_id=token_id, note="shown once; store it safely"
+    )
     response.status_code = 201
     return response
+
+
+@bp.get("/users/<username>/tokens")
+@roles_required("admin")
+def get_tokens(username: str):
+    return jsonify(username=username, tokens=list_tokens(services().storage, username))
+
+
+@bp.post("/users/<username>/tokens/<int:token_id>/revoke")
+@roles_required("admin")
+def revoke(username: str, token_id: int):
+    try:
+        return jsonify(revoke_token(services().storage, username, token_id, g.user["username"]))
+    except TokenNotFound as exc:
+        return error(404, str(exc))
+    except TokenAlreadyRevoked as exc:
+        return error(409, str(exc))
