@@ -248,9 +248,13 @@ def _fit(sums: list[_Sums], tau_grid: np.ndarray, leave_out: int | None, start_s
     return TransientFit(float(theta[0]), float(theta[1]), tau, float(theta[2]), start_s)
 
 
-def _tau_grid(rec: StackedRecord) -> np.ndarray:
+def _tau_grid(rec: StackedRecord, start_s: float = 0.0) -> np.ndarray:
+    """Time constants searched for a window starting ``start_s`` after the switch: up to
+    MAX_TAU_FRACTION of the segment, and no more than half the window (a slower exponential
+    cannot be told from a level and a slope there; an earlier, longer window is where it shows)."""
     lo = 0.3 * rec.reading_interval_s
-    hi = max(MAX_TAU_FRACTION * rec.segment_duration_s, 2 * lo)
+    hi = max(min(MAX_TAU_FRACTION * rec.segment_duration_s,
+                 0.5 * (rec.segment_duration_s - start_s)), 2 * lo)
     return np.geomspace(lo, hi, 48)
 
 
@@ -387,7 +391,8 @@ def _profile(rec: StackedRecord) -> tuple[dict, dict, float]:
     return since, vals, (float(np.median(noise)) if noise else 0.0)
 
 
-def _component(rec: StackedRecord, start: float, grid: np.ndarray) -> TransientComponent | None:
+def _component(rec: StackedRecord, start: float) -> TransientComponent | None:
+    grid = _tau_grid(rec, start)
     sums = _window_sums(rec, start)
     if not sums:
         return None
@@ -396,12 +401,13 @@ def _component(rec: StackedRecord, start: float, grid: np.ndarray) -> TransientC
     ua = _jackknife_u(np.array([r.amplitude_on_a for r in reps]))
     uo = _jackknife_u(np.array([r.amplitude_off_a for r in reps]))
     ut = _jackknife_u(np.array([r.tau_s for r in reps]))
-    # Resolution is judged on the transient at the window start, A exp(−w/τ): the amplitude at
-    # t = 0 of a window that starts late is an extrapolation that τ's uncertainty inflates.
+    # Resolution is judged on the transient at the window start, A_w, with τ held at τ̂: the fit
+    # is then linear and its jackknife that of a smooth statistic (with τ free, replicates that
+    # jump between optima of a weak transient inflate it).
+    held = [_fixed(sums, np.array([fit.tau_s]), b, start)[0] for b in range(rec.blocks)]
     z = 0.0
     for direction in (1, 0):
-        at = np.array([float(r.shape(start, direction)) for r in reps])
-        u = _jackknife_u(at)
+        u = _jackknife_u(np.array([float(r.shape(start, direction)) for r in held]))
         v = abs(float(fit.shape(start, direction)))
         z = max(z, v / u if u > 0 else (math.inf if v > 0 else 0.0))
     resolved = bool(z >= RESOLVED_Z)
@@ -437,8 +443,8 @@ def choose_discard(
     where that fit's transient has fallen to the noise of one stacked position, and so looks for a
     slower component the faster one hid (the method of residuals for sums of exponentials; common
     practice, no source); peeling stops at the first fit that is not resolved. The discard is
-    never shorter than the start of the last resolved fit's window, so that every kept reading
-    lies inside every window used. At each discard d the fit that allows the largest residual bias
+    never shorter than the start of the last fit's window, so that every kept reading lies
+    inside every window used. At each discard d the fit that allows the largest residual bias
     |b̂(d)| + t u(b̂(d)) (eq. 2, jackknife u) sets the correction: a fast component fitted over the
     whole segment cannot hide a slower one a later window saw, and a later window whose fit
     wandered to a short τ cannot hide the slow tail an earlier fit measured. Among the discards
@@ -446,8 +452,9 @@ def choose_discard(
     u(d)² + u(b̂(d))², u(d) the Type A (and chain) uncertainty with readings before d dropped.
     The mean difference is corrected by b̂(d).
 
-    A fit that is not resolved leaves τ open: each τ of the searched range (at fixed τ the fit is
-    linear) is then a hypothesis, and the one allowing the largest bias sets the correction.
+    A fit that is not resolved leaves τ open and is not corrected for: each τ of the searched
+    range (at fixed τ the fit is linear) is a hypothesis, and the largest jackknife u(b̂_τ) over
+    them is the standard uncertainty of its allowance (estimate zero).
 
     Refused (SettlingError) when a resolved fit's τ reaches the top of the searched range (the
     transient may be slower still), or when, at the chosen discard, the transient's uncertainty exceeds the
@@ -457,7 +464,6 @@ def choose_discard(
 
     ``weights_and_u(d)`` returns the per-segment weights of the mean cycle difference and the
     standard uncertainty (A, indicated) the result would have with discard d."""
-    grid = _tau_grid(rec)
     positions = np.unique(np.concatenate([s.since for s in rec.stacks]))
     first = positions[positions > 0.5 * rec.reading_interval_s]
     if first.size == 0:
@@ -471,7 +477,7 @@ def choose_discard(
     components: list[TransientComponent] = []
     start = float(first[0])
     while len(components) < max_components:
-        c = _component(rec, start, grid)
+        c = _component(rec, start)
         if c is None:
             break
         components.append(c)
@@ -487,9 +493,9 @@ def choose_discard(
         start = float(nxt[0])
     if not components:
         raise SettlingError("no segment is long enough to fit the settling transient")
-    # The first fit and every resolved later one; an unresolved last fit only says that nothing
-    # more can be seen (its jackknife, over a τ the data do not fix, is not a smooth statistic).
-    used = [components[0]] + [c for c in components[1:] if c.resolved]
+    # Every fit counts; an unresolved one through its fixed-τ hypotheses (its jackknife with τ
+    # free, over a τ the data do not fix, is not a smooth statistic).
+    used = components
     tq = float(stats.t.ppf(0.975, rec.blocks - 1))
     low = max(minimum_s, float(first[0]), used[-1].fit.window_start_s)
     candidates = positions[(positions >= low) & (positions <= latest)]
@@ -500,13 +506,21 @@ def choose_discard(
         # The component that allows the largest residual bias sets the correction.
         worst = None
         for c in used:
-            for fit, reps in c.hypotheses:
-                b = residual_bias(rec, fit, d, weights)
-                ub = _jackknife_u(np.array([residual_bias(rec, r, d, weights) for r in reps]))
-                if worst is None or abs(b) + tq * ub > abs(worst[0]) + tq * worst[1]:
-                    worst = (b, ub)
-        b, ub = worst
-        return (d, b, ub, u, math.hypot(u, ub))
+            if c.resolved:
+                b = residual_bias(rec, c.fit, d, weights)
+                ub = _jackknife_u(np.array([residual_bias(rec, r, d, weights)
+                                            for r in c.replicates]))
+            else:
+                # Not resolved: no correction, an allowance as large as the worst τ allows.
+                b = 0.0
+                ub = 0.0
+                for _, reps in c.alternatives:
+                    ub = max(ub, _jackknife_u(np.array([residual_bias(rec, r, d, weights)
+                                                         for r in reps])))
+            if worst is None or abs(b) + tq * ub > abs(worst[0]) + tq * worst[1]:
+                worst = (b, ub, c)
+        b, ub, c = worst
+        return (d, b, ub, u, c, math.hypot(u, ub))
 
     # Every candidate when there are few; else every k-th, then all between the best one's
     # neighbours (the total uncertainty varies slowly with d).
@@ -517,7 +531,7 @@ def choose_discard(
         if k not in tried:
             tried[k] = evaluate(float(candidates[k]))
     best = min(tried.values(), key=lambda x: x[-1])
-    d, b, ub, u, _ = best
+    d, b, ub, u, setter, _ = best
     result = SettlingAnalysis(tuple(components), d, minimum_s, b, ub, abs(b) + tq * ub,
                               BIAS_FRACTION_OF_U * u, since, vals, noise, rec.blocks, ub > u)
     slow = [c for c in used if c.resolved and c.at_limit]
@@ -526,11 +540,11 @@ def choose_discard(
         raise SettlingError(
             f"the settling transient after each switch is too slow for these segments: fitted "
             f"from {fit.window_start_s:g} s after the switch, its time constant reaches the "
-            f"largest the analysis accepts ({fit.tau_s:.3g} s, a quarter of the "
-            f"{rec.segment_duration_s:g} s segment), so it may be slower still and its tail in "
+            f"largest the analysis accepts ({fit.tau_s:.3g} s for the "
+            f"{rec.segment_duration_s:g} s segments), so it may be slower still and its tail in "
             "the kept readings cannot be bounded; record longer segments", result)
-    if ub > u and not used[-1].resolved:
-        c = used[-1]
+    if ub > u and not setter.resolved:
+        c = setter
         fit = c.fit
         what = ("the transient is resolved" if c.resolved else
                 "the transient cannot be resolved from the noise")
