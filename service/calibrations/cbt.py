@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, replace
 
 from scipy import stats
 
@@ -33,8 +33,10 @@ from analysis.cbt.models import (
     higher_order_shape,
 )
 from analysis.cbt.uncertainty import TypeBInputs, temperature_budget
+from service.calibrations.outcome import CalibrationOutcome, CertificationRefused
+from service.calibrations.parallel import run_pieces
 from service.intake import IntakeError, Run, check_cbt_sweep, is_cbt_sweep, manifest_number
-from service.plots import sweep_fit_svg
+from service.render.plots import sweep_fit_svg
 
 Progress = Callable[[float, str], None]
 
@@ -45,24 +47,6 @@ WARN_RANGE_HALF_WIDTHS = 4.0
 RESIDUAL_CORRELATION_LIMIT = 0.3
 #: Relative electron heating at the half-depth bias above which a sweep is flagged.
 HEATING_WARNING = 0.10
-
-
-class CertificationRefused(Exception):
-    """The analysis ran but its result must not go on a certificate; message says why."""
-
-
-@dataclass
-class JobOutcome:
-    """What a job hands to the certificate builder."""
-
-    results: list[dict]
-    sections: dict = field(default_factory=dict)
-    plots: dict[str, str] = field(default_factory=dict)
-    diagnostics: dict = field(default_factory=dict)
-    deviations: list[str] = field(default_factory=list)
-    method: dict = field(default_factory=dict)
-    conditions: dict = field(default_factory=dict)
-    extra_files: dict[str, bytes] = field(default_factory=dict)
 
 
 def heating_model(manifest: dict) -> tuple[HeatingModel | None, float]:
@@ -310,7 +294,12 @@ def global_section(g: GlobalFit, works: list[SweepWork]) -> dict:
     }
 
 
-def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = False) -> JobOutcome:
+def _fit_piece(piece, report: Progress) -> SweepWork:
+    f, seed, settings, heating, background = piece
+    return fit_file(f, seed, settings, None, report, heating, background)
+
+
+def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = False) -> CalibrationOutcome:
     """Analyse every sweep of a thermometry run independently (each with its own derived seed)."""
     manifest = run.manifest
     p = manifest_number(manifest, "run.coverage_probability", 0.95, 0.5, 0.9999)
@@ -322,14 +311,18 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
     inputs = replace(inputs, coupling_relative_u=coupling_u)
     settings = fit_settings(manifest, fast)
     sweeps = [f for f in run.files if is_cbt_sweep(f)]
-    outcome = JobOutcome(results=[])
-    works = []
-    for k, f in enumerate(sweeps):
-        def sub(frac: float, step: str, k=k, name=f.name) -> None:
-            if progress:
-                progress(0.95 * (k + frac) / len(sweeps), f"{name}: {step}")
+    outcome = CalibrationOutcome(results=[])
+    # Sweeps are independent (each with its own seed, seed + k): fitted side by side on worker
+    # processes, with identical results whatever their number (service/calibrations/parallel.py).
+    done = [0.0] * len(sweeps)
 
-        works.append(fit_file(f, seed + k, settings, None, sub, heating, background))
+    def sub(k: int, frac: float, step: str) -> None:
+        done[k] = frac
+        if progress:
+            progress(0.95 * sum(done) / len(sweeps), f"{sweeps[k].name}: {step}")
+
+    pieces = [(f, seed + k, settings, heating, background) for k, f in enumerate(sweeps)]
+    works = run_pieces(_fit_piece, pieces, sub)
     notes: list[str | None] = [None] * len(works)
     if one_device(works):
         if progress:

@@ -221,7 +221,7 @@ class WorkerSettings:
     database_url: str
     blob_root: str
     key_dir: str
-    certify: str = "service.certify:certify_run"
+    certify: str = "service.calibrations.certify:certify_run"
     load_run: str = "service.intake:load_run"
     number_prefix: str = "CC"
     poll_seconds: float = 0.2

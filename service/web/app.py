@@ -21,7 +21,7 @@ from flask import Flask, jsonify, render_template, request
 from werkzeug.exceptions import HTTPException
 
 from service.archive import Archive, LabKey
-from service.jobs import WorkerPool, WorkerSettings
+from service.queue.jobs import WorkerPool, WorkerSettings
 from service.storage import Storage, default_database_url
 
 logger = logging.getLogger(__name__)
@@ -35,7 +35,7 @@ DEFAULTS: dict[str, Any] = {
     "DATABASE_URL": None,
     "WORKERS": 2,
     "START_WORKERS": False,
-    "CERTIFY": "service.certify:certify_run",
+    "CERTIFY": "service.calibrations.certify:certify_run",
     "LOAD_RUN": "service.intake:load_run",
     "CERTIFICATE_PREFIX": "CC",
     # Keyword options passed to the analysis and recorded with each certificate ({"fast": True}
@@ -43,6 +43,9 @@ DEFAULTS: dict[str, Any] = {
     "ANALYSIS_OPTIONS": {},
     # Public keys (hex) of lab keys used before a key change, so their entries still verify.
     "TRUSTED_PUBLIC_KEYS": (),
+    # The laboratory's copy of the DCC 3.3.0 dcc.xsd; when set (here or by COLDCERT_DCC_SCHEMA),
+    # every DCC rendering is validated against it before it is served.
+    "DCC_SCHEMA": None,
     "SESSION_COOKIE_HTTPONLY": True,
     "SESSION_COOKIE_SAMESITE": "Lax",
 }
@@ -126,7 +129,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     services = Services(storage, archive, key, settings)
     app.extensions["coldcert"] = services
 
-    from service import api, auth, pages
+    from service.web import api, auth, pages
 
     app.register_blueprint(auth.bp)
     app.register_blueprint(api.bp)
