@@ -11,7 +11,9 @@ time of the on readings, ΔI_j = Ī_on,j − [(1 − w_j) Ī_off,j + w_j Ī_off,
 symmetric timing w_j = 1/2 and this is the expression above, and for any timing a linear drift
 cancels exactly.
 
-Readings just after each switch are dropped while the ammeter settles (:class:`SettlingRule`).
+Readings just after each switch are dropped while the ammeter settles (:class:`SettlingRule`);
+how many is decided by the transient measured in the record itself (:mod:`analysis.pump.settling`,
+:func:`measure_settling`), which also corrects for the tail left in the kept readings.
 
 Neighbouring ΔI_j share an off segment, so they are correlated even for white reading noise
 (lag-1 correlation Var(Ī_off)/4 over Var(ΔI), about +1/6 for equal segments; lags ≥ 2 are
