@@ -222,7 +222,12 @@ def test_ideal_chain_budget_is_type_a_only_and_says_so():
     t, i, on = simulate.on_off_record(settings, seed=2)
     res = R.analyse_record(t, i, on, 1.0e9, 1, seed=4, monte_carlo_draws=20_000)
     b = res.precision.budget
-    assert b.combined_standard_uncertainty == pytest.approx(b.rows[0].contribution)
+    # Only the Type A row and the measured settling transient's row carry uncertainty.
+    settling = [r for r in b.rows if r.quantity.startswith("settling transient")]
+    assert len(settling) == 1
+    assert all(r.standard_uncertainty == 0 for r in b.rows[1:] if r not in settling)
+    assert b.combined_standard_uncertainty == pytest.approx(
+        math.hypot(b.rows[0].contribution, settling[0].contribution))
     assert any("ideal ammeter" in n for n in b.notes)
     assert abs(b.estimate - 2.0) < 4 * b.combined_standard_uncertainty
 

@@ -262,13 +262,6 @@ def _tau_grid(rec: StackedRecord, start_s: float = 0.0) -> np.ndarray:
 # Residual bias of a discard
 
 
-def _mean_decay(since: np.ndarray, d: float, tau: float, start: float) -> float:
-    """ḡ(d): mean of exp(−(t_k − w)/τ) over the positions with t_k ≥ d (eq. 2, amplitudes
-    referred to the window start w)."""
-    kept = since[since >= d]
-    return float(np.mean(np.exp(-(kept - start) / tau))) if kept.size else 0.0
-
-
 def residual_bias(rec: StackedRecord, fit: TransientFit, d: float,
                   segment_weight: np.ndarray) -> float:
     """Mean over cycles of eq. (2): the bias the fitted transient leaves in the mean cycle
@@ -276,12 +269,28 @@ def residual_bias(rec: StackedRecord, fit: TransientFit, d: float,
 
     ``segment_weight[s]`` is segment s's total weight in the mean difference (+1/J for each on
     segment, −(1 − w_j)/J and −w_j/J for the off segments of cycle j, J cycles)."""
-    total = 0.0
-    for s in rec.stacks:
-        w = float(np.sum(segment_weight[s.segments]))
-        if w:
-            a = fit.amplitude_on_a if s.direction == 1 else fit.amplitude_off_a
-            total += w * a * _mean_decay(s.since, d, fit.tau_s, fit.window_start_s)
+    return float(residual_biases(rec, [fit], d, _stack_weights(rec, segment_weight))[0])
+
+
+def _stack_weights(rec: StackedRecord, segment_weight: np.ndarray) -> np.ndarray:
+    return np.array([float(np.sum(segment_weight[s.segments])) for s in rec.stacks])
+
+
+def residual_biases(rec: StackedRecord, fits: list[TransientFit], d: float,
+                    stack_weight: np.ndarray) -> np.ndarray:
+    """:func:`residual_bias` for many fits at once (the jackknife replicates), with the
+    per-stack weights already summed."""
+    tau = np.array([f.tau_s for f in fits])
+    w0 = np.array([f.window_start_s for f in fits])
+    a_on = np.array([f.amplitude_on_a for f in fits])
+    a_off = np.array([f.amplitude_off_a for f in fits])
+    total = np.zeros(len(fits))
+    for s, w in zip(rec.stacks, stack_weight, strict=True):
+        kept = s.since[s.since >= d]
+        if w == 0 or kept.size == 0:
+            continue
+        g = np.exp(-(kept[None, :] - w0[:, None]) / tau[:, None]).mean(axis=1)
+        total += w * (a_on if s.direction == 1 else a_off) * g
     return total
 
 
@@ -503,20 +512,19 @@ def choose_discard(
         candidates = np.array([low])
     def evaluate(d: float) -> tuple[float, float, float, float, float]:
         weights, u = weights_and_u(d)
+        sw = _stack_weights(rec, weights)
         # The component that allows the largest residual bias sets the correction.
         worst = None
         for c in used:
             if c.resolved:
-                b = residual_bias(rec, c.fit, d, weights)
-                ub = _jackknife_u(np.array([residual_bias(rec, r, d, weights)
-                                            for r in c.replicates]))
+                bs = residual_biases(rec, [c.fit, *c.replicates], d, sw)
+                b, ub = float(bs[0]), _jackknife_u(bs[1:])
             else:
                 # Not resolved: no correction, an allowance as large as the worst τ allows.
                 b = 0.0
                 ub = 0.0
                 for _, reps in c.alternatives:
-                    ub = max(ub, _jackknife_u(np.array([residual_bias(rec, r, d, weights)
-                                                         for r in reps])))
+                    ub = max(ub, _jackknife_u(residual_biases(rec, list(reps), d, sw)))
             if worst is None or abs(b) + tq * ub > abs(worst[0]) + tq * worst[1]:
                 worst = (b, ub, c)
         b, ub, c = worst
