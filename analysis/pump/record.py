@@ -716,8 +716,8 @@ def measure_settling(
 ) -> S.SettlingAnalysis:
     """The settling transient of the record and the discard it calls for
     (:mod:`analysis.pump.settling`). ``other_u_a`` is the rest of the result's standard
-    uncertainty (the chain's), in amperes of indicated current, so that the bias target is a tenth
-    of the whole standard uncertainty; ``floor`` the smallest discard allowed (a fraction rule
+    uncertainty (the chain's), in amperes of indicated current, so that the discard minimises the
+    whole standard uncertainty; ``floor`` the smallest discard allowed (a fraction rule
     counts as that fraction of the median segment)."""
     t = np.asarray(time_s, dtype=float)
     i = np.asarray(current_a, dtype=float)

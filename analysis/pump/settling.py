@@ -38,15 +38,25 @@ and the delete-a-group jackknife variance u² = (G − 1)/G Σ_g (θ_(g) − θ�
 An Introduction to the Bootstrap (1993), ch. 11, eq. 11.5 for G = n) of every fitted quantity,
 including the residual bias b(d), uses the record's own noise, whatever its colour.
 
-Choice of the discard. The discard d is the smallest one (never less than the operator's stated
-settling time) for which the bound |b̂(d)| + t_{0.975,G−1} u(b̂(d)) is at most a tenth of the
-standard uncertainty of the result; the bound enters the budget as a rectangular allowance.
-Because the fitted shape is only an approximation of the real transient (two time constants, a
-filter response, an overshoot), the fit is repeated over the readings from d/2 onwards until the
-discard no longer grows: what decides the residual bias is the tail near and beyond d, and a fit
-over that window follows the slowest component present there rather than the fast bulk of the
-transient. If no discard leaving at least a fifth of each segment meets the bound — a transient
-that cannot be resolved, or segments too short to outlast it — the record is refused.
+Peeling. The fitted shape only approximates a real transient (two time constants, a filter
+response, an overshoot). When a fit is resolved, the next fit starts where that one's transient
+has fallen to the noise of one stacked position and looks for a slower component the faster one
+hid (the method of residuals for sums of exponentials; common practice, no source); peeling stops
+at the first fit that is not resolved. What decides the residual bias is the tail near and beyond
+the discard, and a late window follows the slowest component there.
+
+Correction and choice of the discard (the correction variant of "fit the asymptotic levels with
+the shared transient"). At a discard d — never less than the operator's stated settling time, nor
+than the start of the last fit's window — each resolved fit predicts b̂(d) with a jackknife
+uncertainty; an unresolved fit predicts nothing (τ is not fixed) and contributes an allowance of
+estimate zero whose standard uncertainty is the largest fixed-τ jackknife u(b̂_τ(d)) over its τ
+range. The fit allowing the largest |b̂| + t_{0.975,G−1} u sets the correction and its budget row;
+d is the candidate that minimises the combined u(d)² + u(b̂(d))².
+
+Refusals: a resolved fit whose τ reaches the top of its range (a quarter of the segment, at most
+half the window): the transient may be slower still and the segments cannot outlast it; or an
+unresolved fit whose allowance exceeds the rest of the uncertainty at the best discard. A
+resolved transient whose correction dominates is certified with a warning.
 """
 
 from __future__ import annotations
@@ -58,8 +68,6 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
-#: The discard must bring the residual bias bound below this fraction of the standard uncertainty.
-BIAS_FRACTION_OF_U = 0.1
 #: At least this fraction of every segment must remain after the discard.
 MIN_KEPT_FRACTION = 0.2
 #: Largest time constant searched, as a fraction of the median segment duration: a slower
@@ -338,8 +346,8 @@ class SettlingAnalysis:
     minimum_discard_s: float  # the operator's stated settling time (the floor)
     residual_bias_a: float  # b̂(d) of the component that sets the bound, not corrected for
     residual_bias_u_a: float  # its jackknife standard uncertainty
-    bias_bound_a: float  # |b̂| + t u: half-width of the rectangular budget allowance
-    target_a: float  # BIAS_FRACTION_OF_U × the standard uncertainty it was compared with
+    bias_bound_a: float  # |b̂| + t u: how large the residual bias could be (reported)
+    other_u_a: float  # standard uncertainty of the rest of the result at the chosen discard
     profile_since_s: dict[int, np.ndarray]  # stacked mean profile for the plot, by direction
     profile_values_a: dict[int, np.ndarray]  # mean of (reading − segment level)
     profile_noise_a: float  # standard error of one stacked position
@@ -371,7 +379,7 @@ class SettlingAnalysis:
             "components": [c.as_dict() for c in self.components],
             "discard_s": self.discard_s, "minimum_discard_s": self.minimum_discard_s,
             "residual_bias_A": self.residual_bias_a, "residual_bias_u_A": self.residual_bias_u_a,
-            "residual_bias_bound_A": self.bias_bound_a, "bias_target_A": self.target_a,
+            "residual_bias_bound_A": self.bias_bound_a, "other_standard_uncertainty_A": self.other_u_a,
             "jackknife_blocks": self.blocks, "transient_limits_uncertainty": self.limiting,
         }
 
@@ -541,7 +549,7 @@ def choose_discard(
     best = min(tried.values(), key=lambda x: x[-1])
     d, b, ub, u, setter, _ = best
     result = SettlingAnalysis(tuple(components), d, minimum_s, b, ub, abs(b) + tq * ub,
-                              BIAS_FRACTION_OF_U * u, since, vals, noise, rec.blocks, ub > u)
+                              u, since, vals, noise, rec.blocks, ub > u)
     slow = [c for c in used if c.resolved and c.at_limit]
     if slow:
         fit = slow[0].fit
