@@ -503,7 +503,44 @@ def _record_blocks(r: Mapping[str, Any]) -> list[Block]:
             f"JCGM 101 Monte Carlo ({mc['draws']} draws, seed {mc['seed']}): u = "
             f"{mc['standard_uncertainty']:.3g} ppm, probabilistically symmetric 95 % interval "
             f"[{lo:.4g}, {hi:.4g}] ppm; the GUM interval is "
-            + ("validated" if mc["gum_framework_validated"] else "NOT validated")
-            + f" at tolerance {mc['tolerance']:.2g} ppm (JCGM 101 clause 8)."
+            + _VALIDATION_WORDS[mc["gum_framework_validated"]]
+            + f" at tolerance {mc['tolerance']:.2g} ppm (JCGM 101 clause 8"
+            + (f"; numerical standard deviation of an interval end "
+               f"{mc['interval_end_numerical_u']:.2g} ppm)." if "interval_end_numerical_u" in mc
+               else ").")
         ),
+    ] + (_settling_blocks(rec["settling_transient"], r["nominal_current_A"])
+         if rec.get("settling_transient") else [])
+
+
+_VALIDATION_WORDS = {True: "validated", False: "NOT validated",
+                     None: "neither validated nor rejected (the two intervals differ by more than "
+                           "the tolerance but by less than the Monte Carlo's own resolution)"}
+
+
+def _settling_blocks(st: Mapping[str, Any], i0: float) -> list[Block]:
+    """The settling transient measured from the record: fits, discard, correction
+    (analysis.pump.settling)."""
+    rows = tuple(
+        (f"{c['fit_window_start_s']:g}",
+         f"{c['amplitude_after_switch_on_A'] * 1e15:.3g} ± {c['amplitude_after_switch_on_u_A'] * 1e15:.2g}",
+         f"{c['amplitude_after_switch_off_A'] * 1e15:.3g} ± {c['amplitude_after_switch_off_u_A'] * 1e15:.2g}",
+         f"{c['time_constant_s']:.3g} ± {c['time_constant_u_s']:.2g}",
+         "yes" if c["resolved"] else "no")
+        for c in st["components"]
+    )
+    b, ub = st["residual_bias_A"], st["residual_bias_u_A"]
+    floor = (f" (at least the stated {st['minimum_discard_s']:g} s)"
+             if st["minimum_discard_s"] > 0 else "")
+    return [
+        Heading("Settling transient, measured from the record", 4),
+        Text(f"Readings within {st['discard_s']:g} s after each switch were dropped{floor}. The "
+             f"transient left in the kept readings, {b * 1e15:+.3g} ± {ub * 1e15:.2g} fA "
+             f"({b / i0 * 1e6:+.3g} ± {ub / i0 * 1e6:.2g} ppm of n·e·f), is corrected for and its "
+             "uncertainty is a row of the budget (a fit that is not resolved is not corrected for; "
+             "it gives an allowance). Each fit is A·exp(−(t − w)/τ) after switch-on and after "
+             "switch-off with a shared τ, fitted to the segments stacked on their switch from w "
+             f"on; uncertainties by jackknife over {st['jackknife_blocks']} blocks of segments."),
+        Grid(("fitted from w (s)", "A after switch-on at w (fA)", "A after switch-off at w (fA)",
+              "τ (s)", "resolved"), rows, frozenset({0, 1, 2, 3})),
     ]
