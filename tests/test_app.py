@@ -489,11 +489,14 @@ def test_every_documented_route_answers_as_documented(lab, issued):
         ("PATCH", "/api/users/{username}"): {"roles": "operator"},
         ("POST", "/api/certificates/{certificate_id}/withdraw"): {"reason": "route check"},
         ("POST", "/api/certificates/{certificate_id}/amend"): {"reason": "route check"},
+        ("POST", "/api/certificates/{certificate_id}/corrections"): {
+            "corrections": {"customer": {"name": "Route Check"}}
+        },
     }
     person = {"operator": "olga", "approver": "bea", "auditor": "aude", "admin": "adam"}
     # Issue and withdraw act on a fresh draft, the rest on a fresh issued certificate, so that
     # every call can succeed whatever other tests did to the shared one.
-    first, second = (lab.upload(client).get_json()["job_id"] for _ in range(2))
+    first, second, third = (lab.upload(client).get_json()["job_id"] for _ in range(3))
     draft = lab.wait(client, first)["certificate_id"]
     cert = lab.wait(client, second)["certificate_id"]
     assert (
@@ -501,6 +504,16 @@ def test_every_documented_route_answers_as_documented(lab, issued):
         == 200
     )
     fill["certificate_id"] = cert
+    # A token to revoke, and a failed job to retry (as if interrupted by restarts).
+    fill["token_id"] = str(
+        client.post("/api/users/olga/tokens", json={"label": "route check"},
+                    headers=lab.headers("adam")).get_json()["token_id"]
+    )
+    failed_job = lab.upload(client).get_json()["job_id"]
+    lab.wait(client, failed_job)
+    with lab.services.storage.write() as conn:
+        conn.execute(st.jobs.update().where(st.jobs.c.id == failed_job).values(
+            status="failed", error="interrupted 3 times (route check)"))
     called = 0
     for path, operations in openapi_document()["paths"].items():
         for method, op in operations.items():
@@ -510,6 +523,10 @@ def test_every_documented_route_answers_as_documented(lab, issued):
                 concrete = concrete.replace("{" + name + "}", value)
             if path.endswith(("/issue", "/withdraw")):
                 concrete = concrete.replace(cert, draft)
+            if path.endswith("/retry"):
+                concrete = concrete.replace(fill["job_id"], failed_job)
+            if path.endswith("/corrections"):  # a draft of its own (the other is withdrawn)
+                concrete = concrete.replace(cert, lab.wait(client, third)["certificate_id"])
             roles = op["x-roles"]
             headers = lab.headers(person[roles[0]]) if roles else {}
             kwargs = {"json": bodies.get(key, {})} if method != "get" else {}

@@ -27,7 +27,7 @@ from analysis.cbt.fit import (
     initial_guess,
     least_squares_fit,
 )
-from analysis.cbt.full_model import FullModelRangeError, FullTunnellingShape
+from analysis.cbt.full_model import FullModelRangeError, FullTunnellingShape, shared_shape
 from analysis.cbt.models import DipShape, higher_order_shape
 from analysis.sampling import ProgressCallback
 
@@ -45,7 +45,7 @@ class ModelChoice:
 def full_model_for(n_junctions: int, c0_ratio: float = 0.0) -> FullTunnellingShape | None:
     """The full tunnelling model for this array, or None where no validated table exists (cached)."""
     try:
-        return FullTunnellingShape(int(n_junctions), float(c0_ratio))
+        return shared_shape(int(n_junctions), float(c0_ratio))
     except FullModelRangeError:
         return None
 
