@@ -421,7 +421,7 @@ def en_number(
     denominator = math.hypot(expanded_uncertainty, reference_expanded_uncertainty)
     if denominator == 0:
         raise HistoryError("E_n needs at least one non-zero expanded uncertainty")
-    return abs(value - reference) / denominator
+    return float(abs(value - reference) / denominator)
 
 
 @dataclass(frozen=True)
@@ -439,7 +439,7 @@ class DepartureCheck:
     @property
     def departs(self) -> bool:
         """E_n > 1: the calibration departs from the item's drift model (ISO 13528)."""
-        return self.en > 1.0
+        return bool(self.en > 1.0)
 
 
 def check_new_calibration(
