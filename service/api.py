@@ -15,6 +15,7 @@ from sqlalchemy import select
 
 from service import storage as st
 from service.archive import ArchiveError, canonical_json, log_event
+from service.archive_history import record_rendering
 from service.auth import (
     AuthError,
     create_token,
@@ -205,26 +206,45 @@ def get_certificate(certificate_id: str):
     return jsonify(services().archive.get(certificate_id))
 
 
-def _cached_pdf(record: dict[str, Any], plots_sha256: str | None) -> bytes:
+def _cached_pdf(
+    record: dict[str, Any], plots_sha256: str | None, check: dict[str, str] | None = None
+) -> bytes:
     """PDF of a record; laying out the plots takes seconds, so identical requests reuse it.
 
-    The PDF is a pure function of the record and the plots (reportlab's invariant mode), so a
-    cache keyed by their digests can never serve a stale document.
+    The PDF is a pure function of the record, the plots and the check block (reportlab's
+    invariant mode), so a cache keyed by their digests can never serve a stale document.
     """
     from service.pdf import RENDERER_VERSION, render_pdf
 
     key = sha256_hex(
-        canonical_json({"record": record, "plots": plots_sha256, "renderer": RENDERER_VERSION})
+        canonical_json(
+            {"record": record, "plots": plots_sha256, "renderer": RENDERER_VERSION, "check": check}
+        )
     )
     path = Path(current_app.instance_path) / "cache" / "pdf" / f"{key}.pdf"
     if path.is_file():
         return path.read_bytes()
-    pdf = render_pdf(record, services().archive.plots(plots_sha256))
+    pdf = render_pdf(record, services().archive.plots(plots_sha256), check=check)
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_suffix(f".{os.getpid()}.tmp")
     tmp.write_bytes(pdf)
     os.replace(tmp, path)
     return pdf
+
+
+def check_block(info: dict[str, Any]) -> dict[str, str] | None:
+    """What an issued certificate's PDF says about checking it: its number, the SHA-256 of its
+    signed record, and the public page where a customer checks the file they hold."""
+    if info.get("sequence") is None or not info.get("sha256"):
+        return None
+    base = current_app.config.get("PUBLIC_CHECK_URL") or url_for(
+        "public.check_page", _external=True
+    )
+    return {
+        "certificate_id": info["id"],
+        "signed_record_sha256": info["sha256"],
+        "url": f"{base}?id={info['id']}",
+    }
 
 
 def _with_lifecycle_notice(page: str, record: dict[str, Any]) -> str:
@@ -268,7 +288,7 @@ def render(info: dict[str, Any], fmt: str) -> tuple[bytes | str, str]:
         page = render_html(record, plots, sections)
         return _with_lifecycle_notice(page, record), RENDERINGS[fmt]
     if fmt == "pdf":
-        return _cached_pdf(record, info.get("plots_sha256")), RENDERINGS[fmt]
+        return _cached_pdf(record, info.get("plots_sha256"), check_block(info)), RENDERINGS[fmt]
     if fmt == "xml":
         from service.dcc import render_dcc
 
@@ -286,6 +306,11 @@ def get_rendering(certificate_id: str, fmt: str):
         content, media = render(info, fmt)
     except ValueError as exc:
         return error(409, str(exc))
+    if info.get("sequence") is not None:
+        # A file of an issued certificate leaves the service: note its SHA-256, so that the
+        # customer holding it can later check it on the public page.
+        data = content.encode("utf-8") if isinstance(content, str) else content
+        record_rendering(services().archive, certificate_id, fmt, sha256_hex(data))
     response = Response(content, mimetype=media.split(";")[0])
     response.headers["Content-Type"] = media
     extension = "json" if fmt == "signed" else fmt

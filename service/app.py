@@ -43,6 +43,12 @@ DEFAULTS: dict[str, Any] = {
     "ANALYSIS_OPTIONS": {},
     # Public keys (hex) of lab keys used before a key change, so their entries still verify.
     "TRUSTED_PUBLIC_KEYS": (),
+    # The laboratory's recall policy: maximum permissible change per tracked quantity and the
+    # interval bounds (docs/history.md). Empty: the default interval of service.item_history.
+    "RECALL_POLICY": {},
+    # Where customers check a certificate (printed on the PDF with a QR code); None: this
+    # service's own /check page as the request reached it.
+    "PUBLIC_CHECK_URL": None,
     "SESSION_COOKIE_HTTPONLY": True,
     "SESSION_COOKIE_SAMESITE": "Lax",
 }
@@ -126,11 +132,13 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     services = Services(storage, archive, key, settings)
     app.extensions["coldcert"] = services
 
-    from service import api, auth, pages
+    from service import api, auth, history_views, pages, public
 
     app.register_blueprint(auth.bp)
     app.register_blueprint(api.bp)
     app.register_blueprint(pages.bp)
+    app.register_blueprint(history_views.bp)
+    public.init_app(app)
 
     @app.errorhandler(HTTPException)
     def _http_error(exc: HTTPException):

@@ -31,7 +31,7 @@ from reportlab.platypus import (
 logger = logging.getLogger(__name__)
 
 #: Bump when the layout changes, so cached PDFs are laid out again.
-RENDERER_VERSION = 1
+RENDERER_VERSION = 2
 
 _STYLES = getSampleStyleSheet()
 BODY = ParagraphStyle("body", parent=_STYLES["BodyText"], fontSize=9, leading=11.5)
@@ -135,8 +135,49 @@ def _numbered_canvas(certificate_id: str, state: str):
     return NumberedCanvas
 
 
-def render_pdf(record: Mapping[str, Any], plots: Mapping[str, str] | None = None) -> bytes:
-    """The certificate as PDF bytes (A4)."""
+def _check_flowable(check: Mapping[str, str], width: float) -> Table:
+    """Where and how a holder checks this certificate, with a QR code of the check address
+    (reportlab's own QR widget, ISO/IEC 18004)."""
+    from reportlab.graphics.barcode.qr import QrCodeWidget
+    from reportlab.graphics.shapes import Drawing
+
+    size = 26 * mm
+    widget = QrCodeWidget(check["url"], barLevel="M")
+    x0, y0, x1, y1 = widget.getBounds()
+    drawing = Drawing(size, size, transform=[size / (x1 - x0), 0, 0, size / (y1 - y0), 0, 0])
+    drawing.add(widget)
+    text = [
+        _p("Check this certificate", H3),
+        _p(
+            f"Certificate number {check['certificate_id']}. SHA-256 of its signed record: "
+            f"{check['signed_record_sha256']}.",
+            SMALL,
+        ),
+        _p(
+            f"Anyone holding this file can check that the laboratory issued it and whether it is "
+            f"still in force, without an account, at {check['url']} (give the number and this "
+            "file; the file is fingerprinted in the browser and not uploaded).",
+            SMALL,
+        ),
+    ]
+    table = Table([[text, drawing]], colWidths=[width - size - 6 * mm, size + 6 * mm])
+    table.setStyle(
+        TableStyle(
+            [
+                ("BOX", (0, 0), (-1, -1), 0.4, colors.HexColor("#b5bcc6")),
+                ("VALIGN", (0, 0), (-1, -1), "TOP"),
+            ]
+        )
+    )
+    return table
+
+
+def render_pdf(
+    record: Mapping[str, Any],
+    plots: Mapping[str, str] | None = None,
+    check: Mapping[str, str] | None = None,
+) -> bytes:
+    """The certificate as PDF bytes (A4); ``check`` adds the block saying where to check it."""
     plots = dict(plots or {})
     cid = str(record.get("certificate_id", "unnumbered"))
     state = str(record.get("state", "draft"))
@@ -164,6 +205,8 @@ def render_pdf(record: Mapping[str, Any], plots: Mapping[str, str] | None = None
     if state in ("superseded", "withdrawn"):
         detail = record.get("superseded_by") or record.get("withdrawn_reason") or ""
         story.append(_p(f"This certificate is {state}: {detail}", DRAFT))
+    if check:
+        story += [Spacer(1, 2 * mm), _check_flowable(check, A4[0] - 36 * mm)]
     if record.get("replaces"):
         story.append(
             _p(

@@ -189,6 +189,17 @@ events = Table(
     Column("detail_json", Text, nullable=False, default="{}"),
 )
 
+#: The SHA-256 of every file of an issued certificate the service handed out (PDF, JSON, signed
+#: entry, DCC, HTML), so that a customer can later show a file and ask whether it is authentic.
+served_files = Table(
+    "served_files",
+    metadata,
+    Column("certificate_id", String(60), primary_key=True),
+    Column("sha256", String(64), primary_key=True),
+    Column("rendering", String(20), nullable=False),
+    Column("first_served_at", String(40), nullable=False),
+)
+
 #: Named counters (certificate numbers, chain sequence lock row).
 counters = Table(
     "counters",
@@ -200,7 +211,7 @@ counters = Table(
 # Rows that must never change once written. SQLite triggers turn an UPDATE or DELETE into an
 # error, so even a bug (or a careless hand in the database shell) cannot rewrite history
 # silently; verify() still catches edits made with the triggers dropped.
-_APPEND_ONLY_TABLES = ("chain", "events")
+_APPEND_ONLY_TABLES = ("chain", "events", "served_files")
 
 
 def utc_now() -> str:
