@@ -14,6 +14,7 @@ COMMAND_MODULES: tuple[str, ...] = (
     "service.commands",
     "service.sensor_run",
     "service.commands_service",
+    "service.history_commands",
 )
 
 

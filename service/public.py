@@ -62,6 +62,7 @@ def _asked() -> bool:
 
 @bp.route("/check", methods=["GET", "POST"])
 def check_page():
+    uploaded = bool(request.files.get("file") and request.files["file"].filename)
     certificate_id, sha256 = _question()
     answer: dict[str, Any] | None = None
     problem = None
@@ -71,7 +72,12 @@ def check_page():
         except ValueError as exc:
             problem = str(exc)
     return render_template(
-        "check.html", answer=answer, problem=problem, certificate_id=certificate_id, sha256=sha256
+        "check.html",
+        answer=answer,
+        problem=problem,
+        certificate_id=certificate_id,
+        sha256=sha256,
+        fingerprint_by="the server (the file was not kept)" if uploaded else "you or your browser",
     )
 
 

@@ -108,7 +108,8 @@ def test_impact_lists_certificates_by_software_with_item_and_customer(lab):
     assert [x["certificate_id"] for x in other["certificates"]] == new
     by_model = c.get("/api/impact?model=n·e·f", headers=lab.headers("aude")).get_json()
     assert by_model["count"] == 0  # the invented pump records name no model
-    assert c.get("/api/impact", headers=lab.headers("aude")).status_code == 400
+    everything = c.get("/api/impact", headers=lab.headers("aude")).get_json()
+    assert everything["count"] == len(old) + len(new)
     assert c.get("/api/impact?software=0.1.0", headers=lab.headers("olga")).status_code == 403
 
 
@@ -269,6 +270,7 @@ def test_a_file_checked_on_the_server_is_not_stored(lab):
         content_type="multipart/form-data",
     )
     assert 'id="check-state"' in page.get_data(as_text=True)
+    assert "computed by the server (the file was not kept)" in page.get_data(as_text=True)
     assert stored() == before
 
 
@@ -291,3 +293,22 @@ def test_public_check_is_throttled_per_address(lab):
         environ_base={"REMOTE_ADDR": "127.0.0.9"},
     )
     assert other.status_code == 200
+
+
+def test_command_line_history_and_due(lab, tmp_path, capsys):
+    from service.cli import main as cli_main
+
+    ids = _pump_history(lab, days=(400, 200))
+    instance = lab.app.instance_path
+    report = tmp_path / "history.pdf"
+    assert cli_main(["history", "HX-P3", "--instance", instance, "--pdf", str(report)]) == 0
+    out = capsys.readouterr().out
+    assert out.startswith("History of HX-P3 (pump_verification)")
+    assert ids[0] in out and "recall: " in out
+    assert report.read_bytes().startswith(b"%PDF")
+    assert cli_main(["history", "HX-P3", "--instance", instance, "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["in_force"] == ids
+    assert cli_main(["history", "NOPE", "--instance", instance]) == 2
+    assert "no certificate of item 'NOPE'" in capsys.readouterr().err
+    assert cli_main(["due", "--instance", instance]) == 0
+    assert "HX-P3" in capsys.readouterr().out
