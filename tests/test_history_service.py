@@ -312,3 +312,41 @@ def test_command_line_history_and_due(lab, tmp_path, capsys):
     assert "no certificate of item 'NOPE'" in capsys.readouterr().err
     assert cli_main(["due", "--instance", instance]) == 0
     assert "HX-P3" in capsys.readouterr().out
+
+
+@pytest.mark.slow
+def test_bulk_reproduction_of_a_real_run_through_the_queue(tmp_path):
+    import time
+
+    lab = make_lab(tmp_path)
+    lab.services.start_workers(1)
+    try:
+        c = lab.client()
+        upload = lab.upload(c)
+        job = lab.wait(c, upload.get_json()["job_id"])
+        cert = job["certificate_id"]
+        assert (
+            c.post(f"/api/certificates/{cert}/issue", headers=lab.headers("arno")).status_code
+            == 200
+        )
+        reply = c.post(
+            "/api/impact/reproduce",
+            json={"certificate_ids": [cert], "fraction": 0.05},
+            headers=lab.headers("aude"),
+        )
+        assert reply.status_code == 202
+        url = reply.get_json()["report_url"]
+        deadline = time.monotonic() + 300
+        while time.monotonic() < deadline:
+            report = c.get(url, headers=lab.headers("aude")).get_json()
+            if report["finished"]:
+                break
+            time.sleep(0.5)
+        (row,) = report["jobs"]
+        assert row["status"] == "done", row
+        # Same seed, same options, same software: nothing moves, bit for bit.
+        assert row["identical"] is True and row["moved"] == []
+        assert report["certificates_with_moves"] == []
+    finally:
+        lab.services.stop_workers()
+        lab.services.storage.dispose()
