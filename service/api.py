@@ -290,9 +290,13 @@ def render(info: dict[str, Any], fmt: str) -> tuple[bytes | str, str]:
     if fmt == "pdf":
         return _cached_pdf(record, info.get("plots_sha256"), check_block(info)), RENDERINGS[fmt]
     if fmt == "xml":
-        from service.dcc import render_dcc
+        from service.dcc import configured_schema, render_dcc, validate_dcc
 
-        return render_dcc(record), RENDERINGS[fmt]
+        document = render_dcc(record)
+        schema = configured_schema(current_app.config.get("DCC_SCHEMA"))
+        if schema is not None:
+            validate_dcc(document, schema)
+        return document, RENDERINGS[fmt]
     raise ArchiveError(f"unknown format {fmt!r}; choose {', '.join(RENDERINGS)}", 404)
 
 

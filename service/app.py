@@ -49,6 +49,9 @@ DEFAULTS: dict[str, Any] = {
     # Where customers check a certificate (printed on the PDF with a QR code); None: this
     # service's own /check page as the request reached it.
     "PUBLIC_CHECK_URL": None,
+    # The laboratory's copy of the DCC 3.3.0 dcc.xsd; when set (here or by COLDCERT_DCC_SCHEMA),
+    # every DCC rendering is validated against it before it is served.
+    "DCC_SCHEMA": None,
     "SESSION_COOKIE_HTTPONLY": True,
     "SESSION_COOKIE_SAMESITE": "Lax",
 }

@@ -39,6 +39,27 @@ def _app(args: argparse.Namespace, **config):
     return create_app({"INSTANCE_PATH": _instance(args), **config})
 
 
+def _existing_app(args: argparse.Namespace, **config):
+    """The app of an instance that must already exist (read-only commands never create one).
+
+    An instance is a folder holding the lab key and either the embedded database or a
+    ``config.py`` that names a database server.
+    """
+    folder = Path(_instance(args)).resolve()
+    has_database = (folder / "coldcert.sqlite3").is_file() or (folder / "config.py").is_file()
+    if not folder.is_dir() or not has_database:
+        how = (
+            "--instance" if args.instance
+            else "$COLDCERT_INSTANCE" if os.environ.get("COLDCERT_INSTANCE")
+            else "the default ./instance"
+        )
+        raise CommandError(
+            f"no coldcert instance at {folder} (from {how}); nothing was created. Choose the "
+            "archive's folder with --instance FOLDER or the COLDCERT_INSTANCE environment variable"
+        )
+    return _app(args, **config)
+
+
 def add_commands(subparsers: argparse._SubParsersAction) -> None:
     p = subparsers.add_parser(
         "serve", help="run the calibration service (web pages + JSON API) on this machine"
@@ -225,7 +246,7 @@ def _verify(args: argparse.Namespace) -> int:
     from service.archive import ArchiveError, verify_signed_document
 
     if args.all:
-        app = _app(args)
+        app = _existing_app(args)
         ok, problems = app.extensions["coldcert"].archive.verify_all()
         _print_checks(problems, args.json, {"valid": ok})
         print("archive valid" if ok else f"archive NOT valid: {len(problems)} problem(s)")
@@ -241,7 +262,7 @@ def _verify(args: argparse.Namespace) -> int:
         if args.public_key:
             public = _load_public_key(args.public_key)
         elif args.instance or os.environ.get("COLDCERT_INSTANCE"):
-            public = _app(args).extensions["coldcert"].key.public_raw
+            public = _existing_app(args).extensions["coldcert"].key.public_raw
         checks = verify_signed_document(document, public)
         ok = all(c.ok for c in checks)
         _print_checks(checks, args.json, {"file": args.target, "valid": ok})
@@ -253,7 +274,7 @@ def _verify(args: argparse.Namespace) -> int:
             )
         print(f"{args.target}: {'valid' if ok else 'NOT valid'}")
         return 0 if ok else 1
-    app = _app(args)
+    app = _existing_app(args)
     try:
         report = app.extensions["coldcert"].archive.verify(args.target)
     except ArchiveError as exc:
@@ -267,7 +288,7 @@ def _reproduce(args: argparse.Namespace) -> int:
     from service.archive import ArchiveError
     from service.jobs import import_string
 
-    app = _app(args)
+    app = _existing_app(args)
     services = app.extensions["coldcert"]
     certify = import_string(app.config["CERTIFY"])
     load_run = import_string(app.config["LOAD_RUN"])

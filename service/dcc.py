@@ -11,6 +11,11 @@ The schema leaves the issue date and every uncertainty optional. ISO/IEC 17025:2
 7.8.4.1 do not, so :func:`check_complete` refuses a record without them before any XML is
 written. Values are written with Python's shortest round-trip ``repr``, so the XML carries the
 same binary64 numbers as the record.
+
+The schema files themselves are not shipped with coldcert (they are PTB's). A laboratory that
+wants every DCC it serves checked against its own copy names the main ``dcc.xsd`` in the
+environment variable ``COLDCERT_DCC_SCHEMA`` or as ``DCC_SCHEMA`` in the instance's
+``config.py``; :func:`validate_dcc` then refuses any rendering the schema does not accept.
 """
 
 from __future__ import annotations
@@ -19,7 +24,9 @@ import math
 import re
 from collections.abc import Mapping
 from decimal import Decimal
+from functools import lru_cache
 from importlib import metadata as importlib_metadata
+from pathlib import Path
 from typing import Any
 
 from lxml import etree
@@ -28,6 +35,48 @@ DCC_NS = "https://ptb.de/dcc"
 SI_NS = "https://ptb.de/si"
 SCHEMA_VERSION = "3.3.0"
 NSMAP = {"dcc": DCC_NS, "si": SI_NS}
+
+#: Environment variable naming the laboratory's copy of the DCC 3.3.0 ``dcc.xsd``.
+SCHEMA_ENV = "COLDCERT_DCC_SCHEMA"
+
+
+class DccSchemaError(ValueError):
+    """The configured schema cannot be read, or a rendering does not validate against it."""
+
+
+def configured_schema(explicit: str | Path | None = None) -> Path | None:
+    """The schema file to validate against: ``explicit`` if given, else ``$COLDCERT_DCC_SCHEMA``."""
+    import os
+
+    chosen = explicit or os.environ.get(SCHEMA_ENV)
+    return Path(chosen) if chosen else None
+
+
+@lru_cache(maxsize=4)
+def load_schema(path: Path) -> etree.XMLSchema:
+    """Parse the DCC schema at ``path`` (its imports are resolved relative to it)."""
+    if not path.is_file():
+        raise DccSchemaError(
+            f"DCC schema not found at {path}: set {SCHEMA_ENV} (or DCC_SCHEMA in the instance "
+            "config.py) to the dcc.xsd of your copy of the DCC 3.3.0 schema files"
+        )
+    try:
+        return etree.XMLSchema(etree.parse(str(path)))
+    except (etree.XMLSchemaParseError, etree.XMLSyntaxError, OSError) as exc:
+        raise DccSchemaError(f"DCC schema at {path} could not be read: {exc}") from exc
+
+
+def validate_dcc(document: bytes, schema_path: str | Path) -> None:
+    """Raise :class:`DccSchemaError` naming the first violation if ``document`` is not valid."""
+    schema = load_schema(Path(schema_path).resolve())
+    tree = etree.fromstring(document)
+    if not schema.validate(tree):
+        first = schema.error_log.filter_from_errors()[0]
+        raise DccSchemaError(
+            f"DCC rendering does not validate against {schema_path}: line {first.line}: "
+            f"{first.message}"
+        )
+
 
 #: ISO 3166-1 user-assigned code, used when the laboratory gives no country: it states
 #: "unknown" without pretending to a real country.

@@ -125,6 +125,25 @@ def test_upload_to_issued_through_the_test_client(lab, issued):
     } <= set(actions)
 
 
+def test_a_configured_dcc_schema_checks_every_xml_rendering(lab, issued, tmp_path):
+    # A lab's own schema copy (DCC_SCHEMA / COLDCERT_DCC_SCHEMA) is applied before the XML is
+    # served: a schema our rendering cannot satisfy makes the request fail with a named reason.
+    strict = tmp_path / "other.xsd"
+    strict.write_text(
+        '<xs:schema xmlns:xs="http://www.w3.org/2001/XMLSchema">'
+        '<xs:element name="somethingElse" type="xs:string"/></xs:schema>'
+    )
+    client, cert = lab.client(), issued["certificate_id"]
+    lab.app.config["DCC_SCHEMA"] = str(strict)
+    try:
+        refused = client.get(f"/api/certificates/{cert}/xml", headers=lab.headers("olga"))
+    finally:
+        lab.app.config["DCC_SCHEMA"] = None
+    assert refused.status_code == 409
+    assert "does not validate against" in refused.get_json()["error"]
+    assert client.get(f"/api/certificates/{cert}/xml", headers=lab.headers("olga")).status_code == 200
+
+
 def test_four_eyes_through_the_api(lab):
     client = lab.client()
     reply = lab.upload(client, who="pat")  # pat is operator and approver

@@ -460,14 +460,12 @@ def test_job_refuses_curve_that_cannot_follow_the_points(monkeypatch):
         sr.analyse(load_files(named), seed=1)
 
 
-def test_example_certificate_renders_a_valid_dcc():
+def test_example_certificate_renders_a_valid_dcc(dcc_schema_path):
     # The sensor certificate (its table points are results too) must go through the DCC
-    # rendering and validate against the published DCC 3.3.0 schema (PTB), kept in ../shared.
+    # rendering and validate against the published DCC 3.3.0 schema (PTB), whose path comes
+    # from COLDCERT_DCC_SCHEMA (see tests/conftest.py).
     etree = pytest.importorskip("lxml.etree")
-    schema_path = Path(__file__).resolve().parents[1] / ".." / "shared" / "schemas"
-    schema_path = schema_path / "dcc-3.3.0" / "dcc.xsd"
-    if not schema_path.exists():
-        pytest.skip("DCC schema not available beside the project")
+    schema_path = dcc_schema_path
     from service.dcc import render_dcc
 
     record = json.loads((EXAMPLES / "sensor-larkspur-certificate" / "certificate.json").read_text())
