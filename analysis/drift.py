@@ -298,8 +298,8 @@ def fit_linear_drift(history: CalibrationHistory) -> DriftModel:
 def fit_random_walk(history: CalibrationHistory) -> DriftModel:
     """Local-level model y_i = a + w(t_i) + ε_i, Var[dw] = q dt (Durbin & Koopman 2012, ch. 2).
 
-    q is the maximum-likelihood value with a profiled out: a log-spaced scan over twelve decades
-    around var(y)/span, refined by a bounded scalar search, and compared with q = 0 (the stable
+    q is the maximum-likelihood value with a profiled out: a scan in half-decade steps over
+    twelve decades around var(y)/span, refined by a bounded scalar search, and compared with q = 0 (the stable
     item), which wins ties. Needs calibrations on at least two different dates.
     """
     h = history
@@ -311,8 +311,9 @@ def fit_random_walk(history: CalibrationHistory) -> DriftModel:
     def neg_log_l(log_q: float) -> float:
         return -_fit_fixed(h, "random_walk", math.exp(log_q)).log_likelihood
 
+    # Half-decade steps, then a bounded search between the neighbours of the best step.
     grid = np.linspace(
-        math.log(q_typical) - 8 * math.log(10), math.log(q_typical) + 4 * math.log(10), 61
+        math.log(q_typical) - 8 * math.log(10), math.log(q_typical) + 4 * math.log(10), 25
     )
     values = np.array([neg_log_l(g) for g in grid])
     i = int(np.argmin(values))
@@ -521,7 +522,10 @@ class Trend:
 
 
 def judge_trend(
-    history: CalibrationHistory, coverage_factor: float = 2.0, significance: float = 0.05
+    history: CalibrationHistory,
+    coverage_factor: float = 2.0,
+    significance: float = 0.05,
+    analysis: DriftAnalysis | None = None,
 ) -> Trend:
     """Drift analysis plus a verdict: has the quantity moved beyond its uncertainties?
 
@@ -529,10 +533,11 @@ def judge_trend(
     or more, when the values are inconsistent with one constant value (χ² of the weighted mean
     above its (1 − significance) quantile, common practice, no source). A charging energy is
     fixed by the junction capacitances, so a CBT whose E_C moves has itself changed; its
-    asymptotic conductance G_T follows the junction resistances, which age.
+    asymptotic conductance G_T follows the junction resistances, which age. ``analysis``, if
+    given, is :func:`analyse_drift` of this same history (saves fitting it again).
     """
     h = history
-    a = analyse_drift(h)
+    a = analysis if analysis is not None and analysis.history is h else analyse_drift(h)
     en = successive_en(h, coverage_factor) if h.n > 1 else np.zeros(0)
     reasons = [
         f"{h.labels[i + 1]} differs from {h.labels[i]} by E_n = {e:.2f}"

@@ -309,7 +309,7 @@ def _analyse_series(series: Series, policy: Mapping[str, Any], today: date) -> d
             }
             for c in checks
         ]
-    trend = drift.judge_trend(h)
+    trend = drift.judge_trend(h, analysis=analysis)
     out["changed"] = trend.changed
     out["changed_reasons"] = list(trend.reasons)
     if h.n >= 2 and h.span_days > 0:
