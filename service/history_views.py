@@ -7,7 +7,10 @@ laboratory's recall policy is the ``RECALL_POLICY`` setting (see docs/history.md
 
 from __future__ import annotations
 
+import json
+import os
 from datetime import date
+from pathlib import Path
 from typing import Any
 
 from flask import (
@@ -23,7 +26,7 @@ from flask import (
 )
 
 from service.api import AUDIT, READERS, error, queue_reproduction, services
-from service.archive import ArchiveError, NotFound
+from service.archive import ArchiveError, NotFound, canonical_json
 from service.archive_history import (
     impact,
     item_entries,
@@ -35,6 +38,7 @@ from service.history_pdf import render_history_pdf
 from service.history_plots import history_plots
 from service.item_history import HistoryInputError, build_history, public_history
 from service.jobs import job_status
+from service.storage import sha256_hex
 
 bp = Blueprint("history", __name__)
 
@@ -49,6 +53,31 @@ def _history(item: str) -> dict[str, Any]:
     return build_history(
         item, item_entries(services().archive, item), policy=_policy(), today=date.today()
     )
+
+
+def _cached(history: dict[str, Any], kind: str, make):
+    """Plots or PDF of a history, kept in the instance's cache folder: both are pure functions
+    of the history's data (which includes today's date), so a key of its digest never serves a
+    stale figure. Safe to delete, like the certificate PDF cache."""
+    try:
+        key = sha256_hex(canonical_json({"history": public_history(history), "kind": kind}))
+    except ValueError:  # a value JSON cannot hold: compute without the cache
+        return make()
+    path = Path(current_app.instance_path) / "cache" / "history" / f"{key}.{kind}"
+    if path.is_file():
+        data = path.read_bytes()
+        return json.loads(data) if kind == "plots" else data
+    value = make()
+    data = canonical_json(value) if kind == "plots" else value
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_suffix(f".{os.getpid()}.tmp")
+    tmp.write_bytes(data)
+    os.replace(tmp, path)
+    return value
+
+
+def _plots(history: dict[str, Any]) -> dict[str, str]:
+    return _cached(history, "plots", lambda: history_plots(history))
 
 
 def _fraction(text: str | None) -> float:
@@ -82,7 +111,7 @@ def api_history_pdf(item: str):
         history = _history(item)
     except NotFound as exc:
         return error(404, str(exc))
-    pdf = render_history_pdf(history, history_plots(history))
+    pdf = _cached(history, "pdf", lambda: render_history_pdf(history, _plots(history)))
     response = Response(pdf, mimetype="application/pdf")
     safe = "".join(ch if ch.isalnum() or ch in "-_." else "_" for ch in item)
     response.headers["Content-Disposition"] = f'attachment; filename="history-{safe}.pdf"'
@@ -223,8 +252,7 @@ def item_page(item: str):
         history = _history(item)
     except NotFound as exc:
         return render_template("error.html", code=404, message=str(exc)), 404
-    plots = history_plots(history)
-    return render_template("item_history.html", h=history, plots=plots)
+    return render_template("item_history.html", h=history, plots=_plots(history))
 
 
 @bp.get("/due")
