@@ -32,11 +32,11 @@ from types import SimpleNamespace
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from service.app import create_app  # noqa: E402
-from service.archive_history import item_history, public_check, recall_overview  # noqa: E402
-from service.auth import create_token, create_user  # noqa: E402
-from service.history_pdf import render_history_pdf  # noqa: E402
-from service.history_plots import history_plots  # noqa: E402
+from service.archive.items import item_history, public_check, recall_overview  # noqa: E402
+from service.render.history_pdf import render_history_pdf  # noqa: E402
+from service.render.history_plots import history_plots  # noqa: E402
+from service.web.app import create_app  # noqa: E402
+from service.web.auth import create_token, create_user  # noqa: E402
 from tests import history_records as hr  # noqa: E402
 
 POLICY = {

@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 
 from analysis import sensors
-from service.sensor_run import curve_record
+from service.calibrations.sensor import curve_record
 
 CUSTOMER = {"name": "Heron Fridge Group (fictional)", "address": "Mudford"}
 LAB = {"name": "Larkspur Cryogenic Metrology Laboratory (fictional)", "address": "Larkspur"}
@@ -28,7 +28,7 @@ def _base(job: str, item: str, measured: str, software: str = "0.1.0") -> dict:
         "dates": {"measured": measured, "received": measured, "issued": None},
         "people": {"operator": "T. Tester", "approver": None},
         "reproducibility": {"seed": 1, "software": {"coldcert": software}},
-        "method": {"name": job},
+        "method": {"name": job, "description": f"invented {job} record for history tests"},
         "statements": [],
         "deviations": [],
         "sections": {},
@@ -55,6 +55,8 @@ def sensor_record(item: str, measured: str, *, creep: float, seed: int) -> dict:
             "value": float(t[0]),
             "standard_uncertainty": float(u[0]),
             "expanded_uncertainty": 2 * float(u[0]),
+            "coverage_factor": 2.0,
+            "coverage_probability": 0.95,
             "resistance_ohm": r,
         }
     ]
@@ -72,6 +74,8 @@ def cbt_record(item: str, measured: str, *, charging_energy: float, conductance:
             "value": t,
             "standard_uncertainty": 1e-4 * t,
             "expanded_uncertainty": 2e-4 * t,
+            "coverage_factor": 2.0,
+            "coverage_probability": 0.95,
             "fit": {
                 "charging_energy_K": charging_energy,
                 "charging_energy_std_K": 2e-6,
@@ -94,6 +98,8 @@ def pump_record(item: str, measured: str, *, deviation_ppm: float, gate_V: float
             "value": deviation_ppm,
             "standard_uncertainty": 0.4,
             "expanded_uncertainty": 0.8,
+            "coverage_factor": 2.0,
+            "coverage_probability": 0.95,
             "frequency_Hz": 1e9,
             "sweep": "record_1GHz.csv",
         }
@@ -117,8 +123,8 @@ def archive_certificate(lab, record: dict, *, issue: bool = True, submitter: str
     archive's own record_run / create_draft / issue keeps the chain and states real while
     sparing the tests an MCMC run per calibration.
     """
-    from service.auth import list_users
-    from service.jobs import new_id
+    from service.queue.jobs import new_id
+    from service.web.auth import list_users
 
     storage, archive = lab.services.storage, lab.services.archive
     people = {u["username"]: u for u in list_users(storage)}

@@ -6,7 +6,7 @@ from pathlib import Path
 
 import pytest
 
-from service.cli import main
+from service.cli.main import main
 
 EXAMPLE = Path(__file__).resolve().parent.parent / "example_runs" / "cbt-hollowmere"
 

@@ -13,7 +13,7 @@ import pytest
 from sqlalchemy import func, select
 
 from service import storage as st
-from service.archive_history import result_movements
+from service.archive.items import result_movements
 from tests import history_records as hr
 from tests.service_support import make_lab
 
@@ -296,7 +296,7 @@ def test_public_check_is_throttled_per_address(lab):
 
 
 def test_command_line_history_and_due(lab, tmp_path, capsys):
-    from service.cli import main as cli_main
+    from service.cli.main import main as cli_main
 
     ids = _pump_history(lab, days=(400, 200))
     instance = lab.app.instance_path

@@ -1,4 +1,4 @@
-"""An item's history built from its certificate records (service/item_history.py).
+"""An item's history built from its certificate records (service/archive/history.py).
 
 The science (drift, intervals, ΔT) is checked against outside references in test_drift.py,
 test_intervals.py and test_curve_comparison.py; here the invented records check that the history
@@ -10,7 +10,7 @@ from datetime import date
 
 import pytest
 
-from service import item_history as ih
+from service.archive import history as ih
 from tests import history_records as hr
 
 
