@@ -171,22 +171,16 @@ def _cbt_quantities(record: Mapping[str, Any]) -> dict[str, tuple[float, float]]
         _number(section.get("charging_energy_std_K")),
     )
     fits = [r.get("fit") or {} for r in record.get("results") or [] if isinstance(r, Mapping)]
+
+    def over_sweeps(value_key: str, std_key: str) -> tuple[float, float] | None:
+        pairs = [(_number(f.get(value_key)), _number(f.get(std_key))) for f in fits]
+        return _weighted_mean([(v, u) for v, u in pairs if v is not None and u])
+
     if ec is not None and u_ec:
         out["charging_energy"] = (ec, u_ec)
-    else:
-        pairs = [
-            (_number(f.get("charging_energy_K")), _number(f.get("charging_energy_std_K")))
-            for f in fits
-        ]
-        mean = _weighted_mean([(v, u) for v, u in pairs if v is not None and u])
-        if mean:
-            out["charging_energy"] = mean
-    pairs = [
-        (_number(f.get("asymptotic_conductance_S")), _number(f.get("asymptotic_conductance_std_S")))
-        for f in fits
-    ]
-    mean = _weighted_mean([(v, u) for v, u in pairs if v is not None and u])
-    if mean:
+    elif mean := over_sweeps("charging_energy_K", "charging_energy_std_K"):
+        out["charging_energy"] = mean
+    if mean := over_sweeps("asymptotic_conductance_S", "asymptotic_conductance_std_S"):
         out["asymptotic_conductance"] = mean
     return out
 
@@ -462,6 +456,13 @@ def _timeline_entry(e: CertificateEntry) -> dict[str, Any]:
         "replaces": e.replaces,
         "superseded_by": e.superseded_by,
         "withdrawn_reason": e.withdrawn_reason,
+        "remark": f"superseded by {e.superseded_by}"
+        if e.superseded_by
+        else f"withdrawn: {e.withdrawn_reason}"
+        if e.withdrawn_reason
+        else f"replaces {e.replaces}"
+        if e.replaces
+        else "",
         "software": software.get("coldcert"),
         "results_count": len(record.get("results") or []),
         "results": results,

@@ -192,20 +192,9 @@ def result_movements(
         r = results[i]
         big_u = r.get("expanded_uncertainty")
         old, new = m.get("archived"), m.get("reproduced")
-        if not isinstance(old, int | float) or not isinstance(new, int | float):
-            out.append(
-                {
-                    "index": i,
-                    "name": r.get("name"),
-                    "sweep": r.get("sweep"),
-                    "archived": old,
-                    "reproduced": new,
-                    "moved_by_U": None,
-                    "exceeds": True,
-                }
-            )
-            continue
-        moved = abs(new - old) / big_u if big_u else None
+        numbers = isinstance(old, int | float) and isinstance(new, int | float)
+        # A result that vanished or became non-numeric has certainly moved.
+        moved = abs(new - old) / big_u if numbers and big_u else None
         out.append(
             {
                 "index": i,

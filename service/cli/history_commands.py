@@ -59,16 +59,9 @@ def _history(args: argparse.Namespace) -> int:
         return 0
     print(f"History of {history['item']} ({', '.join(history['kinds'])})")
     for c in history["certificates"]:
-        remark = (
-            f"superseded by {c['superseded_by']}"
-            if c.get("superseded_by")
-            else f"withdrawn: {c['withdrawn_reason']}"
-            if c.get("withdrawn_reason")
-            else ""
-        )
         print(
             f"  {c['calibration_date'] or '—':<10}  {c['certificate_id']:<20} "
-            f"{c['state']:<10} {remark}"
+            f"{c['state']:<10} {c['remark']}"
         )
     for q in history["quantities"]:
         print(f"{q['name']} [{q['unit']}]: model {q['chosen_model']} ({q['criterion']})")

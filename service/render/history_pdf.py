@@ -15,39 +15,25 @@ from reportlab.lib.pagesizes import A4
 from reportlab.lib.units import mm
 from reportlab.platypus import SimpleDocTemplate, Spacer
 
-from service.render.pdf import BODY, H1, H2, H3, SMALL, WARN, _g, _grid, _p, _svg_flowable
+from service.render.pdf import (
+    BODY,
+    H1,
+    H2,
+    H3,
+    SMALL,
+    WARN,
+    _g,
+    _grid,
+    _p,
+    _svg_flowable,
+    numbered_canvas,
+)
 
 NOT_ACCREDITATION = (
     "This report restates archived certificates and a statistical analysis of them; it is not a "
     "certificate and not an accreditation. Recall intervals are advice to the laboratory's "
     "quality system (ILAC-G24 leaves the choice of intervals to the laboratory)."
 )
-
-
-def _numbered(label: str):
-    from reportlab.pdfgen import canvas as rl_canvas
-
-    class Numbered(rl_canvas.Canvas):
-        def __init__(self, *args, **kwargs) -> None:
-            super().__init__(*args, **kwargs)
-            self._pages: list[dict] = []
-
-        def showPage(self) -> None:  # noqa: N802 - reportlab's API name
-            self._pages.append(dict(self.__dict__))
-            self._startPage()
-
-        def save(self) -> None:
-            total = len(self._pages)
-            for number, page in enumerate(self._pages, start=1):
-                self.__dict__.update(page)
-                width, _ = self._pagesize
-                self.setFont("Helvetica", 8)
-                self.drawString(18 * mm, 10 * mm, label)
-                self.drawRightString(width - 18 * mm, 10 * mm, f"page {number} of {total}")
-                super().showPage()
-            super().save()
-
-    return Numbered
 
 
 def render_history_pdf(history: Mapping[str, Any], plots: Mapping[str, str]) -> bytes:
@@ -102,13 +88,6 @@ def render_history_pdf(history: Mapping[str, Any], plots: Mapping[str, str]) -> 
         ["certificate", "rev.", "state", "measured", "issued", "customer", "remark"]
     ]
     for c in history.get("certificates") or []:
-        remark = ""
-        if c.get("superseded_by"):
-            remark = f"superseded by {c['superseded_by']}"
-        elif c.get("withdrawn_reason"):
-            remark = f"withdrawn: {c['withdrawn_reason']}"
-        elif c.get("replaces"):
-            remark = f"replaces {c['replaces']}"
         rows.append(
             [
                 c["certificate_id"],
@@ -117,7 +96,7 @@ def render_history_pdf(history: Mapping[str, Any], plots: Mapping[str, str]) -> 
                 c.get("calibration_date") or "—",
                 (c.get("issued_at") or "—")[:10],
                 c.get("customer") or "—",
-                remark,
+                c.get("remark", ""),
             ]
         )
     story.append(_grid(rows, [30 * mm, 10 * mm, 18 * mm, 20 * mm, 20 * mm, 38 * mm, 34 * mm]))
@@ -206,5 +185,5 @@ def render_history_pdf(history: Mapping[str, Any], plots: Mapping[str, str]) -> 
         if drawing is not None:
             story += [Spacer(1, 2 * mm), drawing]
     story += [Spacer(1, 4 * mm), _p(f"History of {item} — end of report", BODY)]
-    doc.build(story, canvasmaker=_numbered(f"History of {item} · {today}"))
+    doc.build(story, canvasmaker=numbered_canvas(f"History of {item} · {today}"))
     return buffer.getvalue()

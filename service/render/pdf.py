@@ -100,8 +100,9 @@ def _svg_flowable(svg: str, max_width: float):
     return drawing
 
 
-def _numbered_canvas(certificate_id: str, state: str):
-    """A canvas class that stamps "<id> · page i of n" on every page once n is known."""
+def numbered_canvas(label: str, stamp: str = ""):
+    """A canvas class that writes ``label`` and "page i of n" at the foot of every page once n
+    is known, and ``stamp`` (in red) between them if given."""
 
     class NumberedCanvas(rl_canvas.Canvas):
         def __init__(self, *args, **kwargs) -> None:
@@ -124,15 +125,21 @@ def _numbered_canvas(certificate_id: str, state: str):
             width, _height = self._pagesize
             self.setFont("Helvetica", 8)
             self.setFillColor(colors.HexColor("#333333"))
-            self.drawString(18 * mm, 10 * mm, f"Certificate {certificate_id}")
+            self.drawString(18 * mm, 10 * mm, label)
             self.drawRightString(width - 18 * mm, 10 * mm, f"page {number} of {total}")
-            if state != "issued":
+            if stamp:
                 self.setFillColor(colors.HexColor("#a3261b"))
-                self.drawCentredString(
-                    width / 2, 10 * mm, state.upper() + (" — NOT VALID" if state == "draft" else "")
-                )
+                self.drawCentredString(width / 2, 10 * mm, stamp)
 
     return NumberedCanvas
+
+
+def _numbered_canvas(certificate_id: str, state: str):
+    """Every page: "Certificate <id>", "page i of n", and the state unless issued."""
+    stamp = (
+        "" if state == "issued" else state.upper() + (" — NOT VALID" if state == "draft" else "")
+    )
+    return numbered_canvas(f"Certificate {certificate_id}", stamp)
 
 
 def _check_flowable(check: Mapping[str, str], width: float) -> Table:
