@@ -35,18 +35,24 @@ def _drifting(seed=5, slope=2e-4, noise_scale=1.0):
 # Linear drift against scipy (independent computations)
 
 
+def _scipy_line(h, absolute_sigma):
+    """Independent: scipy.optimize.curve_fit of a + b t weighted by sigma; absolute_sigma=False
+    scales the covariance by chi2/nu."""
+    return optimize.curve_fit(
+        lambda t, a, b: a + b * t,
+        h.time_days,
+        h.values,
+        sigma=h.standard_uncertainties,
+        absolute_sigma=absolute_sigma,
+    )
+
+
 def test_linear_drift_matches_scipy_curve_fit_with_absolute_sigma():
     h = _drifting(noise_scale=0.5)  # scatter below the stated u: no Birge scaling
     m = d.fit_linear_drift(h)
     assert not m.scaled and m.birge_ratio < 1
     # Independent: scipy.optimize.curve_fit, weighted by sigma with absolute_sigma=True.
-    popt, pcov = optimize.curve_fit(
-        lambda t, a, b: a + b * t,
-        h.time_days,
-        h.values,
-        sigma=h.standard_uncertainties,
-        absolute_sigma=True,
-    )
+    popt, pcov = _scipy_line(h, absolute_sigma=True)
     assert np.allclose(m.coefficients, popt, rtol=1e-9)
     assert np.allclose(m.coefficient_covariance, pcov, rtol=1e-7)
 
@@ -56,13 +62,7 @@ def test_linear_drift_with_excess_scatter_matches_scaled_curve_fit():
     m = d.fit_linear_drift(h)
     assert m.scaled and m.birge_ratio > 1
     # Independent: curve_fit with absolute_sigma=False scales Cov by chi2/nu.
-    popt, pcov = optimize.curve_fit(
-        lambda t, a, b: a + b * t,
-        h.time_days,
-        h.values,
-        sigma=h.standard_uncertainties,
-        absolute_sigma=False,
-    )
+    popt, pcov = _scipy_line(h, absolute_sigma=False)
     assert np.allclose(m.coefficients, popt, rtol=1e-9)
     assert np.allclose(m.coefficient_covariance, pcov, rtol=1e-7)
     # Student's t with nu = n - 2 for the predictions (GUM G.3).
@@ -87,13 +87,7 @@ def test_prediction_is_the_extrapolated_line_and_its_variance():
     m = d.fit_linear_drift(h)
     t = 1000.0
     p = m.predict(t)
-    popt, pcov = optimize.curve_fit(
-        lambda t, a, b: a + b * t,
-        h.time_days,
-        h.values,
-        sigma=h.standard_uncertainties,
-        absolute_sigma=True,
-    )
+    popt, pcov = _scipy_line(h, absolute_sigma=True)
     g = np.array([1.0, t])
     assert p.value == pytest.approx(popt[0] + popt[1] * t, rel=1e-8)  # curve_fit's own tolerance
     assert p.standard_uncertainty == pytest.approx(math.sqrt(g @ pcov @ g), rel=1e-7)

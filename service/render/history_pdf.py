@@ -11,9 +11,8 @@ import io
 from collections.abc import Mapping
 from typing import Any
 
-from reportlab.lib.pagesizes import A4
 from reportlab.lib.units import mm
-from reportlab.platypus import SimpleDocTemplate, Spacer
+from reportlab.platypus import Spacer
 
 from service.render.pdf import (
     BODY,
@@ -21,11 +20,13 @@ from service.render.pdf import (
     H2,
     H3,
     SMALL,
+    TEXT_WIDTH,
     WARN,
     _g,
     _grid,
     _p,
     _svg_flowable,
+    a4_document,
     numbered_canvas,
 )
 
@@ -41,19 +42,12 @@ def render_history_pdf(history: Mapping[str, Any], plots: Mapping[str, str]) -> 
     item = str(history.get("item", ""))
     today = str(history.get("today", ""))
     buffer = io.BytesIO()
-    doc = SimpleDocTemplate(
+    doc = a4_document(
         buffer,
-        pagesize=A4,
-        leftMargin=18 * mm,
-        rightMargin=18 * mm,
-        topMargin=16 * mm,
-        bottomMargin=18 * mm,
         title=f"Calibration history of {item}",
         subject=f"Calibration history of {item}",
-        creator="coldcert",
-        invariant=1,
     )
-    width = A4[0] - 36 * mm
+    width = TEXT_WIDTH
     recall = history.get("recall") or {}
     story: list[Any] = [
         _p(f"Calibration history of {item}", H1),

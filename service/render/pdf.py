@@ -134,6 +134,28 @@ def numbered_canvas(label: str, stamp: str = ""):
     return NumberedCanvas
 
 
+#: Width of the text column of an A4 page with our margins.
+TEXT_WIDTH = A4[0] - 36 * mm
+
+
+def a4_document(buffer: io.BytesIO, *, title: str, subject: str, author: str = ""):
+    """An A4 document with our margins, in reportlab's invariant mode (no creation time or
+    random id: the same content gives the same bytes)."""
+    return SimpleDocTemplate(
+        buffer,
+        pagesize=A4,
+        leftMargin=18 * mm,
+        rightMargin=18 * mm,
+        topMargin=16 * mm,
+        bottomMargin=18 * mm,
+        title=title,
+        author=author,
+        subject=subject,
+        creator="coldcert",
+        invariant=1,
+    )
+
+
 def _numbered_canvas(certificate_id: str, state: str):
     """Every page: "Certificate <id>", "page i of n", and the state unless issued."""
     stamp = (
@@ -189,20 +211,13 @@ def render_pdf(
     cid = str(record.get("certificate_id", "unnumbered"))
     state = str(record.get("state", "draft"))
     buffer = io.BytesIO()
-    doc = SimpleDocTemplate(
+    doc = a4_document(
         buffer,
-        pagesize=A4,
-        leftMargin=18 * mm,
-        rightMargin=18 * mm,
-        topMargin=16 * mm,
-        bottomMargin=18 * mm,
         title=f"{record.get('title', 'Calibration certificate')} {cid}",
-        author=str((record.get("laboratory") or {}).get("name", "")),
         subject=f"Certificate {cid}",
-        creator="coldcert",
-        invariant=1,  # no creation time or random id: the same record gives the same bytes
+        author=str((record.get("laboratory") or {}).get("name", "")),
     )
-    width = A4[0] - 36 * mm
+    width = TEXT_WIDTH
     story: list[Any] = [
         _p(record.get("title", "Calibration certificate"), H1),
         _p(f"Certificate {cid} · revision {record.get('revision', 1)} · state: {state}", BODY),
