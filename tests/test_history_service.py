@@ -350,3 +350,18 @@ def test_bulk_reproduction_of_a_real_run_through_the_queue(tmp_path):
     finally:
         lab.services.stop_workers()
         lab.services.storage.dispose()
+
+
+def test_impact_page_reproduces_the_selection_and_links_items(lab):
+    ids = _pump_history(lab, days=(300, 200))
+    c = lab.client()
+    page = c.get("/impact?software=0.1.0", headers=lab.headers("aude")).get_data(as_text=True)
+    assert all(cid in page for cid in ids) and "/items/HX-P3" in page
+    reply = c.post(
+        "/impact", data={"certificate_id": ids[:1], "fraction": "0.2"}, headers=lab.headers("aude")
+    )
+    assert reply.status_code == 303 and "/impact/reproduce?jobs=job-" in reply.headers["Location"]
+    report = c.get(reply.headers["Location"], headers=lab.headers("aude"))
+    assert ids[0] in report.get_data(as_text=True)
+    certificate = c.get(f"/certificates/{ids[0]}", headers=lab.headers("olga"))
+    assert 'id="item-history"' in certificate.get_data(as_text=True)
