@@ -365,3 +365,14 @@ def test_impact_page_reproduces_the_selection_and_links_items(lab):
     assert ids[0] in report.get_data(as_text=True)
     certificate = c.get(f"/certificates/{ids[0]}", headers=lab.headers("olga"))
     assert 'id="item-history"' in certificate.get_data(as_text=True)
+
+
+def test_a_wrong_recall_policy_gets_a_message_naming_the_setting(tmp_path):
+    lab = make_lab(tmp_path, RECALL_POLICY={"max_permissible_change": {"temprature": 0.01}})
+    try:
+        _pump_history(lab, days=(100,))
+        reply = lab.client().get("/api/items/due", headers=lab.headers("olga"))
+        assert reply.status_code == 500
+        assert "max_permissible_change names 'temprature'" in reply.get_json()["error"]
+    finally:
+        lab.services.storage.dispose()

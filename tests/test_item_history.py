@@ -165,3 +165,19 @@ def test_a_record_without_its_curve_is_named_and_left_out(sensor_entries):
     h = ih.build_history("HX-RX-07", entries, policy=POLICY, today=date(2025, 9, 1))
     assert any("CC-BROKEN" in n for n in h["notes"])
     assert len(h["curve_differences"]) == 1
+
+
+@pytest.mark.parametrize(
+    ("policy", "message"),
+    [
+        ({"max_permissible_change": {"temprature": 0.01}}, "names 'temprature'; tracked"),
+        ({"max_permissible_change": {"deviation": {"max_change": 0}}}, "must be a positive"),
+        ({"maximum_interval_days": 10}, "minimum_interval_days <= default_interval_days"),
+        ({"reliability_target": 95}, "reliability_target must lie between 0 and 1"),
+        ({"shared_components": {"CBT gain": 2}}, "correlations in \\[-1, 1\\]"),
+        ({"max_interval": 365}, "unknown setting"),
+    ],
+)
+def test_a_wrong_recall_policy_is_named(policy, message):
+    with pytest.raises(ih.HistoryInputError, match=message):
+        ih.checked_policy(policy)

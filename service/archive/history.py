@@ -214,9 +214,56 @@ def _pump_quantities(record: Mapping[str, Any]) -> dict[str, tuple[float, float,
 # The history
 
 
-def _policy(policy: Mapping[str, Any] | None) -> dict[str, Any]:
+def checked_policy(policy: Mapping[str, Any] | None) -> dict[str, Any]:
+    """The laboratory's recall policy merged over the defaults, or HistoryInputError naming the
+    setting that is wrong (RECALL_POLICY in the instance's config.py)."""
+    if policy is not None and not isinstance(policy, Mapping):
+        raise HistoryInputError("RECALL_POLICY must be a mapping (see docs/history.md)")
     merged = dict(DEFAULT_POLICY)
     merged.update(policy or {})
+    unknown = sorted(set(merged) - set(DEFAULT_POLICY))
+    if unknown:
+        raise HistoryInputError(
+            f"RECALL_POLICY: unknown setting(s) {', '.join(unknown)}; known: "
+            f"{', '.join(sorted(DEFAULT_POLICY))}"
+        )
+    for key in ("default_interval_days", "maximum_interval_days", "minimum_interval_days"):
+        value = _number(merged[key])
+        if value is None or value < 0 or (value == 0 and key != "minimum_interval_days"):
+            raise HistoryInputError(f"RECALL_POLICY: {key} must be a positive number of days")
+    if not (
+        merged["minimum_interval_days"]
+        <= merged["default_interval_days"]
+        <= merged["maximum_interval_days"]
+    ):
+        raise HistoryInputError(
+            "RECALL_POLICY: need minimum_interval_days <= default_interval_days <= "
+            "maximum_interval_days"
+        )
+    target = _number(merged["reliability_target"])
+    if target is None or not 0 < target < 1:
+        raise HistoryInputError("RECALL_POLICY: reliability_target must lie between 0 and 1")
+    known = sorted({k for keys in QUANTITY_KEYS.values() for k in keys})
+    changes = merged["max_permissible_change"]
+    if not isinstance(changes, Mapping):
+        raise HistoryInputError("RECALL_POLICY: max_permissible_change must map quantities")
+    for key in changes:
+        if key not in known:
+            raise HistoryInputError(
+                f"RECALL_POLICY: max_permissible_change names {key!r}; tracked quantities are "
+                f"{', '.join(known)}"
+            )
+        if _max_change(merged, key, 1.0) is None:  # raises for other non-positive values
+            raise HistoryInputError(
+                f"RECALL_POLICY: max_permissible_change[{key!r}] must be a positive number"
+            )
+    shared = merged["shared_components"]
+    if not isinstance(shared, Mapping) or not all(
+        (rho := _number(v)) is not None and -1 <= rho <= 1 for v in shared.values()
+    ):
+        raise HistoryInputError(
+            "RECALL_POLICY: shared_components must map component names to correlations in [-1, 1]"
+        )
     return merged
 
 
@@ -477,7 +524,7 @@ def build_history(
     today: date | None = None,
 ) -> dict[str, Any]:
     """The item's history as plain data (JSON-ready once ``_analysis`` keys are dropped)."""
-    policy = _policy(policy)
+    policy = checked_policy(policy)
     today = today or date.today()
     entries = list(entries)
     undated = [e.certificate_id for e in entries if e.calibration_date is None]

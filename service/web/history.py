@@ -26,7 +26,12 @@ from flask import (
 )
 
 from service.archive import ArchiveError, NotFound, canonical_json
-from service.archive.history import HistoryInputError, build_history, public_history
+from service.archive.history import (
+    HistoryInputError,
+    build_history,
+    checked_policy,
+    public_history,
+)
 from service.archive.items import (
     impact,
     item_entries,
@@ -46,7 +51,15 @@ RECALL_STATUSES = ("overdue", "due", "in date")
 
 
 def _policy() -> dict[str, Any]:
-    return dict(current_app.config.get("RECALL_POLICY") or {})
+    return checked_policy(current_app.config.get("RECALL_POLICY"))
+
+
+@bp.errorhandler(HistoryInputError)
+def _policy_error(exc: HistoryInputError):
+    # A setting of the laboratory's (or an unreadable record): say which, never a bare 500.
+    if request.path.startswith("/api/"):
+        return error(500, str(exc))
+    return render_template("error.html", code=500, message=str(exc)), 500
 
 
 def _history(item: str) -> dict[str, Any]:
