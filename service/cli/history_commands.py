@@ -95,10 +95,14 @@ def _history(args: argparse.Namespace) -> int:
 
 
 def _due(args: argparse.Namespace) -> int:
+    from service.archive.history import HistoryInputError
     from service.archive.items import recall_overview
 
     app, services = _services(args)
-    rows = recall_overview(services.archive, app.config.get("RECALL_POLICY"), date.today())
+    try:
+        rows = recall_overview(services.archive, app.config.get("RECALL_POLICY"), date.today())
+    except HistoryInputError as exc:
+        raise CommandError(str(exc)) from None
     if args.status:
         rows = [r for r in rows if r["status"] == args.status]
     if args.json:
