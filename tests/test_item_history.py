@@ -181,3 +181,30 @@ def test_a_record_without_its_curve_is_named_and_left_out(sensor_entries):
 def test_a_wrong_recall_policy_is_named(policy, message):
     with pytest.raises(ih.HistoryInputError, match=message):
         ih.checked_policy(policy)
+
+
+def test_the_bundled_sensor_certificate_reads_and_compares_with_itself():
+    # The record layout the sensor job really writes (example_runs, invented lab scenario).
+    from pathlib import Path
+
+    path = Path(__file__).resolve().parents[1] / "example_runs" / "sensor-larkspur-certificate"
+    record = json.loads((path / "certificate.json").read_text())
+    later = json.loads(json.dumps(record))
+    later["dates"]["measured"] = "2027-05-20"
+    entries = [_entry("A", record), _entry("B", later)]
+    shared = "CBT: bias-voltage scale factor"
+    h = ih.build_history(
+        "SMU-MXC-RX-14",
+        entries,
+        today=date(2027, 6, 1),
+        policy={"shared_components": {shared: 1.0}},
+    )
+    (d,) = h["curve_differences"]
+    assert d["shared_components"] == [{"name": shared, "correlation": 1.0}]
+    assert all(row["difference_K"] == 0.0 for row in d["rows"])
+    # The same calibration twice: the shared scale factor cancels in the difference.
+    assert all(
+        row["standard_uncertainty_K"] < row["uncorrelated_standard_uncertainty_K"]
+        for row in d["rows"]
+    )
+    assert [len(q["points"]) for q in h["quantities"]] == [2, 2, 2]
