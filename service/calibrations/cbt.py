@@ -34,6 +34,7 @@ from analysis.cbt.models import (
 )
 from analysis.cbt.uncertainty import TypeBInputs, temperature_budget
 from service.calibrations.outcome import CalibrationOutcome, CertificationRefused
+from service.calibrations.parallel import run_pieces
 from service.intake import IntakeError, Run, check_cbt_sweep, is_cbt_sweep, manifest_number
 from service.render.plots import sweep_fit_svg
 
@@ -293,6 +294,11 @@ def global_section(g: GlobalFit, works: list[SweepWork]) -> dict:
     }
 
 
+def _fit_piece(piece, report: Progress) -> SweepWork:
+    f, seed, settings, heating, background = piece
+    return fit_file(f, seed, settings, None, report, heating, background)
+
+
 def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = False) -> CalibrationOutcome:
     """Analyse every sweep of a thermometry run independently (each with its own derived seed)."""
     manifest = run.manifest
@@ -306,13 +312,17 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
     settings = fit_settings(manifest, fast)
     sweeps = [f for f in run.files if is_cbt_sweep(f)]
     outcome = CalibrationOutcome(results=[])
-    works = []
-    for k, f in enumerate(sweeps):
-        def sub(frac: float, step: str, k=k, name=f.name) -> None:
-            if progress:
-                progress(0.95 * (k + frac) / len(sweeps), f"{name}: {step}")
+    # Sweeps are independent (each with its own seed, seed + k): fitted side by side on worker
+    # processes, with identical results whatever their number (service/calibrations/parallel.py).
+    done = [0.0] * len(sweeps)
 
-        works.append(fit_file(f, seed + k, settings, None, sub, heating, background))
+    def sub(k: int, frac: float, step: str) -> None:
+        done[k] = frac
+        if progress:
+            progress(0.95 * sum(done) / len(sweeps), f"{sweeps[k].name}: {step}")
+
+    pieces = [(f, seed + k, settings, heating, background) for k, f in enumerate(sweeps)]
+    works = run_pieces(_fit_piece, pieces, sub)
     notes: list[str | None] = [None] * len(works)
     if one_device(works):
         if progress:

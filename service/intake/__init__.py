@@ -42,6 +42,11 @@ class IntakeError(ValueError):
         self.field = field
         super().__init__(self.describe())
 
+    def __reduce__(self):
+        # Raised in a worker process (parallel sweep fits) and re-raised in the caller: keep the
+        # location fields, not only the joined message.
+        return (type(self), (self.message, self.file, self.line, self.field))
+
     def describe(self) -> str:
         where = ""
         if self.file:
