@@ -491,6 +491,9 @@ def test_every_documented_route_answers_as_documented(lab, issued):
         ("POST", "/api/certificates/{certificate_id}/withdraw"): {"reason": "route check"},
         ("POST", "/api/certificates/{certificate_id}/amend"): {"reason": "route check"},
         ("POST", "/api/impact/reproduce"): {"certificate_ids": [cert]},
+        ("POST", "/api/certificates/{certificate_id}/corrections"): {
+            "corrections": {"customer": {"name": "Route check (fictional)", "address": "Mudford"}}
+        },
     }
     person = {"operator": "olga", "approver": "bea", "auditor": "aude", "admin": "adam"}
     # Issue and withdraw act on a fresh draft, the rest on a fresh issued certificate, so that
@@ -510,6 +513,7 @@ def test_every_documented_route_answers_as_documented(lab, issued):
         "/api/public/check": f"?id={cert}&sha256={hashlib.sha256(pdf).hexdigest()}",
     }
     called = 0
+    amendment = cert
     for path, operations in openapi_document()["paths"].items():
         for method, op in operations.items():
             key = (method.upper(), path)
@@ -518,6 +522,9 @@ def test_every_documented_route_answers_as_documented(lab, issued):
                 concrete = concrete.replace("{" + name + "}", value)
             if path.endswith(("/issue", "/withdraw")):
                 concrete = concrete.replace(cert, draft)
+            if path.endswith("/corrections"):
+                # Corrections apply to a draft: the amendment drafted by the amend call above.
+                concrete = concrete.replace(cert, amendment)
             roles = op["x-roles"]
             headers = lab.headers(person[roles[0]]) if roles else {}
             kwargs = {"json": bodies.get(key, {})} if method != "get" else {}
@@ -537,6 +544,8 @@ def test_every_documented_route_answers_as_documented(lab, issued):
                 continue
             concrete += queries.get(path, "")
             reply = client.open(concrete, method=method.upper(), headers=headers, **kwargs)
+            if path.endswith("/amend"):
+                amendment = reply.get_json()["certificate_id"]
             if "{name}" in path and "/files/" in path:
                 # Thermometry keeps no output files; the 200 case is in tests/test_jobs.py.
                 assert reply.status_code == 404 and "no output file" in reply.get_json()["error"]

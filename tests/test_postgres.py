@@ -145,3 +145,39 @@ def test_job_claims_are_exclusive_on_postgresql(server_storage):
     for t in threads:
         t.join()
     assert len(taken) == 40 == len(set(taken))
+
+
+def test_item_history_and_public_check_on_postgresql(server_storage, tmp_path):
+    from datetime import date, timedelta
+    from types import SimpleNamespace
+
+    from service.archive.items import (
+        impact,
+        item_history,
+        public_check,
+        recall_overview,
+        record_rendering,
+    )
+    from tests import history_records as hr
+
+    storage = server_storage
+    archive = Archive(storage, LabKey.load_or_create(tmp_path / "keys"))
+    _people(storage)
+    lab = SimpleNamespace(services=SimpleNamespace(storage=storage, archive=archive))
+    day = [(date.today() - timedelta(days=d)).isoformat() for d in (400, 250, 100)]
+    ids = [
+        hr.archive_certificate(lab, hr.pump_record("P 9", d, deviation_ppm=-1.0, gate_V=-0.39))
+        for d in day
+    ]
+    archive.withdraw(ids[1], {"id": 2, "username": "arno"}, "damaged")
+    h = item_history(archive, "P 9", {}, date.today())
+    assert [c["state"] for c in h["certificates"]] == ["issued", "withdrawn", "issued"]
+    assert h["in_force"] == [ids[0], ids[2]]
+    assert [r["item"] for r in recall_overview(archive, {}, date.today())] == ["P 9"]
+    assert [c["certificate_id"] for c in impact(archive, software="0.1.0")] == ids
+    digest = "ab" * 32
+    record_rendering(archive, ids[1], "pdf", digest)
+    record_rendering(archive, ids[1], "pdf", digest)  # noted once
+    answer = public_check(archive, ids[1], digest)
+    assert answer["authentic"] and answer["withdrawn_reason"] == "damaged"
+    assert not public_check(archive, ids[0], digest)["authentic"]
