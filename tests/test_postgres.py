@@ -54,6 +54,24 @@ def _people(storage: Storage) -> dict[str, dict]:
     return people
 
 
+def _complete_record(record: dict) -> dict:
+    """What issue requires (ISO/IEC 17025 7.8.2.1) around the test's own fields."""
+    out = {
+        "title": "Calibration certificate",
+        "laboratory": {"name": "Test lab (fictional)", "address": "Larkspur"},
+        "item": {"identifier": "CBT SN 7", "description": "test device"},
+        "dates": {"measured": "2026-11-20"},
+        "method": {"description": "test method"},
+        **record,
+    }
+    out["customer"] = {"address": "Mudford", **record.get("customer", {})}
+    out["results"] = [
+        {"expanded_uncertainty": 0.01, "coverage_factor": 2.0, "coverage_probability": 0.95, **r}
+        for r in record["results"]
+    ]
+    return out
+
+
 def test_lifecycle_chain_and_verify_on_postgresql(server_storage, tmp_path):
     storage = server_storage
     archive = Archive(storage, LabKey.load_or_create(tmp_path / "keys"))
@@ -79,10 +97,12 @@ def test_lifecycle_chain_and_verify_on_postgresql(server_storage, tmp_path):
                     seed=n,
                     software={},
                     submitter=people["olga"],
-                    record={
-                        "results": [{"value": 0.1 * n, "unit": "K"}],
-                        "customer": {"name": "A"},
-                    },
+                    record=_complete_record(
+                        {
+                            "results": [{"value": 0.1 * n, "unit": "K"}],
+                            "customer": {"name": "A"},
+                        }
+                    ),
                 )
             )
         archive.issue(ids[-1], people["arno"])
