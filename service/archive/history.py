@@ -304,7 +304,9 @@ def _max_change(policy: Mapping[str, Any], key: str, reference: float) -> float 
     return value * abs(reference) if relative else value
 
 
-def _analyse_series(series: Series, policy: Mapping[str, Any], today: date) -> dict[str, Any]:
+def _analyse_series(
+    series: Series, policy: Mapping[str, Any], today: date, departures: bool = True
+) -> dict[str, Any]:
     h = series.history()
     analysis = drift.analyse_drift(h)
     last = series.dates[-1]
@@ -338,7 +340,7 @@ def _analyse_series(series: Series, policy: Mapping[str, Any], today: date) -> d
     }
     if h.n > 1:
         out["successive_en"] = [float(e) for e in drift.successive_en(h)]
-        checks = drift.sequential_checks(h) if h.n >= 3 else ()
+        checks = drift.sequential_checks(h) if h.n >= 3 and departures else ()
         out["departures"] = [
             {
                 "certificate_id": c.label,
@@ -522,8 +524,13 @@ def build_history(
     *,
     policy: Mapping[str, Any] | None = None,
     today: date | None = None,
+    departures: bool = True,
 ) -> dict[str, Any]:
-    """The item's history as plain data (JSON-ready once ``_analysis`` keys are dropped)."""
+    """The item's history as plain data (JSON-ready once ``_analysis`` keys are dropped).
+
+    ``departures=False`` skips judging each calibration against the ones before it (a drift
+    fit per calibration), which the due list does not show.
+    """
     policy = checked_policy(policy)
     today = today or date.today()
     entries = list(entries)
@@ -582,7 +589,7 @@ def build_history(
                         found[key] = Series(base, name, "ppm" if base == "deviation" else "V")
                     found[key].add(e.certificate_id, e.calibration_date, v, u)
             series += list(found.values())
-    analysed = [_analyse_series(s, policy, today) for s in series if s.values]
+    analysed = [_analyse_series(s, policy, today, departures) for s in series if s.values]
     last_date = max((e.calibration_date for e in in_force), default=None)
     recall = _recall(analysed, policy, last_date, today, bool(in_force))
     return {

@@ -60,9 +60,15 @@ def item_entries(archive: Archive, item: str) -> list[CertificateEntry]:
 
 
 def item_history(
-    archive: Archive, item: str, policy: Mapping[str, Any] | None, today: date | None = None
+    archive: Archive,
+    item: str,
+    policy: Mapping[str, Any] | None,
+    today: date | None = None,
+    departures: bool = True,
 ) -> dict[str, Any]:
-    return build_history(item, item_entries(archive, item), policy=policy, today=today)
+    return build_history(
+        item, item_entries(archive, item), policy=policy, today=today, departures=departures
+    )
 
 
 def items_with_issued(archive: Archive) -> list[str]:
@@ -81,7 +87,7 @@ def recall_overview(
     today = today or date.today()
     out = []
     for item in items_with_issued(archive):
-        h = item_history(archive, item, policy, today)
+        h = item_history(archive, item, policy, today, departures=False)
         recall = h["recall"]
         last = next(
             (c for c in reversed(h["certificates"]) if c["certificate_id"] in h["in_force"]), {}
