@@ -346,8 +346,13 @@ def test_one_changed_byte_in_an_issued_record_is_found(lab, tmp_path):
     problems = " | ".join(report["problems"])
     assert "chain entry 2" in problems and "altered after it was signed" in problems
     assert "signature does not verify" in problems
-    # Earlier records stay valid; later ones fail because their chain passes through entry 2.
-    assert lab.archive.verify(first).valid
+    # Later records fail because their chain passes through entry 2. An earlier record's own
+    # entry still checks out, but a damaged later entry could hide its withdrawal or amendment,
+    # so it is not reported valid either; the report says why.
+    earlier = lab.archive.verify(first).as_dict()
+    assert not earlier["valid"]
+    assert all("chain entry 1 " not in p for p in earlier["problems"])
+    assert any("chain entry 2" in p and "could be hidden" in p for p in earlier["problems"])
     assert not lab.archive.verify(third).valid
     ok, problems = lab.archive.verify_all()
     assert not ok and any("chain entry 2" in c.detail for c in problems)

@@ -9,6 +9,7 @@ from pathlib import Path
 
 from service.cli.main import CommandError
 from service.cli.service_commands import _add_instance, _app
+from service.render.numbers import g_or_dash as _g
 
 
 def add_commands(subparsers: argparse._SubParsersAction) -> None:
@@ -31,10 +32,6 @@ def add_commands(subparsers: argparse._SubParsersAction) -> None:
 def _services(args: argparse.Namespace):
     app = _app(args)
     return app, app.extensions["coldcert"]
-
-
-def _g(value, digits: int = 6) -> str:
-    return "—" if value is None else f"{value:.{digits}g}"
 
 
 def _history(args: argparse.Namespace) -> int:

@@ -33,6 +33,15 @@ def _add_instance(parser: argparse.ArgumentParser) -> None:
     )
 
 
+def _add_read_only(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "--read-only",
+        action="store_true",
+        help="open the instance for reading only (an audit copy or a backup): nothing is "
+        "written, not even the event log; chosen anyway when the folder cannot be written",
+    )
+
+
 def _app(args: argparse.Namespace, **config):
     from service.web.app import create_app
 
@@ -57,6 +66,8 @@ def _existing_app(args: argparse.Namespace, **config):
             f"no coldcert instance at {folder} (from {how}); nothing was created. Choose the "
             "archive's folder with --instance FOLDER or the COLDCERT_INSTANCE environment variable"
         )
+    if getattr(args, "read_only", False):
+        config.setdefault("READ_ONLY", True)
     return _app(args, **config)
 
 
@@ -67,7 +78,10 @@ def add_commands(subparsers: argparse._SubParsersAction) -> None:
     _add_instance(p)
     p.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1)")
     p.add_argument("--port", type=int, default=8600, help="port (default 8600)")
-    p.add_argument("--workers", type=int, default=2, help="background analysis processes")
+    p.add_argument(
+        "--workers", type=int, default=2, help="background analysis processes (0: none here)"
+    )
+    _add_read_only(p)
     p.add_argument(
         "--quick",
         action="store_true",
@@ -116,6 +130,7 @@ def add_commands(subparsers: argparse._SubParsersAction) -> None:
         help="the lab's published public key (PEM or hex file) for checking a file offline",
     )
     p.add_argument("--json", action="store_true", help="print the report as JSON")
+    _add_read_only(p)
     p.set_defaults(handler=_verify)
 
     p = subparsers.add_parser(
@@ -131,7 +146,13 @@ def add_commands(subparsers: argparse._SubParsersAction) -> None:
 
 def _serve(args: argparse.Namespace) -> int:
     options = {"fast": True} if args.quick else {}
-    app = _app(args, START_WORKERS=True, WORKERS=args.workers, ANALYSIS_OPTIONS=options)
+    app = _app(
+        args,
+        START_WORKERS=True,
+        WORKERS=args.workers,
+        ANALYSIS_OPTIONS=options,
+        READ_ONLY=args.read_only,
+    )
     services = app.extensions["coldcert"]
     print(f"coldcert: instance {app.instance_path}", file=sys.stderr)
     print(f"coldcert: lab public key {services.key.key_id}", file=sys.stderr)

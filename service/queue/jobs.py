@@ -20,7 +20,6 @@ import logging
 import multiprocessing
 import os
 import socket
-import tempfile
 import threading
 import time
 import traceback
@@ -35,7 +34,7 @@ from sqlalchemy import Connection, and_, select
 
 from service import storage as st
 from service.archive import Archive, LabKey, analysis_output, log_event, software_versions
-from service.storage import Storage, utc_now
+from service.storage import Storage, pid_alive, utc_now
 
 logger = logging.getLogger(__name__)
 
@@ -82,6 +81,62 @@ def enqueue(
     return job_id
 
 
+#: How often a failed job may be queued again by hand (e.g. a valid run whose workers were
+#: killed by restarts three times); beyond it, upload the run again.
+MAX_RETRIES = 2
+
+
+class RetryRefused(Exception):
+    """A job that cannot be queued again; ``status`` is the HTTP answer (404 or 409)."""
+
+    def __init__(self, message: str, status: int = 409) -> None:
+        super().__init__(message)
+        self.status = status
+
+
+def retry(storage: Storage, job_id: str, requested_by: Mapping[str, Any]) -> dict[str, Any]:
+    """Queue a failed job again, at most ``MAX_RETRIES`` times; each retry is in the event log."""
+    with storage.write() as conn:
+        row = conn.execute(select(st.jobs).where(st.jobs.c.id == job_id)).first()
+        if row is None:
+            raise RetryRefused(f"job {job_id} not found", 404)
+        if row.status != "failed":
+            raise RetryRefused(f"job {job_id} is {row.status}; only a failed job can be retried")
+        done = conn.execute(
+            select(st.events.c.id)
+            .where(st.events.c.action == "job.retried")
+            .where(st.events.c.subject == job_id)
+        ).all()
+        if len(done) >= MAX_RETRIES:
+            raise RetryRefused(
+                f"job {job_id} was retried {len(done)} times already (the limit); its last "
+                f"error: {row.error}. Check the run and upload it again"
+            )
+        conn.execute(
+            st.jobs.update()
+            .where(and_(st.jobs.c.id == job_id, st.jobs.c.status == "failed"))
+            .values(
+                status="queued",
+                attempts=0,
+                error=None,
+                claimed_by=None,
+                fraction=0.0,
+                finished_at=None,
+                step=f"queued again by {requested_by['username']} "
+                f"(retry {len(done) + 1} of {MAX_RETRIES})",
+            )
+        )
+        log_event(
+            conn,
+            requested_by["username"],
+            "job.retried",
+            job_id,
+            {"retry": len(done) + 1, "previous_error": row.error},
+        )
+    return {"job_id": job_id, "status": "queued", "retry": len(done) + 1,
+            "retries_left": MAX_RETRIES - len(done) - 1}
+
+
 def job_status(storage: Storage, job_id: str) -> dict[str, Any] | None:
     with storage.read() as conn:
         row = conn.execute(select(st.jobs).where(st.jobs.c.id == job_id)).first()
@@ -97,16 +152,6 @@ def _host_id() -> str:
     return socket.gethostname()
 
 
-def _pid_alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
-
-
 def recover_interrupted(storage: Storage, stale_after: float = STALE_AFTER_SECONDS) -> list[str]:
     """Re-queue jobs whose worker died; fail those interrupted too often. Returns job ids."""
     cutoff = (datetime.now(UTC) - timedelta(seconds=stale_after)).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
@@ -117,7 +162,7 @@ def recover_interrupted(storage: Storage, stale_after: float = STALE_AFTER_SECON
         for row in rows:
             owner_host, _, rest = (row.claimed_by or "").partition(":")
             pid_text = rest.split(":", 1)[0]
-            dead_here = owner_host == host and pid_text.isdigit() and not _pid_alive(int(pid_text))
+            dead_here = owner_host == host and pid_text.isdigit() and not pid_alive(int(pid_text))
             stale = (row.heartbeat_at or row.started_at or "") < cutoff
             if not (dead_here or stale):
                 continue
@@ -258,7 +303,7 @@ def execute(
             ).one()
         if job["purpose"] == "certify":
             progress(0.0, "loading the archived raw files")
-            with tempfile.TemporaryDirectory(prefix="coldcert-job-") as tmp:
+            with storage.blobs.scratch("job") as tmp:
                 folder = archive.materialise_run(files, Path(tmp) / "run")
                 loaded = load_run(folder)
                 output = analysis_output(certify(loaded, run.seed, progress, **options))
@@ -400,6 +445,7 @@ class WorkerPool:
         storage = Storage(self.settings.database_url, self.settings.blob_root)
         try:
             requeued = recover_interrupted(storage, stale_after=STALE_AFTER_SECONDS)
+            storage.blobs.clean_scratch()
         finally:
             storage.dispose()
         if requeued:

@@ -14,6 +14,7 @@ from typing import Any
 from reportlab.lib.units import mm
 from reportlab.platypus import Spacer
 
+from service.render.numbers import g as _g
 from service.render.pdf import (
     BODY,
     H1,
@@ -22,7 +23,6 @@ from service.render.pdf import (
     SMALL,
     TEXT_WIDTH,
     WARN,
-    _g,
     _grid,
     _p,
     _svg_flowable,

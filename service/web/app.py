@@ -9,6 +9,7 @@ changes.
 from __future__ import annotations
 
 import atexit
+import errno
 import logging
 import os
 import secrets
@@ -17,7 +18,8 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from flask import Flask, jsonify, render_template, request
+from flask import Flask, g, has_request_context, jsonify, render_template, request
+from flask.sessions import SecureCookieSessionInterface
 from werkzeug.exceptions import HTTPException
 
 from service.archive import Archive, LabKey
@@ -52,9 +54,64 @@ DEFAULTS: dict[str, Any] = {
     # The laboratory's copy of the DCC 3.3.0 dcc.xsd; when set (here or by COLDCERT_DCC_SCHEMA),
     # every DCC rendering is validated against it before it is served.
     "DCC_SCHEMA": None,
+    # Reverse proxies in front of the service whose X-Forwarded-For/-Proto/-Host headers are
+    # believed (0: none); with TLS ending at the proxy, 1 lets cookies be marked Secure.
+    "TRUSTED_PROXIES": 0,
+    # Open the instance for reading only (an audit copy); also chosen when the folder or the
+    # database file cannot be written. Changes answer 503; nothing is created.
+    "READ_ONLY": False,
     "SESSION_COOKIE_HTTPONLY": True,
     "SESSION_COOKIE_SAMESITE": "Lax",
 }
+
+
+class _SessionInterface(SecureCookieSessionInterface):
+    """Session cookies carry ``Secure`` whenever the request came over TLS (directly, or through
+    a reverse proxy counted in ``TRUSTED_PROXIES``), so a cookie set over https is never sent in clear."""
+
+    def get_cookie_secure(self, app: Flask) -> bool:
+        return bool(super().get_cookie_secure(app) or (has_request_context() and request.is_secure))
+
+
+def csp_nonce() -> str:
+    """A fresh random nonce per response, for the inline scripts of our own templates."""
+    if "csp_nonce" not in g:
+        g.csp_nonce = secrets.token_urlsafe(16)
+    return g.csp_nonce
+
+
+def content_security_policy() -> str:
+    return (
+        "default-src 'self'; "
+        f"script-src 'self' 'nonce-{csp_nonce()}'; "
+        "style-src 'self' 'unsafe-inline'; img-src 'self' data:; object-src 'none'; "
+        "base-uri 'none'; frame-ancestors 'none'; form-action 'self'"
+    )
+
+
+#: errno values meaning "the disk (or the user's quota on it) is full".
+_FULL_ERRNOS = {errno.ENOSPC, errno.EDQUOT}
+
+
+def _storage_full(exc: BaseException, instance: Path) -> str | None:
+    """An operator's message if ``exc`` (or what caused it) is a full disk, else None."""
+    seen = set()
+    while exc is not None and id(exc) not in seen:
+        seen.add(id(exc))
+        if isinstance(exc, OSError) and exc.errno in _FULL_ERRNOS:
+            where = Path(str(exc.filename)).parent if exc.filename else instance
+            return (
+                f"no space left on the disk holding {where}; nothing was stored — free space "
+                "or extend the volume, then send the request again"
+            )
+        text = str(exc).lower()
+        if "database or disk is full" in text or "could not extend file" in text:
+            return (
+                "the database's disk is full; nothing was stored — free space on the volume "
+                "holding the database, then send the request again"
+            )
+        exc = exc.__cause__ or exc.__context__
+    return None
 
 
 @dataclass
@@ -67,7 +124,11 @@ class Services:
     worker_settings: WorkerSettings
     pool: WorkerPool | None = None
 
-    def start_workers(self, processes: int) -> WorkerPool:
+    def start_workers(self, processes: int) -> WorkerPool | None:
+        if int(processes) <= 0:
+            # "--workers 0" means none: this process only serves; `coldcert work` runs the jobs.
+            logger.info("no analysis workers started here; queued jobs wait for `coldcert work`")
+            return self.pool
         if self.pool is None:
             self.pool = WorkerPool(self.worker_settings, processes)
             self.pool.start()
@@ -79,8 +140,21 @@ class Services:
             self.pool = None
 
 
-def _secret_key(instance: Path) -> str:
+def _unwritable(instance: Path) -> bool:
+    """An existing instance whose folder or database this process may not write (an auditor's
+    read-only copy, a backup on read-only media)."""
+    database = instance / "coldcert.sqlite3"
+    if not instance.is_dir():
+        return False
+    return not os.access(instance, os.W_OK) or (
+        database.is_file() and not os.access(database, os.W_OK)
+    )
+
+
+def _secret_key(instance: Path, read_only: bool = False) -> str:
     path = instance / "session_secret"
+    if read_only and not path.is_file():
+        return secrets.token_hex(32)  # sessions of a read-only copy last as long as the process
     if not path.exists():
         fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
         with os.fdopen(fd, "w") as handle:
@@ -101,18 +175,35 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
         instance_path=str(Path(instance_path).resolve()) if instance_path else None,
         instance_relative_config=True,
     )
+    app.session_interface = _SessionInterface()
+    app.jinja_env.globals["csp_nonce"] = csp_nonce
     app.config.from_mapping(DEFAULTS)
     app.config.from_pyfile("config.py", silent=True)
     app.config.update(config)
+    proxies = int(app.config.get("TRUSTED_PROXIES") or 0)
+    if proxies > 0:
+        from werkzeug.middleware.proxy_fix import ProxyFix
+
+        app.wsgi_app = ProxyFix(app.wsgi_app, x_for=proxies, x_proto=proxies, x_host=proxies)
     instance = Path(app.instance_path)
-    instance.mkdir(parents=True, exist_ok=True)
+    read_only = bool(app.config["READ_ONLY"]) or _unwritable(instance)
+    app.config["READ_ONLY"] = read_only
+    if read_only:
+        logger.warning("instance %s is open read-only: nothing can be changed", instance)
+    else:
+        instance.mkdir(parents=True, exist_ok=True)
     if not app.config.get("SECRET_KEY"):
-        app.config["SECRET_KEY"] = _secret_key(instance)
+        app.config["SECRET_KEY"] = _secret_key(instance, read_only)
 
     database_url = app.config["DATABASE_URL"] or default_database_url(instance)
-    storage = Storage(database_url, instance / "blobs")
+    storage = Storage(database_url, instance / "blobs", read_only=read_only)
     storage.create_schema()
-    key = LabKey.load_or_create(instance / "keys")
+    # Raw data a killed process left in temporary folders (an upload being checked, a fit).
+    storage.blobs.clean_scratch()
+    if read_only:
+        key = LabKey.load_for_reading(instance / "keys")
+    else:
+        key = LabKey.load_or_create(instance / "keys")
     try:
         trusted = [bytes.fromhex(h) for h in app.config.get("TRUSTED_PUBLIC_KEYS", ())]
     except ValueError:
@@ -158,15 +249,44 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
 
     @app.errorhandler(Exception)
     def _unexpected(exc: Exception):
-        logger.exception("unexpected error on %s %s", request.method, request.path)
-        message = f"internal error ({type(exc).__name__}); nothing was changed — see the log"
+        full = _storage_full(exc, instance)
+        if full is not None:
+            logger.error("%s %s: %s", request.method, request.path, full)
+            code, message = 507, full
+        else:
+            logger.exception("unexpected error on %s %s", request.method, request.path)
+            code = 500
+            message = f"internal error ({type(exc).__name__}); nothing was changed — see the log"
         if request.path.startswith("/api/"):
             response = jsonify(error=message)
-            response.status_code = 500
+            response.status_code = code
             return response
-        return render_template("error.html", code=500, message=message), 500
+        return render_template("error.html", code=code, message=message), code
 
-    if app.config["START_WORKERS"]:
+    @app.after_request
+    def _security_headers(response):
+        # Browsers must not guess content types (a stored CSV served as HTML), and pages run only
+        # our own scripts (the one inline script carries the per-response nonce).
+        response.headers.setdefault("X-Content-Type-Options", "nosniff")
+        if response.mimetype == "text/html":
+            response.headers.setdefault("Content-Security-Policy", content_security_policy())
+            response.headers.setdefault("Referrer-Policy", "same-origin")
+        return response
+
+    @app.before_request
+    def _refuse_changes_when_read_only():
+        if read_only and request.method in ("POST", "PUT", "PATCH", "DELETE") and (
+            request.endpoint != "auth.login"
+        ):
+            message = "this instance is open read-only (an audit copy); nothing can be changed"
+            if request.path.startswith("/api/"):
+                response = jsonify(error=message)
+                response.status_code = 503
+                return response
+            return render_template("error.html", code=503, message=message), 503
+        return None
+
+    if app.config["START_WORKERS"] and not read_only:
         services.start_workers(app.config["WORKERS"])
         atexit.register(services.stop_workers)
     return app

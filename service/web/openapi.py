@@ -135,6 +135,14 @@ def openapi_document() -> dict[str, Any]:
                     parameters=[_param("job_id")],
                 )
             },
+            "/api/jobs/{job_id}/retry": {
+                "post": _op(
+                    "Queue a failed job again (at most twice; each retry is logged)",
+                    ["operator", "approver"],
+                    {"202": _json("queued again"), "404": _ERROR, "409": _ERROR},
+                    parameters=[_param("job_id")],
+                )
+            },
             "/api/certificates": {
                 "get": _op(
                     "Search the archive",
@@ -287,12 +295,26 @@ def openapi_document() -> dict[str, Any]:
                 )
             },
             "/api/users/{username}/tokens": {
-                "post": _op(
-                    "Make an API token (shown once)",
+                "get": _op(
+                    "List a person's API tokens (id, label, made, revoked; never the token)",
                     ["admin"],
-                    {"201": _json("token"), "400": _ERROR},
+                    {"200": _json("tokens"), "400": _ERROR},
+                    parameters=[_param("username")],
+                ),
+                "post": _op(
+                    "Make an API token (shown once; the id is for listing and revoking)",
+                    ["admin"],
+                    {"201": _json("token and token_id"), "400": _ERROR},
                     parameters=[_param("username")],
                     requestBody=_body({"label": {"type": "string"}}, []),
+                ),
+            },
+            "/api/users/{username}/tokens/{token_id}/revoke": {
+                "post": _op(
+                    "Revoke one API token; it stops working at once",
+                    ["admin"],
+                    {"200": _json("revoked token"), "404": _ERROR, "409": _ERROR},
+                    parameters=[_param("username"), _param("token_id", type="integer")],
                 )
             },
             **_history_paths(),
