@@ -512,6 +512,16 @@ def test_every_documented_route_answers_as_documented(lab, issued):
     queries = {
         "/api/public/check": f"?id={cert}&sha256={hashlib.sha256(pdf).hexdigest()}",
     }
+    # A token to revoke, and a failed job to retry (as if interrupted by restarts).
+    fill["token_id"] = str(
+        client.post("/api/users/olga/tokens", json={"label": "route check"},
+                    headers=lab.headers("adam")).get_json()["token_id"]
+    )
+    failed_job = lab.upload(client).get_json()["job_id"]
+    lab.wait(client, failed_job)
+    with lab.services.storage.write() as conn:
+        conn.execute(st.jobs.update().where(st.jobs.c.id == failed_job).values(
+            status="failed", error="interrupted 3 times (route check)"))
     called = 0
     for path, operations in openapi_document()["paths"].items():
         for method, op in operations.items():
@@ -521,6 +531,8 @@ def test_every_documented_route_answers_as_documented(lab, issued):
                 concrete = concrete.replace("{" + name + "}", value)
             if path.endswith(("/issue", "/withdraw")):
                 concrete = concrete.replace(cert, draft)
+            if path.endswith("/retry"):
+                concrete = concrete.replace(fill["job_id"], failed_job)
             if path.endswith("/corrections"):  # a draft of its own (the other is withdrawn)
                 concrete = concrete.replace(cert, lab.wait(client, third)["certificate_id"])
             roles = op["x-roles"]
