@@ -25,15 +25,21 @@ pytestmark = pytest.mark.skipif(
 )
 
 
+def _drop_everything(storage: Storage) -> None:
+    # The schema revision table too, or the next test's create_schema would find the database
+    # "at head" with no tables in it.
+    with storage.engine.begin() as conn:
+        st.metadata.drop_all(conn)
+        conn.exec_driver_sql("DROP TABLE IF EXISTS alembic_version")
+
+
 @pytest.fixture()
 def server_storage(tmp_path):
     storage = Storage(URL, tmp_path / "blobs")
-    with storage.engine.begin() as conn:
-        st.metadata.drop_all(conn)
+    _drop_everything(storage)
     storage.create_schema()
     yield storage
-    with storage.engine.begin() as conn:
-        st.metadata.drop_all(conn)
+    _drop_everything(storage)
     storage.dispose()
 
 
