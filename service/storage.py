@@ -196,6 +196,18 @@ events = Table(
     Column("detail_json", Text, nullable=False, default="{}"),
 )
 
+#: The SHA-256 of every file of an issued certificate the service handed out (PDF, JSON, signed
+#: entry, DCC, HTML), so that a customer can later show a file and ask whether it is authentic.
+#: Append-only like chain and events (migration 0002_served_files).
+served_files = Table(
+    "served_files",
+    metadata,
+    Column("certificate_id", String(60), primary_key=True),
+    Column("sha256", String(64), primary_key=True),
+    Column("rendering", String(20), nullable=False),
+    Column("first_served_at", String(40), nullable=False),
+)
+
 #: Named counters (certificate numbers, chain sequence lock row).
 counters = Table(
     "counters",

@@ -45,6 +45,12 @@ DEFAULTS: dict[str, Any] = {
     "ANALYSIS_OPTIONS": {},
     # Public keys (hex) of lab keys used before a key change, so their entries still verify.
     "TRUSTED_PUBLIC_KEYS": (),
+    # The laboratory's recall policy: maximum permissible change per tracked quantity and the
+    # interval bounds (docs/history.md). Empty: the default interval of service.archive.history.
+    "RECALL_POLICY": {},
+    # Where customers check a certificate (printed on the PDF with a QR code); None: this
+    # service's own /check page as the request reached it.
+    "PUBLIC_CHECK_URL": None,
     # The laboratory's copy of the DCC 3.3.0 dcc.xsd; when set (here or by COLDCERT_DCC_SCHEMA),
     # every DCC rendering is validated against it before it is served.
     "DCC_SCHEMA": None,
@@ -220,11 +226,13 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     services = Services(storage, archive, key, settings)
     app.extensions["coldcert"] = services
 
-    from service.web import api, auth, pages
+    from service.web import api, auth, history, pages, public
 
     app.register_blueprint(auth.bp)
     app.register_blueprint(api.bp)
     app.register_blueprint(pages.bp)
+    app.register_blueprint(history.bp)
+    public.init_app(app)
 
     @app.errorhandler(HTTPException)
     def _http_error(exc: HTTPException):
