@@ -4,9 +4,11 @@ Everything the service keeps goes through here. Tables are declared with SQLAlch
 same statements run on the embedded default (SQLite in WAL mode inside the instance folder) and on
 a PostgreSQL server chosen by a database URL; nothing outside this module knows which one it is.
 
-Raw bytes (uploaded measurement files) do not go into the database. They live in a blob folder,
-one file per content, named by its SHA-256, so identical uploads share one copy and a stored file
-can always be checked against its name. A blob is written to a temporary file in the same folder,
+On the embedded default raw bytes (uploaded measurement files, plots, output files) do not go into
+the database. They live in a blob folder, one file per content, named by its SHA-256, so
+identical uploads share one copy and a stored file can always be checked against its name. On a
+database server they go into the ``blob_data`` table instead, by the same content address, so
+workers on other machines need no shared folder (:class:`DatabaseBlobStore`). A blob is written to a temporary file in the same folder,
 flushed to disk (fsync) and then renamed into place: a crash leaves either the whole file or
 nothing, never a partial blob under a valid name (POSIX rename is atomic within one file system).
 """
@@ -31,13 +33,16 @@ from sqlalchemy import (
     ForeignKey,
     Index,
     Integer,
+    LargeBinary,
     MetaData,
     String,
     Table,
     Text,
     create_engine,
     event,
+    select,
 )
+from sqlalchemy.exc import IntegrityError
 
 logger = logging.getLogger(__name__)
 
@@ -75,6 +80,15 @@ blobs = Table(
     Column("sha256", String(64), primary_key=True),
     Column("size", Integer, nullable=False),
     Column("stored_at", String(40), nullable=False),
+)
+
+#: Blob contents when they live in the database (``BLOB_STORE = "database"``, the default on a
+#: database server), so workers on other machines need no shared folder.
+blob_data = Table(
+    "blob_data",
+    metadata,
+    Column("sha256", String(64), primary_key=True),
+    Column("data", LargeBinary, nullable=False),
 )
 
 #: An accepted upload: a validated run folder.
@@ -121,6 +135,8 @@ jobs = Table(
     Column("started_at", String(40), nullable=True),
     Column("finished_at", String(40), nullable=True),
     Column("result_json", Text, nullable=True),
+    # Distributed queue only: when the job's message was last handed to the broker.
+    Column("dispatched_at", String(40), nullable=True),
 )
 Index("ix_jobs_status", jobs.c.status, jobs.c.created_at)
 
@@ -156,6 +172,9 @@ certificates = Table(
     Column("sequence", Integer, nullable=True, unique=True),
     Column("withdrawn_reason", Text, nullable=True),
     Column("withdrawn_at", String(40), nullable=True),
+    # The job that drafted it (None for amendments). Unique: a job delivered twice by the queue
+    # can never leave two drafts.
+    Column("job_id", String(40), nullable=True, unique=True),
 )
 Index(
     "ix_certificates_search", certificates.c.state, certificates.c.kind, certificates.c.created_at
@@ -256,6 +275,9 @@ class BlobStore:
     def exists(self, digest: str) -> bool:
         return self.path(digest).is_file()
 
+    def size(self, digest: str) -> int:
+        return self.path(digest).stat().st_size
+
     def digest_on_disk(self, digest: str) -> str | None:
         """SHA-256 of what is actually stored under ``digest`` (None if the file is missing)."""
         path = self.path(digest)
@@ -266,6 +288,64 @@ class BlobStore:
             for chunk in iter(lambda: handle.read(1 << 20), b""):
                 hasher.update(chunk)
         return hasher.hexdigest()
+
+
+class DatabaseBlobStore:
+    """The same content-addressed store as :class:`BlobStore`, kept in the ``blob_data`` table.
+
+    For a database server shared by several machines: a worker elsewhere reads raw files and
+    writes renderings through the database URL alone. Each blob is written in a transaction of
+    its own (content-addressed, so a blob left behind by a rolled-back caller is harmless, as in
+    the folder); a read returns exactly the stored bytes, and ``digest_on_disk`` hashes them so
+    verify catches an altered row as it catches an altered file.
+    """
+
+    def __init__(self, engine: Engine) -> None:
+        self.engine = engine
+
+    @staticmethod
+    def _check(digest: str) -> str:
+        if len(digest) != 64 or any(c not in "0123456789abcdef" for c in digest):
+            raise ValueError(f"not a SHA-256 hex digest: {digest!r}")
+        return digest
+
+    def put(self, data: bytes) -> str:
+        digest = sha256_hex(data)
+        with self.engine.begin() as conn:
+            found = conn.execute(
+                select(blob_data.c.sha256).where(blob_data.c.sha256 == digest)
+            ).first()
+            if found is None:
+                try:
+                    with conn.begin_nested():
+                        conn.execute(blob_data.insert().values(sha256=digest, data=bytes(data)))
+                except IntegrityError:  # the same content stored by another process meanwhile
+                    pass
+        return digest
+
+    def _load(self, digest: str) -> bytes | None:
+        with self.engine.connect() as conn:
+            row = conn.execute(
+                select(blob_data.c.data).where(blob_data.c.sha256 == self._check(digest))
+            ).first()
+        return None if row is None else bytes(row.data)
+
+    def get(self, digest: str) -> bytes:
+        data = self._load(digest)
+        if data is None:
+            raise KeyError(f"raw file {digest} is missing from the database blob table")
+        return data
+
+    def exists(self, digest: str) -> bool:
+        return self._load(digest) is not None
+
+    def size(self, digest: str) -> int:
+        return len(self.get(digest))
+
+    def digest_on_disk(self, digest: str) -> str | None:
+        """SHA-256 of what is actually stored under ``digest`` (None if it is missing)."""
+        data = self._load(digest)
+        return None if data is None else sha256_hex(data)
 
 
 def _fsync_directory(path: Path) -> None:
@@ -285,10 +365,28 @@ def _fsync_directory(path: Path) -> None:
 class Storage:
     """Database engine plus blob folder for one service instance."""
 
-    def __init__(self, database_url: str, blob_root: str | os.PathLike[str]) -> None:
+    def __init__(
+        self,
+        database_url: str,
+        blob_root: str | os.PathLike[str] | None,
+        blob_store: str = "auto",
+    ) -> None:
+        """``blob_store``: "folder" (files under ``blob_root``), "database" (the ``blob_data``
+        table) or "auto": the folder with SQLite, the database with a server."""
         self.database_url = database_url
         self.engine: Engine = _make_engine(database_url)
-        self.blobs = BlobStore(blob_root)
+        if blob_store == "auto":
+            blob_store = "folder" if self.is_sqlite else "database"
+        if blob_store == "database" and self.is_sqlite:
+            raise ValueError("BLOB_STORE 'database' needs a database server; SQLite keeps blobs in a folder")
+        if blob_store == "database":
+            self.blobs: BlobStore | DatabaseBlobStore = DatabaseBlobStore(self.engine)
+        elif blob_store == "folder":
+            if blob_root is None:
+                raise ValueError("a blob folder is needed when BLOB_STORE is 'folder'")
+            self.blobs = BlobStore(blob_root)
+        else:
+            raise ValueError(f"BLOB_STORE must be 'auto', 'folder' or 'database', not {blob_store!r}")
 
     @property
     def is_sqlite(self) -> bool:
