@@ -23,26 +23,18 @@ from sqlalchemy import func, select
 
 from service import storage as st
 from service.archive import SERVICE_FIELDS, canonical_json
-from tests.service_support import make_lab, small_run_files
+from tests.service_support import make_lab, server_url, small_run_files
 
 REPO = Path(__file__).resolve().parents[1]
 FAKE = "tests.fake_analysis:misbehaving_certify"
 
 
-def _server(variable: str, scheme: str) -> str:
-    url = os.environ.get(variable, "")
-    if url.startswith(scheme):
-        return url
-    reason = f"set {variable} to a {scheme} URL (.ci/run starts one) to test the distributed queue"
-    if os.environ.get("CI") == "true":
-        pytest.fail(reason + " (CI must supply it)")
-    pytest.skip(reason)
-
-
 @pytest.fixture()
 def servers():
-    return _server("COLDCERT_TEST_DATABASE_URL", "postgresql"), _server(
-        "COLDCERT_TEST_BROKER_URL", "redis"
+    purpose = "test the distributed queue"
+    return (
+        server_url("COLDCERT_TEST_DATABASE_URL", "postgresql", purpose),
+        server_url("COLDCERT_TEST_BROKER_URL", "redis", purpose),
     )
 
 

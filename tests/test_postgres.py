@@ -8,7 +8,6 @@ moving to a database server gets the same lifecycle, chain, verification and job
 
 from __future__ import annotations
 
-import os
 import threading
 
 import pytest
@@ -18,16 +17,13 @@ from service import storage as st
 from service.archive import Archive, LabKey
 from service.jobs import claim, enqueue
 from service.storage import Storage, utc_now
-
-URL = os.environ.get("COLDCERT_TEST_DATABASE_URL", "")
-pytestmark = pytest.mark.skipif(
-    not URL.startswith("postgresql"), reason="set COLDCERT_TEST_DATABASE_URL to a PostgreSQL URL"
-)
+from tests.service_support import server_url
 
 
 @pytest.fixture()
 def server_storage(tmp_path):
-    storage = Storage(URL, tmp_path / "blobs")
+    url = server_url("COLDCERT_TEST_DATABASE_URL", "postgresql", "test the storage on a server")
+    storage = Storage(url, tmp_path / "blobs")
     with storage.engine.begin() as conn:
         st.metadata.drop_all(conn)
     storage.create_schema()
@@ -145,3 +141,28 @@ def test_job_claims_are_exclusive_on_postgresql(server_storage):
     for t in threads:
         t.join()
     assert len(taken) == 40 == len(set(taken))
+
+
+def test_blobs_live_in_the_database_and_are_checked_on_read(server_storage):
+    """On a server the raw files need no shared folder: the same SHA-256-addressed store, kept
+    in a table, and verify sees an altered row as it sees an altered file."""
+    import hashlib
+
+    from service.storage import DatabaseBlobStore
+
+    blobs = server_storage.blobs
+    assert isinstance(blobs, DatabaseBlobStore)
+    data = b"bias_V,conductance_S\n0,1.5\n"
+    digest = blobs.put(data)
+    assert digest == hashlib.sha256(data).hexdigest()  # reference: Python's hashlib
+    assert blobs.put(data) == digest and blobs.get(digest) == data
+    assert blobs.size(digest) == len(data) and blobs.digest_on_disk(digest) == digest
+    with server_storage.engine.begin() as conn:
+        assert conn.execute(text("SELECT count(*) FROM blob_data")).scalar() == 1
+        conn.execute(text("UPDATE blob_data SET data = 'altered'::bytea"))
+    assert blobs.digest_on_disk(digest) not in (None, digest)
+    assert blobs.digest_on_disk("0" * 64) is None
+    with pytest.raises(KeyError, match="missing"):
+        blobs.get("0" * 64)
+    with pytest.raises(ValueError):
+        blobs.get("../../etc/passwd")
