@@ -18,9 +18,9 @@ from typing import Any
 
 import pytest
 
-from service.app import create_app
-from service.auth import create_token, create_user
-from service.web_server import production_server
+from service.web.app import create_app
+from service.web.auth import create_token, create_user
+from service.web.server import production_server
 
 EXAMPLE = Path(__file__).resolve().parents[1] / "example_runs" / "cbt-hollowmere"
 PASSWORD = "correct horse battery"

@@ -9,9 +9,9 @@ import pytest
 from sqlalchemy import select
 
 from service import storage as st
-from service.auth import AuthError, create_token, create_user, update_user
-from service.cli import main as cli_main
+from service.cli.main import main as cli_main
 from service.storage import sha256_hex
+from service.web.auth import AuthError, create_token, create_user, update_user
 from tests.service_support import PASSWORD, make_lab
 
 
@@ -216,7 +216,7 @@ def test_add_admin_command_creates_the_first_admin(tmp_path, monkeypatch, capsys
     assert "at least 10" in capsys.readouterr().err
     assert cli_main(["new-token", "root", "--instance", str(instance)]) == 0
     token = capsys.readouterr().out.strip()
-    from service.app import create_app
+    from service.web.app import create_app
 
     app = create_app({"INSTANCE_PATH": str(instance)})
     reply = app.test_client().get("/api/users", headers={"Authorization": f"Bearer {token}"})

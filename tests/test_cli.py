@@ -6,7 +6,7 @@ from pathlib import Path
 
 import pytest
 
-from service.cli import main
+from service.cli.main import main
 
 EXAMPLE = Path(__file__).resolve().parent.parent / "example_runs" / "cbt-hollowmere"
 
@@ -108,3 +108,21 @@ def test_secondary_command_round_trip(tmp_path, capsys):
     log.write_text("time_s,conductance_S\n0,1.0e-5\n")
     assert main(["secondary", str(cert), str(log), "--out", str(out)]) == 2
     assert "log.csv:2: conductance_S" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize(
+    "argv",
+    [["verify", "CC-2026-00001"], ["verify", "--all"], ["reproduce", "CC-2026-00001"]],
+)
+def test_read_only_commands_never_create_an_instance(tmp_path, monkeypatch, capsys, argv):
+    # Without --instance, verify/reproduce used to create ./instance with a new lab key pair and
+    # then report "not found". A missing instance is an error naming the folder searched.
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.delenv("COLDCERT_INSTANCE", raising=False)
+    assert main(argv) == 2
+    err = capsys.readouterr().err
+    assert str(tmp_path / "instance") in err and "--instance" in err
+    assert list(tmp_path.iterdir()) == []
+    missing = tmp_path / "elsewhere"
+    assert main([*argv, "--instance", str(missing)]) == 2
+    assert str(missing) in capsys.readouterr().err and not missing.exists()

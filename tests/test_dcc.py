@@ -14,8 +14,9 @@ import pytest
 from lxml import etree
 from pypdf import PdfReader
 
-from service.certify import certify_run
-from service.dcc import (
+from service.calibrations.certify import certify_run
+from service.intake import load_run
+from service.render.dcc import (
     DCC_NS,
     SI_NS,
     CertificateIncomplete,
@@ -25,8 +26,7 @@ from service.dcc import (
     si_unit,
     si_value,
 )
-from service.intake import load_run
-from service.pdf import render_pdf
+from service.render.pdf import render_pdf
 
 EXAMPLE = Path(__file__).resolve().parents[1] / "example_runs" / "cbt-hollowmere"
 NS = {"dcc": DCC_NS, "si": SI_NS}
@@ -69,7 +69,7 @@ def test_schema_check_is_live(schema, dcc_schema_path):
 
 def test_validate_dcc_accepts_ours_and_names_the_first_violation(dcc_schema_path, issued_record):
     # The service-side check a lab turns on with COLDCERT_DCC_SCHEMA / DCC_SCHEMA.
-    from service.dcc import validate_dcc
+    from service.render.dcc import validate_dcc
 
     document = render_dcc(issued_record)
     validate_dcc(document, dcc_schema_path)
@@ -81,7 +81,7 @@ def test_validate_dcc_accepts_ours_and_names_the_first_violation(dcc_schema_path
 
 
 def test_a_missing_schema_file_is_named(tmp_path, issued_record):
-    from service.dcc import validate_dcc
+    from service.render.dcc import validate_dcc
 
     missing = tmp_path / "nowhere" / "dcc.xsd"
     with pytest.raises(DccSchemaError, match="COLDCERT_DCC_SCHEMA"):

@@ -11,7 +11,7 @@ import pytest
 from sqlalchemy import func, select
 
 from service import storage as st
-from service.jobs import recover_interrupted
+from service.queue.jobs import recover_interrupted
 from service.storage import utc_now
 from tests.service_support import EXAMPLE, make_lab
 
@@ -121,7 +121,7 @@ def test_separate_worker_command_runs_queued_jobs(tmp_path):
         [
             sys.executable,
             "-m",
-            "service.cli",
+            "service.cli.main",
             "work",
             "--quick",
             "--instance",
@@ -147,7 +147,7 @@ def test_separate_worker_command_runs_queued_jobs(tmp_path):
 
 def test_output_files_are_kept_signed_verified_and_reproduced(troubled_lab):
     from service.intake import load_run
-    from service.jobs import import_string
+    from service.queue.jobs import import_string
     from service.storage import sha256_hex
 
     lab = troubled_lab
@@ -185,7 +185,7 @@ def test_output_files_are_kept_signed_verified_and_reproduced(troubled_lab):
 
 def test_reproduce_compares_output_files_byte_for_byte(troubled_lab):
     from service.intake import load_run
-    from service.jobs import import_string
+    from service.queue.jobs import import_string
 
     lab = troubled_lab
     client = lab.client()
@@ -217,7 +217,7 @@ def _running(storage, job_id: str, claimed_by: str, attempts: int) -> None:
 def test_take_runs_a_job_once_however_often_its_message_arrives(troubled_lab):
     """The distributed queue delivers at least once; take() makes the job run at most once at a
     time and resumes it only when its holder is gone."""
-    from service.jobs import take
+    from service.queue.jobs import take
 
     lab = troubled_lab
     storage = lab.services.storage

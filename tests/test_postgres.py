@@ -15,7 +15,7 @@ from sqlalchemy import text
 
 from service import storage as st
 from service.archive import Archive, LabKey
-from service.jobs import claim, enqueue
+from service.queue.jobs import claim, enqueue
 from service.storage import Storage, utc_now
 from tests.service_support import server_url
 

@@ -21,8 +21,8 @@ from flask import Config, Flask, jsonify, render_template, request
 from werkzeug.exceptions import HTTPException
 
 from service.archive import Archive, LabKey
-from service.jobs import WorkerPool, WorkerSettings
-from service.queue_engine import BROKER_ENV, EngineQueue, EngineSettings, queue_counts
+from service.queue.engine import BROKER_ENV, EngineQueue, EngineSettings, queue_counts
+from service.queue.jobs import WorkerPool, WorkerSettings
 from service.storage import Storage, default_database_url
 
 #: Environment variable naming the database (overrides ``DATABASE_URL`` of ``config.py``), so a
@@ -52,7 +52,7 @@ DEFAULTS: dict[str, Any] = {
     "BROKER_VISIBILITY_TIMEOUT": None,
     "WORKERS": 2,
     "START_WORKERS": False,
-    "CERTIFY": "service.certify:certify_run",
+    "CERTIFY": "service.calibrations.certify:certify_run",
     "LOAD_RUN": "service.intake:load_run",
     "CERTIFICATE_PREFIX": "CC",
     # Keyword options passed to the analysis and recorded with each certificate ({"fast": True}
@@ -197,7 +197,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
         services.engine = EngineQueue(storage, settings, engine_settings(app.config))
     app.extensions["coldcert"] = services
 
-    from service import api, auth, pages
+    from service.web import api, auth, pages
 
     app.register_blueprint(auth.bp)
     app.register_blueprint(api.bp)

@@ -11,9 +11,9 @@ import importlib
 import sys
 
 COMMAND_MODULES: tuple[str, ...] = (
-    "service.commands",
-    "service.sensor_run",
-    "service.commands_service",
+    "service.cli.run_commands",
+    "service.cli.sensor_commands",
+    "service.cli.service_commands",
 )
 
 

@@ -122,6 +122,54 @@ def _number(value: Any, where: str) -> float:
     return float(value)
 
 
+#: Placeholder texts the record builder writes where the manifest says nothing; a certificate
+#: carrying one of them is not complete.
+PLACEHOLDERS = ("not stated", "not stated in the run manifest")
+
+#: What ISO/IEC 17025:2017 7.8.2.1 asks every certificate to state, as (record field, what it is,
+#: how an operator supplies it). The issue date and the approver (7.8.2.1 o) are set by issuing.
+REQUIRED_FIELDS = (
+    ("title", "a title (7.8.2.1 a)", "title"),
+    ("laboratory.name", "the laboratory's name (7.8.2.1 b)", "[laboratory] name"),
+    ("laboratory.address", "the laboratory's address (7.8.2.1 b)", "[laboratory] address"),
+    ("customer.name", "the customer's name (7.8.2.1 f)", "[customer] name"),
+    ("customer.address", "the customer's contact address (7.8.2.1 f)", "[customer] address"),
+    ("item.description", "a description of the item (7.8.2.1 g)", "[item] description"),
+    ("item.identifier", "the item's unambiguous identification (7.8.2.1 g)", "[item] identifier"),
+    ("dates.measured", "the date of the measurement (7.8.2.1 i)", "[dates] measured"),
+    ("method.description", "the method used (7.8.2.1 e)", "(set by the analysis)"),
+)
+
+
+def _field(record: Mapping[str, Any], path: str) -> Any:
+    value: Any = record
+    for part in path.split("."):
+        value = value.get(part) if isinstance(value, Mapping) else None
+    return value
+
+
+def missing_for_issue(record: Mapping[str, Any]) -> list[dict[str, str]]:
+    """What a draft still lacks before it may be issued (ISO/IEC 17025:2017 7.8.2.1).
+
+    Each entry names the record ``field``, ``what`` it is and ``how`` to supply it (the run.toml
+    table and key, or a correction of the draft). Results without unit or expanded uncertainty
+    are listed too (7.8.2.1 m, 7.8.4.1 a). An empty list means the draft is complete.
+    """
+    missing = []
+    for path, what, key in REQUIRED_FIELDS:
+        value = _field(record, path)
+        text = str(value).strip() if value is not None else ""
+        if not text or text.lower() in PLACEHOLDERS:
+            missing.append({"field": path, "what": what, "how": key})
+        elif path.startswith("dates.") and not _DATE.match(text):
+            missing.append({"field": path, "what": f"{what} as YYYY-MM-DD", "how": key})
+    try:
+        _check_results(record)
+    except CertificateIncomplete as exc:
+        missing.append({"field": "results", "what": str(exc), "how": "(a new run)"})
+    return missing
+
+
 def check_complete(record: Mapping[str, Any]) -> None:
     """Refuse a record that lacks its id, issue date, or any result's uncertainty and unit.
 
@@ -136,6 +184,11 @@ def check_complete(record: Mapping[str, Any]) -> None:
             "the certificate has no issue date (dates.issued): only an issued certificate can "
             "be written as a DCC"
         )
+    _check_results(record)
+
+
+def _check_results(record: Mapping[str, Any]) -> None:
+    """Every result has a finite value, a unit and an expanded uncertainty with k and p."""
     results = record.get("results") or []
     if not results:
         raise CertificateIncomplete("the certificate states no results")

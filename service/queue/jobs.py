@@ -283,7 +283,7 @@ class WorkerSettings:
     database_url: str
     blob_root: str
     blob_store: str = "auto"
-    certify: str = "service.certify:certify_run"
+    certify: str = "service.calibrations.certify:certify_run"
     load_run: str = "service.intake:load_run"
     number_prefix: str = "CC"
     poll_seconds: float = 0.2

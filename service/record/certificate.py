@@ -14,6 +14,7 @@ import html
 import json
 import math
 import platform
+import re
 from importlib import metadata as importlib_metadata
 
 SCHEMA = "coldcert/certificate/1"
@@ -79,6 +80,27 @@ def _section(manifest: dict, name: str) -> dict:
     return {k: v for k, v in body.items() if isinstance(v, str | int | float | bool)}
 
 
+def measurement_dates(stated: dict, files) -> dict:
+    """``measured`` (and ``measurement_began``) as the manifest states them, else from the files.
+
+    Without ``[dates] measured`` in run.toml the date of measurement (ISO/IEC 17025 7.8.2.1 i)
+    is the day the last sweep started (``# sweep_started:``), and ``measurement_began`` the day the
+    first did when that differs. Values that are not ISO 8601 dates are ignored here.
+    """
+    if stated.get("measured"):
+        return {"measured": stated["measured"]}
+    days = sorted(
+        str(f.metadata["sweep_started"])[:10]
+        for f in files
+        if re.match(r"^\d{4}-\d{2}-\d{2}", str(f.metadata.get("sweep_started", "")))
+    )
+    if not days:
+        return {"measured": None}
+    if days[0] == days[-1]:
+        return {"measured": days[-1]}
+    return {"measured": days[-1], "measurement_began": days[0]}
+
+
 def build_record(run, outcome, seed: int, job: str) -> dict:
     """Assemble the draft record from a validated run and a job's outcome."""
     versions = software_versions()
@@ -101,7 +123,7 @@ def build_record(run, outcome, seed: int, job: str) -> dict:
         "item": _section(m, "item") or {"description": "not stated"},
         "dates": {
             "received": m.get("dates", {}).get("received"),
-            "measured": m.get("dates", {}).get("measured"),
+            **measurement_dates(m.get("dates", {}), run.files),
             "issued": None,
         },
         "people": {"operator": m.get("people", {}).get("operator"), "approver": None},

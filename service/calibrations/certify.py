@@ -1,20 +1,13 @@
-"""From a validated run to a draft certificate: dispatch to the job, then build the record."""
+"""From a validated run to a draft certificate: dispatch to its calibration kind, then build the record."""
 
 from __future__ import annotations
 
-import importlib
 from collections.abc import Callable
 from dataclasses import dataclass, field
 
-from service.certificate import build_record, pretty_bytes, render_html
-from service.intake import KIND_CBT, KIND_PUMP, KIND_SENSOR, Run
-
-#: Job modules by run kind; each exposes analyse(run, seed, progress, fast) -> JobOutcome.
-JOB_MODULES = {
-    KIND_CBT: "service.thermometry",
-    KIND_SENSOR: "service.sensor_run",
-    KIND_PUMP: "service.pump_run",
-}
+from service.calibrations.registry import calibration_for
+from service.intake import Run
+from service.record.certificate import build_record, pretty_bytes, render_html
 
 DEFAULT_SEED = 20261201
 
@@ -47,11 +40,7 @@ def certify_run(run: Run, seed: int | None = None, progress: Callable[[float, st
                 fast: bool = False) -> Certified:
     """Analyse a run and return its draft certificate. Raises IntakeError or CertificationRefused."""
     seed = run_seed(run, seed)
-    try:
-        module = importlib.import_module(JOB_MODULES[run.kind])
-    except ModuleNotFoundError as exc:
-        raise NotImplementedError(f"runs of kind {run.kind!r} are not supported by this version") from exc
-    outcome = module.analyse(run, seed, progress=progress, fast=fast)
+    outcome = calibration_for(run.kind).analyse(run, seed, progress=progress, fast=fast)
     record = build_record(run, outcome, seed, run.kind)
     sections = list(getattr(outcome, "html_sections", None) or [])
     html = render_html(record, outcome.plots, sections)

@@ -42,6 +42,7 @@ from cryptography.hazmat.primitives.asymmetric.ed25519 import (
 from sqlalchemy import Connection, and_, func, or_, select
 
 from service import storage as st
+from service.render.dcc import missing_for_issue
 from service.storage import Storage, sha256_hex, utc_now
 
 logger = logging.getLogger(__name__)
@@ -75,6 +76,29 @@ ANALYSIS_FIELDS = (
     "schema",
     "job",
 )
+
+
+def _correctable(corrections: Mapping[str, Any] | None, what: str) -> dict[str, Any]:
+    """The corrections, refused if they touch service fields or analysis results."""
+    corrections = dict(corrections or {})
+    refused = [k for k in corrections if k in SERVICE_FIELDS or k in ANALYSIS_FIELDS]
+    if refused:
+        raise ArchiveError(
+            f"field(s) {', '.join(sorted(refused))} cannot be corrected by {what}; "
+            "service fields are set by the archive and results need a new run",
+            400,
+        )
+    return corrections
+
+
+def _apply_corrections(record: dict[str, Any], corrections: Mapping[str, Any]) -> None:
+    """Correct ``record`` in place; a table (``customer``) is merged key by key, so correcting
+    its name keeps its address."""
+    for key, value in corrections.items():
+        if isinstance(value, Mapping) and isinstance(record.get(key), Mapping):
+            record[key] = {**record[key], **value}
+        else:
+            record[key] = value
 
 
 class ArchiveError(Exception):
@@ -602,14 +626,7 @@ class Archive:
         reason = (reason or "").strip()
         if not reason:
             raise ArchiveError("give the reason for the amendment (ISO/IEC 17025 7.8.8)", 400)
-        corrections = dict(corrections or {})
-        refused = [k for k in corrections if k in SERVICE_FIELDS or k in ANALYSIS_FIELDS]
-        if refused:
-            raise ArchiveError(
-                f"field(s) {', '.join(sorted(refused))} cannot be corrected by an amendment; "
-                "service fields are set by the archive and results need a new run",
-                400,
-            )
+        corrections = _correctable(corrections, "an amendment")
         with self.storage.write() as conn:
             old = self._row(conn, certificate_id)
             if old.state != "issued":
@@ -631,7 +648,7 @@ class Archive:
             for key in SERVICE_FIELDS:
                 if key != "analysis_id":
                     record.pop(key, None)
-            record.update(corrections)
+            _apply_corrections(record, corrections)
             record["corrected_fields"] = sorted(earlier | set(corrections))
             new_id = self.create_draft(
                 conn,
@@ -647,6 +664,41 @@ class Archive:
                 extras=json.loads(old.extras_json),
             )
         return new_id
+
+    def correct_draft(
+        self, certificate_id: str, user: Mapping[str, Any], corrections: Mapping[str, Any]
+    ) -> list[dict[str, str]]:
+        """Fill or correct administrative fields of a draft before it is issued.
+
+        A draft is not signed yet, so it is corrected in place (the fields are listed in
+        ``corrected_fields`` and the change is in the event log); a table such as ``customer``
+        is merged key by key. Returns what the draft still lacks (:func:`missing_for_issue`).
+        """
+        corrections = _correctable(corrections, "a correction")
+        if not corrections:
+            raise ArchiveError("no corrections given", 400)
+        with self.storage.write() as conn:
+            row = self._row(conn, certificate_id)
+            if row.state != "draft":
+                raise ArchiveError(
+                    f"{certificate_id} is {row.state}; an issued certificate is changed only by "
+                    "an amendment (a new revision)"
+                )
+            record = json.loads(row.record_json)
+            _apply_corrections(record, corrections)
+            earlier = set(record.get("corrected_fields") or [])
+            record["corrected_fields"] = sorted(earlier | set(corrections))
+            item = (record.get("item") or {}).get("identifier") or row.item
+            conn.execute(
+                st.certificates.update()
+                .where(st.certificates.c.id == certificate_id)
+                .values(record_json=canonical_json(record).decode("utf-8"), item=item)
+            )
+            log_event(
+                conn, user["username"], "certificate.corrected", certificate_id,
+                {"fields": sorted(corrections)},
+            )
+        return missing_for_issue(record)
 
     # ---- issue / withdraw -------------------------------------------------------------------
 
@@ -727,6 +779,16 @@ class Archive:
                     )
             issued_at = utc_now()
             record = json.loads(row.record_json)
+            missing = missing_for_issue(record)
+            if missing:
+                # ISO/IEC 17025:2017 7.8.2.1: a draft may be incomplete, an issued one may not.
+                raise ArchiveError(
+                    f"{certificate_id} cannot be issued: it does not state "
+                    + "; ".join(f"{m['what']} ({m['field']})" for m in missing)
+                    + ". Correct the draft first (its page, or POST "
+                    f"/api/certificates/{certificate_id}/corrections)",
+                    409,
+                )
             record["state"] = "issued"
             record.setdefault("dates", {})["issued"] = issued_at[:10]
             record.setdefault("people", {})["approver"] = (
@@ -852,6 +914,7 @@ class Archive:
         if info["state"] == "withdrawn":
             record["withdrawn_reason"] = info["withdrawn_reason"]
         info["record"] = record
+        info["missing"] = missing_for_issue(record) if info["state"] == "draft" else []
         return info
 
     def signed_entry(self, certificate_id: str) -> dict[str, Any]:

@@ -223,6 +223,16 @@ def openapi_document() -> dict[str, Any]:
                     ),
                 )
             },
+            "/api/certificates/{certificate_id}/corrections": {
+                "post": _op(
+                    "Fill or correct administrative fields of a draft before issue; answers "
+                    "what it still lacks (ISO/IEC 17025 7.8.2.1)",
+                    ["operator"],
+                    {"200": _json("what the draft still lacks"), "400": _ERROR, "409": _ERROR},
+                    parameters=[_CERT],
+                    requestBody=_body({"corrections": {"type": "object"}}, ["corrections"]),
+                )
+            },
             "/api/certificates/{certificate_id}/verify": {
                 "get": _op(
                     "Check signature, chain and raw files",

@@ -40,7 +40,7 @@ from sqlalchemy.exc import OperationalError
 
 from service import storage as st
 from service.archive import Archive
-from service.jobs import (
+from service.queue.jobs import (
     WorkerSettings,
     _host_id,
     execute,

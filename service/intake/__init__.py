@@ -121,9 +121,11 @@ METADATA_KEYS: dict[str, KeySpec] = {
     "note": KeySpec(_text, "free text"),
 }
 
-#: Column names: a lowercase stem and an SI unit suffix.
+#: Column names: a word (letters, digits, underscores) and an SI unit suffix. Which columns a
+#: calibration uses is checked by its kind (e.g. a sweep needs bias_V and conductance_S), so any
+#: name ending in a unit is accepted here (``G_S`` is then reported as "found G_S" by that check).
 UNIT_SUFFIXES = ("V", "S", "A", "s", "ohm", "Pa", "K", "Hz", "T")
-_COLUMN_RE = re.compile(r"^[a-z][a-z0-9_]*_(" + "|".join(UNIT_SUFFIXES) + r")$")
+_COLUMN_RE = re.compile(r"^[A-Za-z][A-Za-z0-9_]*_(" + "|".join(UNIT_SUFFIXES) + r")$")
 #: Columns that are legitimately dimensionless.
 DIMENSIONLESS_COLUMNS = {"pump_on"}
 
@@ -180,6 +182,70 @@ def sha256_hex(data: bytes) -> str:
     return hashlib.sha256(data).hexdigest()
 
 
+#: Separators people use instead of commas, by what we call them in a message.
+_OTHER_SEPARATORS = {";": "semicolons", "\t": "tabs", "|": "vertical bars"}
+#: SI prefixes a column unit might carry (refused: the columns are in unprefixed units).
+_SI_PREFIXES = {
+    "f": 1e-15, "p": 1e-12, "n": 1e-9, "u": 1e-6, "µ": 1e-6, "μ": 1e-6, "m": 1e-3,
+    "k": 1e3, "M": 1e6, "G": 1e9,
+}
+
+
+def _is_number(text: str) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
+
+
+def _column_problem(h: str) -> str | None:
+    """Why ``h`` is not a valid column name, or None. Names ending in a unit are never refused
+    for their unit; a prefixed unit (``bias_mV``) is refused with the unprefixed name to use."""
+    if h in DIMENSIONLESS_COLUMNS or _COLUMN_RE.match(h):
+        return None
+    stem, _, unit = h.rpartition("_")
+    if stem and unit in UNIT_SUFFIXES:
+        return f"column name must be a word and its unit, e.g. bias_V, conductance_S (found {h!r})"
+    for prefix, factor in _SI_PREFIXES.items():
+        base = unit[len(prefix):]
+        if stem and unit.startswith(prefix) and base in UNIT_SUFFIXES:
+            return (
+                f"unit {unit!r} has an SI prefix: give the column in {base} without a prefix "
+                f"({stem}_{base}, values multiplied by {factor:g})"
+            )
+    return (
+        "column name must end in an SI unit, e.g. bias_V, conductance_S, current_A "
+        f"(units: {', '.join(UNIT_SUFFIXES)})"
+    )
+
+
+def _parse_header(name: str, line: str, header_line: int) -> list[str]:
+    """The column names of the header row, or an error that says what is wrong with it."""
+    if "," not in line:
+        for sep, called in _OTHER_SEPARATORS.items():
+            if sep in line:
+                raise IntakeError(
+                    f"the columns are separated by {called}; coldcert reads comma-separated "
+                    "values (save the file with ',' between columns and '.' as decimal point)",
+                    file=name, line=header_line,
+                )
+    header = [h.strip() for h in line.split(",")]
+    if all(_is_number(h) for h in header):
+        raise IntakeError(
+            "no header line: the first row holds numbers; expected column names above the data, "
+            "e.g. bias_V,conductance_S",
+            file=name, line=header_line,
+        )
+    for h in header:
+        if not h:
+            raise IntakeError("empty column name in the header", file=name, line=header_line)
+        problem = _column_problem(h)
+        if problem:
+            raise IntakeError(problem, file=name, line=header_line, field=h)
+    return header
+
+
 def parse_csv(name: str, raw: bytes) -> DataFile:
     """Parse one data file, refusing anything malformed with file, line and field named."""
     if len(raw) == 0:
@@ -224,16 +290,7 @@ def parse_csv(name: str, raw: bytes) -> DataFile:
     if i >= len(lines):
         raise IntakeError("no header row found (expected e.g. 'bias_V,conductance_S')", file=name)
     header_line = i + 1
-    header = [h.strip() for h in lines[i].split(",")]
-    for h in header:
-        if not h:
-            raise IntakeError("empty column name in the header", file=name, line=header_line)
-        if h not in DIMENSIONLESS_COLUMNS and not _COLUMN_RE.match(h):
-            raise IntakeError(
-                "column name must end in an SI unit, e.g. bias_V, conductance_S, current_A "
-                f"(units: {', '.join(UNIT_SUFFIXES)})",
-                file=name, line=header_line, field=h,
-            )
+    header = _parse_header(name, lines[i], header_line)
     if len(set(header)) != len(header):
         dup = next(h for h in header if header.count(h) > 1)
         raise IntakeError("column appears twice in the header", file=name, line=header_line, field=dup)

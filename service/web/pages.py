@@ -7,6 +7,7 @@ CSRF token) and one small script that polls the job API to show live progress.
 from __future__ import annotations
 
 import json
+from typing import Any
 
 from flask import (
     Blueprint,
@@ -20,11 +21,11 @@ from flask import (
 from sqlalchemy import func, select
 
 from service import storage as st
-from service.api import READERS, accept_uploaded, queue_reproduction, services, verify_and_log
 from service.archive import ArchiveError, log_event
-from service.auth import ROLES, AuthError, create_token, create_user, list_users, roles_required
-from service.jobs import job_status
-from service.upload import UploadError
+from service.queue.jobs import job_status
+from service.web.api import READERS, accept_uploaded, queue_reproduction, services, verify_and_log
+from service.web.auth import ROLES, AuthError, create_token, create_user, list_users, roles_required
+from service.web.upload import UploadError
 
 bp = Blueprint("pages", __name__)
 
@@ -160,6 +161,33 @@ def withdraw(certificate_id: str):
         lambda: services().archive.withdraw(certificate_id, g.user, reason),
         f"{certificate_id} withdrawn.",
     )
+
+
+@bp.post("/certificates/<certificate_id>/corrections")
+@roles_required("operator")
+def correct(certificate_id: str):
+    """The draft page's form: one text field per missing or corrected administrative value."""
+    corrections: dict[str, Any] = {}
+    for name, value in request.form.items():
+        table, dot, key = name.partition(".")
+        if name == "csrf_token" or not value.strip():
+            continue
+        if dot:
+            corrections.setdefault(table, {})[key] = value.strip()
+        else:
+            corrections[name] = value.strip()
+    try:
+        missing = services().archive.correct_draft(certificate_id, g.user, corrections)
+    except ArchiveError as exc:
+        flash(str(exc), "error")
+    else:
+        flash(
+            f"{certificate_id} corrected"
+            + (f"; still missing: {', '.join(m['field'] for m in missing)}." if missing else
+               "; it states everything a certificate must and can be issued."),
+            "ok",
+        )
+    return redirect(url_for("pages.certificate", certificate_id=certificate_id), 303)
 
 
 @bp.post("/certificates/<certificate_id>/amend")

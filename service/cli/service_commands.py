@@ -15,7 +15,7 @@ import sys
 import threading
 from pathlib import Path
 
-from service.cli import CommandError
+from service.cli.main import CommandError
 
 DEFAULT_INSTANCE = "instance"
 
@@ -34,9 +34,30 @@ def _add_instance(parser: argparse.ArgumentParser) -> None:
 
 
 def _app(args: argparse.Namespace, **config):
-    from service.app import create_app
+    from service.web.app import create_app
 
     return create_app({"INSTANCE_PATH": _instance(args), **config})
+
+
+def _existing_app(args: argparse.Namespace, **config):
+    """The app of an instance that must already exist (read-only commands never create one).
+
+    An instance is a folder holding the lab key and either the embedded database or a
+    ``config.py`` that names a database server.
+    """
+    folder = Path(_instance(args)).resolve()
+    has_database = (folder / "coldcert.sqlite3").is_file() or (folder / "config.py").is_file()
+    if not folder.is_dir() or not has_database:
+        how = (
+            "--instance" if args.instance
+            else "$COLDCERT_INSTANCE" if os.environ.get("COLDCERT_INSTANCE")
+            else "the default ./instance"
+        )
+        raise CommandError(
+            f"no coldcert instance at {folder} (from {how}); nothing was created. Choose the "
+            "archive's folder with --instance FOLDER or the COLDCERT_INSTANCE environment variable"
+        )
+    return _app(args, **config)
 
 
 def add_commands(subparsers: argparse._SubParsersAction) -> None:
@@ -168,7 +189,7 @@ def _serve(args: argparse.Namespace) -> int:
         if args.development_server:
             app.run(host=args.host, port=args.port, threaded=True, use_reloader=False)
         else:
-            from service.web_server import production_server
+            from service.web.server import production_server
 
             production_server(app, args.host, args.port, args.threads, args.proxy).run()
     finally:
@@ -177,7 +198,7 @@ def _serve(args: argparse.Namespace) -> int:
 
 
 def _work(args: argparse.Namespace) -> int:
-    from service.app import load_config, worker_settings
+    from service.web.app import load_config, worker_settings
 
     overrides = {"ANALYSIS_OPTIONS": {"fast": True}} if args.quick else {}
     if args.broker:
@@ -189,7 +210,7 @@ def _work(args: argparse.Namespace) -> int:
     settings = worker_settings(config, instance)
     if config["BROKER_URL"]:
         return _work_distributed(config, settings, args.processes)
-    from service.jobs import WorkerPool
+    from service.queue.jobs import WorkerPool
 
     storage = settings.open_storage()
     try:
@@ -220,9 +241,9 @@ def _work(args: argparse.Namespace) -> int:
 
 def _work_distributed(config, settings, processes: int) -> int:
     """Celery workers taking analysis jobs from the broker (no web server, no signing key)."""
-    from service.app import engine_settings
-    from service.jobs import import_string
-    from service.queue_engine import EngineQueue, redact, worker_argv
+    from service.queue.engine import EngineQueue, redact, worker_argv
+    from service.queue.jobs import import_string
+    from service.web.app import engine_settings
 
     # Import the analysis once here: the worker processes forked from this one start ready.
     import_string(settings.certify)
@@ -265,7 +286,7 @@ def _read_password(args: argparse.Namespace) -> str:
 
 
 def _add_admin(args: argparse.Namespace) -> int:
-    from service.auth import AuthError, create_user
+    from service.web.auth import AuthError, create_user
 
     app = _app(args)
     password = _read_password(args)
@@ -285,7 +306,7 @@ def _add_admin(args: argparse.Namespace) -> int:
 
 
 def _new_token(args: argparse.Namespace) -> int:
-    from service.auth import AuthError, create_token
+    from service.web.auth import AuthError, create_token
 
     app = _app(args)
     try:
@@ -326,7 +347,7 @@ def _verify(args: argparse.Namespace) -> int:
     from service.archive import ArchiveError, verify_signed_document
 
     if args.all:
-        app = _app(args)
+        app = _existing_app(args)
         ok, problems = app.extensions["coldcert"].archive.verify_all()
         _print_checks(problems, args.json, {"valid": ok})
         print("archive valid" if ok else f"archive NOT valid: {len(problems)} problem(s)")
@@ -342,7 +363,7 @@ def _verify(args: argparse.Namespace) -> int:
         if args.public_key:
             public = _load_public_key(args.public_key)
         elif args.instance or os.environ.get("COLDCERT_INSTANCE"):
-            public = _app(args).extensions["coldcert"].key.public_raw
+            public = _existing_app(args).extensions["coldcert"].key.public_raw
         checks = verify_signed_document(document, public)
         ok = all(c.ok for c in checks)
         _print_checks(checks, args.json, {"file": args.target, "valid": ok})
@@ -354,7 +375,7 @@ def _verify(args: argparse.Namespace) -> int:
             )
         print(f"{args.target}: {'valid' if ok else 'NOT valid'}")
         return 0 if ok else 1
-    app = _app(args)
+    app = _existing_app(args)
     try:
         report = app.extensions["coldcert"].archive.verify(args.target)
     except ArchiveError as exc:
@@ -366,9 +387,9 @@ def _verify(args: argparse.Namespace) -> int:
 
 def _reproduce(args: argparse.Namespace) -> int:
     from service.archive import ArchiveError
-    from service.jobs import import_string
+    from service.queue.jobs import import_string
 
-    app = _app(args)
+    app = _existing_app(args)
     services = app.extensions["coldcert"]
     certify = import_string(app.config["CERTIFY"])
     load_run = import_string(app.config["LOAD_RUN"])

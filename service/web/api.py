@@ -1,5 +1,5 @@
 """The JSON API (``/api/...``). Every route names the roles it admits; the OpenAPI document in
-``service/openapi.py`` describes the same routes and a test walks all of them."""
+``service/web/openapi.py`` describes the same routes and a test walks all of them."""
 
 from __future__ import annotations
 
@@ -15,7 +15,9 @@ from sqlalchemy import select
 
 from service import storage as st
 from service.archive import ArchiveError, canonical_json, log_event
-from service.auth import (
+from service.queue.jobs import enqueue, import_string, job_status
+from service.storage import sha256_hex
+from service.web.auth import (
     AuthError,
     create_token,
     create_user,
@@ -23,10 +25,8 @@ from service.auth import (
     roles_required,
     update_user,
 )
-from service.jobs import enqueue, import_string, job_status
-from service.openapi import openapi_document
-from service.storage import sha256_hex
-from service.upload import UploadError, accept_run, parse_seed
+from service.web.openapi import openapi_document
+from service.web.upload import UploadError, accept_run, parse_seed
 
 bp = Blueprint("api", __name__, url_prefix="/api")
 
@@ -216,7 +216,7 @@ def _cached_pdf(record: dict[str, Any], plots_sha256: str | None) -> bytes:
     The PDF is a pure function of the record and the plots (reportlab's invariant mode), so a
     cache keyed by their digests can never serve a stale document.
     """
-    from service.pdf import RENDERER_VERSION, render_pdf
+    from service.render.pdf import RENDERER_VERSION, render_pdf
 
     key = sha256_hex(
         canonical_json({"record": record, "plots": plots_sha256, "renderer": RENDERER_VERSION})
@@ -267,7 +267,7 @@ def render(info: dict[str, Any], fmt: str) -> tuple[bytes | str, str]:
         document = services().archive.signed_entry(info["id"])
         return json.dumps(document, sort_keys=True, indent=2, ensure_ascii=False), RENDERINGS[fmt]
     if fmt == "html":
-        from service.certificate import render_html
+        from service.record.certificate import render_html
 
         plots, sections = services().archive.presentation(info.get("plots_sha256"))
         page = render_html(record, plots, sections)
@@ -275,7 +275,7 @@ def render(info: dict[str, Any], fmt: str) -> tuple[bytes | str, str]:
     if fmt == "pdf":
         return _cached_pdf(record, info.get("plots_sha256")), RENDERINGS[fmt]
     if fmt == "xml":
-        from service.dcc import configured_schema, render_dcc, validate_dcc
+        from service.render.dcc import configured_schema, render_dcc, validate_dcc
 
         document = render_dcc(record)
         schema = configured_schema(current_app.config.get("DCC_SCHEMA"))
@@ -335,17 +335,33 @@ def withdraw_certificate(certificate_id: str):
     return jsonify(services().archive.withdraw(certificate_id, g.user, body.get("reason", "")))
 
 
-@bp.post("/certificates/<certificate_id>/amend")
-@roles_required("operator")
-def amend_certificate(certificate_id: str):
-    body = _json_body()
+def _corrections(body: dict[str, Any]) -> dict[str, Any] | None:
+    """The ``corrections`` object of a request body (a JSON object or its text), else None."""
     corrections = body.get("corrections") or {}
     if isinstance(corrections, str):
         try:
             corrections = json.loads(corrections)
         except ValueError:
-            return error(400, "corrections must be a JSON object", field="corrections")
-    if not isinstance(corrections, dict):
+            return None
+    return corrections if isinstance(corrections, dict) else None
+
+
+@bp.post("/certificates/<certificate_id>/corrections")
+@roles_required("operator")
+def correct_draft(certificate_id: str):
+    corrections = _corrections(_json_body())
+    if corrections is None:
+        return error(400, "corrections must be a JSON object", field="corrections")
+    missing = services().archive.correct_draft(certificate_id, g.user, corrections)
+    return jsonify(certificate_id=certificate_id, missing=missing)
+
+
+@bp.post("/certificates/<certificate_id>/amend")
+@roles_required("operator")
+def amend_certificate(certificate_id: str):
+    body = _json_body()
+    corrections = _corrections(body)
+    if corrections is None:
         return error(400, "corrections must be a JSON object", field="corrections")
     new_id = services().archive.amend(certificate_id, g.user, body.get("reason", ""), corrections)
     response = jsonify(

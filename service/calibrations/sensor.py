@@ -2,7 +2,7 @@
 
 A run of kind ``sensor_calibration`` is a set of CBT sweeps, each taken while the fridge's own
 resistance thermometer was read. The primary temperature of every sweep comes from the CBT job
-(:mod:`service.thermometry`, reused as is); this module pairs each with the sensor's resistance,
+(:mod:`service.calibrations.cbt`, reused as is); this module pairs each with the sensor's resistance,
 sorts the CBT budget into what is independent from point to point (the posterior, Type A) and
 what is common to all points (every Type B row: the same bias chain, lock-in, device and model
 serve every sweep), fits the curve with :mod:`analysis.sensors`, cross-checks against PLTS-2000
@@ -28,7 +28,8 @@ from scipy import stats
 
 from analysis import scales, sensors
 from analysis.budget import round_for_report
-from service import thermometry
+from service.calibrations import cbt as thermometry
+from service.calibrations.outcome import CalibrationOutcome, CertificationRefused
 from service.intake import (
     DataFile,
     IntakeError,
@@ -36,7 +37,6 @@ from service.intake import (
     Run,
     is_cbt_sweep,
     manifest_number,
-    parse_csv,
     real_parser,
     register_keys,
 )
@@ -413,7 +413,7 @@ def table_csv_from_record(record: dict, source: str = "certificate.json") -> byt
 
 def curve_svg(fit: sensors.CalibrationFit, table: sensors.CurveTable, title: str) -> str:
     """Curve and points (top); points relative to the curve with the curve's ±U band (bottom)."""
-    from service.plots import plt, to_svg
+    from service.render.plots import plt, to_svg
 
     curve = fit.curve
     lo, hi = curve.resistance_range_ohm
@@ -469,7 +469,7 @@ def curve_svg(fit: sensors.CalibrationFit, table: sensors.CurveTable, title: str
 
 
 @dataclass
-class SensorOutcome(thermometry.JobOutcome):
+class SensorOutcome(CalibrationOutcome):
     html_sections: list[str] = field(default_factory=list)
 
 
@@ -620,14 +620,14 @@ def analyse(
     try:
         fit = sensors.fit_calibration_curve(data, degree=degree, criterion=criterion)
     except sensors.CalibrationFitError as exc:
-        raise thermometry.CertificationRefused(f"calibration curve: {exc}") from None
+        raise CertificationRefused(f"calibration curve: {exc}") from None
     if fit.degrees_of_freedom > 0:
         p_value = float(stats.chi2.sf(fit.chi_squared, fit.degrees_of_freedom))
         if p_value < REFUSE_CHI2_P_VALUE:
             # Enlarging by the Birge ratio covers random excess scatter, not a curve that cannot
             # follow the points: that needs more points, a fixed higher degree or a look at the
             # points themselves, not a certificate.
-            raise thermometry.CertificationRefused(
+            raise CertificationRefused(
                 f"calibration curve: the degree-{fit.degree} curve misses the points far beyond "
                 f"their uncertainties (chi2 = {fit.chi_squared:.3g} for {fit.degrees_of_freedom} "
                 f"degrees of freedom, p = {p_value:.1e}; largest normalised residual "
@@ -1019,60 +1019,3 @@ def convert_log(
         out.write(",".join(cells) + "\n")
     n_out = int(np.sum(~result.in_range))
     return out.getvalue().encode("utf-8"), int(r.size - n_out), n_out
-
-
-def add_commands(sub) -> None:
-    """Register ``coldcert sensor-temperatures``."""
-    p = sub.add_parser(
-        "sensor-temperatures",
-        help="convert a fridge-sensor resistance log to temperatures with a calibration certificate",
-    )
-    p.add_argument("certificate", help="certificate.json of a sensor calibration (or its folder)")
-    p.add_argument("log", help="CSV with a resistance_ohm column (other columns are copied)")
-    p.add_argument("--out", required=True, help="CSV file to write")
-    p.add_argument(
-        "--reading-relative-u",
-        type=float,
-        default=0.0,
-        help="relative standard uncertainty of each resistance reading (default 0)",
-    )
-    p.add_argument(
-        "--skip-out-of-range",
-        action="store_true",
-        help="leave readings outside the calibrated range empty instead of refusing the log",
-    )
-    p.set_defaults(handler=cmd_sensor_temperatures)
-
-
-def cmd_sensor_temperatures(args) -> int:
-    from service.cli import CommandError
-    from service.commands import write_atomically
-
-    if not (math.isfinite(args.reading_relative_u) and 0 <= args.reading_relative_u < 1):
-        raise CommandError("--reading-relative-u must be a number in [0, 1)")
-    try:
-        record = load_certificate(args.certificate)
-        log_path = Path(args.log)
-        try:
-            raw = log_path.read_bytes()
-        except OSError as exc:
-            raise CommandError(f"{log_path}: cannot read ({exc.strerror})") from None
-        log = parse_csv(log_path.name, raw)
-        csv, n_in, n_out = convert_log(
-            record,
-            log,
-            reading_relative_u=args.reading_relative_u,
-            skip_out_of_range=args.skip_out_of_range,
-            source=str(args.certificate),
-        )
-    except IntakeError as exc:
-        raise CommandError(exc.describe()) from None
-    except CertificateError as exc:
-        raise CommandError(str(exc)) from None
-    out = Path(args.out)
-    write_atomically(out.parent if str(out.parent) else Path("."), {out.name: csv})
-    msg = f"{n_in} reading(s) converted to {out}"
-    if n_out:
-        msg += f"; {n_out} outside the calibrated range left empty"
-    print(msg)
-    return 0

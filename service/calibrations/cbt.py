@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, replace
 
 from scipy import stats
 
@@ -33,8 +33,9 @@ from analysis.cbt.models import (
     higher_order_shape,
 )
 from analysis.cbt.uncertainty import TypeBInputs, temperature_budget
+from service.calibrations.outcome import CalibrationOutcome, CertificationRefused
 from service.intake import IntakeError, Run, check_cbt_sweep, is_cbt_sweep, manifest_number
-from service.plots import sweep_fit_svg
+from service.render.plots import sweep_fit_svg
 
 Progress = Callable[[float, str], None]
 
@@ -45,24 +46,6 @@ WARN_RANGE_HALF_WIDTHS = 4.0
 RESIDUAL_CORRELATION_LIMIT = 0.3
 #: Relative electron heating at the half-depth bias above which a sweep is flagged.
 HEATING_WARNING = 0.10
-
-
-class CertificationRefused(Exception):
-    """The analysis ran but its result must not go on a certificate; message says why."""
-
-
-@dataclass
-class JobOutcome:
-    """What a job hands to the certificate builder."""
-
-    results: list[dict]
-    sections: dict = field(default_factory=dict)
-    plots: dict[str, str] = field(default_factory=dict)
-    diagnostics: dict = field(default_factory=dict)
-    deviations: list[str] = field(default_factory=list)
-    method: dict = field(default_factory=dict)
-    conditions: dict = field(default_factory=dict)
-    extra_files: dict[str, bytes] = field(default_factory=dict)
 
 
 def heating_model(manifest: dict) -> tuple[HeatingModel | None, float]:
@@ -310,7 +293,7 @@ def global_section(g: GlobalFit, works: list[SweepWork]) -> dict:
     }
 
 
-def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = False) -> JobOutcome:
+def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = False) -> CalibrationOutcome:
     """Analyse every sweep of a thermometry run independently (each with its own derived seed)."""
     manifest = run.manifest
     p = manifest_number(manifest, "run.coverage_probability", 0.95, 0.5, 0.9999)
@@ -322,7 +305,7 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
     inputs = replace(inputs, coupling_relative_u=coupling_u)
     settings = fit_settings(manifest, fast)
     sweeps = [f for f in run.files if is_cbt_sweep(f)]
-    outcome = JobOutcome(results=[])
+    outcome = CalibrationOutcome(results=[])
     works = []
     for k, f in enumerate(sweeps):
         def sub(frac: float, step: str, k=k, name=f.name) -> None:

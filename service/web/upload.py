@@ -27,7 +27,7 @@ from sqlalchemy import select
 
 from service import storage as st
 from service.archive import Archive
-from service.jobs import enqueue, new_id
+from service.queue.jobs import enqueue, new_id
 from service.storage import Storage
 
 ARCHIVE_SUFFIXES = (".zip", ".tar", ".tar.gz", ".tgz", ".tar.bz2", ".tar.xz")

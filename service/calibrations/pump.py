@@ -28,6 +28,7 @@ from analysis.pump import counting
 from analysis.pump import plateau as P
 from analysis.pump import record as R
 from analysis.pump.quantized import MAX_ELECTRONS_PER_CYCLE, nominal_current
+from service.calibrations.outcome import CalibrationOutcome, CertificationRefused
 from service.intake import (
     DataFile,
     IntakeError,
@@ -38,7 +39,6 @@ from service.intake import (
     real_parser,
     register_keys,
 )
-from service.thermometry import CertificationRefused, JobOutcome
 
 Progress = Callable[[float, str], None]
 
@@ -273,14 +273,14 @@ def check_record(f: DataFile, settling: R.SettlingRule) -> None:
 
 
 def _svg(fig) -> str:
-    from service.plots import to_svg
+    from service.render.plots import to_svg
 
     return to_svg(fig)
 
 
 def _plt():
-    # service.plots selects the Agg backend and stable SVG ids before pyplot is used.
-    from service.plots import plt
+    # service.render.plots selects the Agg backend and stable SVG ids before pyplot is used.
+    from service.render.plots import plt
 
     return plt
 
@@ -690,7 +690,7 @@ def html_sections(stmt: str, pump: dict, scans: list[dict], records: list[dict],
 # The job
 
 
-def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = False) -> JobOutcome:
+def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = False) -> CalibrationOutcome:
     """Analyse every record and scan of a pump run (each with its own derived seed)."""
     manifest = run.manifest
     records = [f for f in run.files if is_record(f)]
@@ -706,7 +706,7 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
                           "time_s,current_A,pump_on; plateau scans alone give a model prediction only")
     chain = ammeter_chain(manifest)
     rate = error_counts(manifest)
-    outcome = JobOutcome(results=[])
+    outcome = CalibrationOutcome(results=[])
     total = len(records) + len(scans)
     scan_sections: list[dict] = []
     conditions: list[dict] = []

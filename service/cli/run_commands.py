@@ -7,7 +7,7 @@ import sys
 import tempfile
 from pathlib import Path
 
-from service.cli import CommandError
+from service.cli.main import CommandError
 from service.intake import IntakeError, load_run
 
 
@@ -88,8 +88,8 @@ def write_atomically(folder: Path, files: dict[str, bytes]) -> None:
 
 
 def cmd_certify(args) -> int:
-    from service.certify import certify_run
-    from service.thermometry import CertificationRefused
+    from service.calibrations.certify import certify_run
+    from service.calibrations.outcome import CertificationRefused
 
     bar = ProgressBar()
     try:
