@@ -62,7 +62,7 @@ class Cluster:
             "".join(f"{key} = {value!r}\n" for key, value in self.worker_config.items())
         )
         env = {**os.environ, "OPENBLAS_NUM_THREADS": "1", "PYTHONPATH": str(REPO)}
-        command = [sys.executable, "-m", "service.cli", "work", "--quick", "--processes", "1"]
+        command = [sys.executable, "-m", "service.cli.main", "work", "--quick", "--processes", "1"]
         command += ["--instance", str(folder), "--database", self.database]
         command += ["--broker", self.broker]
         proc = subprocess.Popen(
@@ -74,6 +74,14 @@ class Cluster:
             start_new_session=True,  # its own process group: the test can kill the whole worker
         )
         self.workers.append(proc)
+        # Ready when it answers the broker's ping (the health endpoint's "workers seen").
+        live = sum(1 for w in self.workers if w.poll() is None)
+        deadline = time.monotonic() + 120
+        while len(self.lab.services.engine.workers_seen(fresh=True)) < live:
+            if proc.poll() is not None or time.monotonic() > deadline:
+                log = (folder / "worker.log").read_text()[-3000:]
+                pytest.fail(f"worker {name} did not start (exit {proc.poll()}):\n{log}")
+            time.sleep(0.3)
         return proc
 
     def drafts_of(self, run_id: str) -> int:

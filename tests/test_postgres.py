@@ -50,6 +50,29 @@ def _people(storage: Storage) -> dict[str, dict]:
     return people
 
 
+def _complete_record(value: float) -> dict:
+    """A stand-in record stating everything ISO/IEC 17025 7.8.2.1 asks for, so it can be issued."""
+    return {
+        "title": "Calibration certificate",
+        "laboratory": {"name": "Server Test Lab", "address": "1 Test Road"},
+        "customer": {"name": "A", "address": "North Road"},
+        "item": {"description": "test thermometer", "identifier": "T-1"},
+        "dates": {"measured": "2026-11-24"},
+        "method": {"description": "stand-in record for the storage tests"},
+        "results": [
+            {
+                "name": "electron temperature",
+                "value": value,
+                "unit": "K",
+                "standard_uncertainty": 0.001,
+                "expanded_uncertainty": 0.002,
+                "coverage_factor": 2.0,
+                "coverage_probability": 0.95,
+            }
+        ],
+    }
+
+
 def test_lifecycle_chain_and_verify_on_postgresql(server_storage, tmp_path):
     storage = server_storage
     archive = Archive(storage, LabKey.load_or_create(tmp_path / "keys"))
@@ -75,14 +98,13 @@ def test_lifecycle_chain_and_verify_on_postgresql(server_storage, tmp_path):
                     seed=n,
                     software={},
                     submitter=people["olga"],
-                    record={
-                        "results": [{"value": 0.1 * n, "unit": "K"}],
-                        "customer": {"name": "A"},
-                    },
+                    record=_complete_record(0.1 * n),
                 )
             )
         archive.issue(ids[-1], people["arno"])
-    amended = archive.amend(ids[0], people["olga"], "name", {"customer": {"name": "B"}})
+    amended = archive.amend(
+        ids[0], people["olga"], "name", {"customer": {"name": "B", "address": "North Road"}}
+    )
     archive.issue(amended, people["arno"])
     archive.withdraw(ids[1], people["arno"], "damaged")
     for cert in ids + [amended]:

@@ -260,10 +260,11 @@ class EngineQueue:
 
     # ---- health ----------------------------------------------------------------------------
 
-    def workers_seen(self) -> list[str]:
-        """Names of the engine workers that answered a ping (cached for a few seconds)."""
+    def workers_seen(self, fresh: bool = False) -> list[str]:
+        """Names of the workers that answered a ping (cached a few seconds unless ``fresh``)."""
         with self._lock:
-            if self._ping and time.monotonic() - self._ping[0] < self.PING_CACHE_SECONDS:
+            recent = self._ping and time.monotonic() - self._ping[0] < self.PING_CACHE_SECONDS
+            if recent and not fresh:
                 return self._ping[1]
         replies = self.celery.control.ping(timeout=1.0) or []
         names = sorted(name for reply in replies for name in reply)
