@@ -40,7 +40,11 @@ from sqlalchemy import func, select  # noqa: E402
 
 from service import storage as st  # noqa: E402
 from service.queue.jobs import enqueue  # noqa: E402
-from tests.service_support import make_lab, small_run_files  # noqa: E402
+from tests.service_support import (  # noqa: E402
+    make_lab,
+    reset_server_database,
+    small_run_files,
+)
 
 FAKE = "tests.fake_analysis:misbehaving_certify"
 
@@ -64,7 +68,13 @@ def _wait_all(storage, job_ids: list[str], timeout: float) -> None:
             ).all()
         counts = dict(rows)
         if counts.get("failed"):
-            raise RuntimeError(f"{counts['failed']} job(s) failed; see the jobs table")
+            with storage.read() as conn:
+                error = conn.execute(
+                    select(st.jobs.c.error).where(
+                        st.jobs.c.id.in_(job_ids), st.jobs.c.status == "failed"
+                    )
+                ).scalar()
+            raise RuntimeError(f"{counts['failed']} job(s) failed, e.g.: {error}")
         if counts.get("done", 0) == len(job_ids):
             return
         time.sleep(0.05)
@@ -108,20 +118,23 @@ def _timed(lab, certificates: list[str], warmup: list[str], timeout: float) -> f
     return time.perf_counter() - start
 
 
-def _engine_workers(lab, folder: Path, database: str, broker: str, count: int):
-    folder.mkdir(parents=True, exist_ok=True)
-    (folder / "config.py").write_text(f"CERTIFY = {FAKE!r}\nBLOB_STORE = 'auto'\n")
+def _engine_workers(lab, log_path: Path, database: str, broker: str, count: int):
+    # The web side's instance folder: with SQLite the workers share its database file and blob
+    # folder (one machine); with PostgreSQL they need only the URLs.
+    instance = Path(lab.app.instance_path)
+    (instance / "config.py").write_text(f"CERTIFY = {FAKE!r}\n")
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
-    command = [sys.executable, "-m", "service.cli.main", "work", "--quick", "--processes", str(count)]
-    command += ["--instance", str(folder), "--database", database, "--broker", broker]
-    log = open(folder / "worker.log", "w")  # noqa: SIM115 - closed after the process
+    command = [sys.executable, "-m", "service.cli.main", "work", "--quick"]
+    command += ["--processes", str(count), "--instance", str(instance)]
+    command += ["--database", database, "--broker", broker]
+    log = open(log_path, "w")  # noqa: SIM115 - closed after the process
     proc = subprocess.Popen(
         command, cwd=ROOT, env=env, stdout=log, stderr=log, start_new_session=True
     )
     deadline = time.monotonic() + 120
     while not lab.services.engine.workers_seen(fresh=True):
         if time.monotonic() > deadline or proc.poll() is not None:
-            raise RuntimeError(f"engine worker did not start; see {folder / 'worker.log'}")
+            raise RuntimeError(f"engine worker did not start; see {log_path}")
         time.sleep(0.5)
     return proc, log
 
@@ -158,12 +171,7 @@ def main() -> None:
             root = Path(tmp)
             config = {"CERTIFY": FAKE, "BROKER_URL": None}
             if args.database:
-                from service.storage import Storage
-
-                storage = Storage(args.database, None)
-                with storage.engine.begin() as conn:
-                    st.metadata.drop_all(conn)
-                storage.dispose()
+                reset_server_database(args.database)
                 config["DATABASE_URL"] = args.database
             lab = make_lab(root / "web", **config)
             database = lab.services.worker_settings.database_url
@@ -204,7 +212,7 @@ def main() -> None:
             )
             for count in (1, 2):
                 proc, log = _engine_workers(
-                    lab, root / f"worker-{count}", database, args.broker, count
+                    lab, root / f"worker-{count}.log", database, args.broker, count
                 )
                 try:
                     seconds = _timed(lab, certificates, warmup[:count], args.timeout)

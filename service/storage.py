@@ -40,6 +40,7 @@ from sqlalchemy import (
     Text,
     create_engine,
     event,
+    inspect,
     select,
 )
 from sqlalchemy.exc import IntegrityError
@@ -174,8 +175,9 @@ certificates = Table(
     Column("withdrawn_at", String(40), nullable=True),
     # The job that drafted it (None for amendments). Unique: a job delivered twice by the queue
     # can never leave two drafts.
-    Column("job_id", String(40), nullable=True, unique=True),
+    Column("job_id", String(40), nullable=True),
 )
+Index("ux_certificates_job_id", certificates.c.job_id, unique=True)
 Index(
     "ix_certificates_search", certificates.c.state, certificates.c.kind, certificates.c.created_at
 )
@@ -216,10 +218,10 @@ counters = Table(
     Column("value", Integer, nullable=False),
 )
 
-# Rows that must never change once written. SQLite triggers turn an UPDATE or DELETE into an
-# error, so even a bug (or a careless hand in the database shell) cannot rewrite history
-# silently; verify() still catches edits made with the triggers dropped.
-_APPEND_ONLY_TABLES = ("chain", "events")
+# Rows of ``chain`` and ``events`` must never change once written. On SQLite, triggers made by the
+# baseline migration turn an UPDATE or DELETE into an error, so even a bug (or a careless hand in
+# the database shell) cannot rewrite history silently; verify() still catches edits made with the
+# triggers dropped.
 
 
 def utc_now() -> str:
@@ -393,16 +395,34 @@ class Storage:
         return self.engine.dialect.name == "sqlite"
 
     def create_schema(self) -> None:
-        metadata.create_all(self.engine)
-        if self.is_sqlite:
-            with self.engine.begin() as conn:
-                for table in _APPEND_ONLY_TABLES:
-                    for verb in ("UPDATE", "DELETE"):
-                        conn.exec_driver_sql(
-                            f"CREATE TRIGGER IF NOT EXISTS {table}_no_{verb.lower()} "
-                            f"BEFORE {verb} ON {table} BEGIN "
-                            f"SELECT RAISE(ABORT, '{table} is append-only'); END"
-                        )
+        """Bring the database to the newest schema revision (service/migrations), on every start.
+
+        A new database gets the baseline and every later revision. A database made before
+        migrations existed has today's baseline tables but no ``alembic_version`` table; it is
+        stamped at the baseline and then upgraded, so archives outlive releases.
+        """
+        from alembic import command
+
+        with self.engine.begin() as conn:
+            config = _alembic_config(conn)
+            tables = set(inspect(conn).get_table_names())
+            if "alembic_version" not in tables and "certificates" in tables:
+                missing = {t.name for t in metadata.sorted_tables if t.name in BASELINE_TABLES} - tables
+                if missing:
+                    raise RuntimeError(
+                        f"{self.database_url}: an unversioned database without the tables "
+                        f"{', '.join(sorted(missing))}; it was not made by coldcert"
+                    )
+                logger.info("database made before schema migrations: stamping the baseline")
+                command.stamp(config, BASELINE_REVISION)
+            command.upgrade(config, "head")
+
+    def schema_revision(self) -> str | None:
+        """The schema revision recorded in the database (None before ``create_schema``)."""
+        with self.engine.connect() as conn:
+            if "alembic_version" not in inspect(conn).get_table_names():
+                return None
+            return conn.exec_driver_sql("SELECT version_num FROM alembic_version").scalar()
 
     @contextlib.contextmanager
     def read(self) -> Iterator[Connection]:
@@ -438,6 +458,22 @@ class Storage:
 
     def dispose(self) -> None:
         self.engine.dispose()
+
+
+#: The first revision; databases older than migrations have exactly its tables.
+BASELINE_REVISION = "0001_baseline"
+BASELINE_TABLES = frozenset({"users", "api_tokens", "blobs", "runs", "run_files", "jobs",
+                             "certificates", "chain", "events", "counters"})
+
+
+def _alembic_config(connection: Connection):
+    """Alembic settings for the migrations shipped in the package, on an open connection."""
+    from alembic.config import Config
+
+    config = Config()
+    config.set_main_option("script_location", str(Path(__file__).parent / "migrations"))
+    config.attributes["connection"] = connection
+    return config
 
 
 def _make_engine(database_url: str) -> Engine:

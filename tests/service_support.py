@@ -174,3 +174,18 @@ def server_url(variable: str, scheme: str, purpose: str) -> str:
     if os.environ.get("CI") == "true":
         pytest.fail(reason + "; CI must supply it")
     pytest.skip(reason)
+
+
+def reset_server_database(url: str) -> None:
+    """Empty a test database server's schema (every table and the migration version), so the
+    next ``create_schema`` builds it from the first migration."""
+    from sqlalchemy import text
+
+    from service import storage as st
+    from service.storage import Storage
+
+    storage = Storage(url, None)
+    with storage.engine.begin() as conn:
+        st.metadata.drop_all(conn)
+        conn.execute(text("DROP TABLE IF EXISTS alembic_version"))
+    storage.dispose()

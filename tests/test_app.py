@@ -489,11 +489,14 @@ def test_every_documented_route_answers_as_documented(lab, issued):
         ("PATCH", "/api/users/{username}"): {"roles": "operator"},
         ("POST", "/api/certificates/{certificate_id}/withdraw"): {"reason": "route check"},
         ("POST", "/api/certificates/{certificate_id}/amend"): {"reason": "route check"},
+        ("POST", "/api/certificates/{certificate_id}/corrections"): {
+            "corrections": {"customer": {"name": "Route Check"}}
+        },
     }
     person = {"operator": "olga", "approver": "bea", "auditor": "aude", "admin": "adam"}
     # Issue and withdraw act on a fresh draft, the rest on a fresh issued certificate, so that
     # every call can succeed whatever other tests did to the shared one.
-    first, second = (lab.upload(client).get_json()["job_id"] for _ in range(2))
+    first, second, third = (lab.upload(client).get_json()["job_id"] for _ in range(3))
     draft = lab.wait(client, first)["certificate_id"]
     cert = lab.wait(client, second)["certificate_id"]
     assert (
@@ -510,6 +513,8 @@ def test_every_documented_route_answers_as_documented(lab, issued):
                 concrete = concrete.replace("{" + name + "}", value)
             if path.endswith(("/issue", "/withdraw")):
                 concrete = concrete.replace(cert, draft)
+            if path.endswith("/corrections"):  # a draft of its own (the other is withdrawn)
+                concrete = concrete.replace(cert, lab.wait(client, third)["certificate_id"])
             roles = op["x-roles"]
             headers = lab.headers(person[roles[0]]) if roles else {}
             kwargs = {"json": bodies.get(key, {})} if method != "get" else {}

@@ -126,3 +126,27 @@ def test_read_only_commands_never_create_an_instance(tmp_path, monkeypatch, caps
     missing = tmp_path / "elsewhere"
     assert main([*argv, "--instance", str(missing)]) == 2
     assert str(missing) in capsys.readouterr().err and not missing.exists()
+
+
+def test_same_bytes_whatever_the_number_of_workers(tmp_path):
+    # Sweeps are fitted on worker processes, each with its own seed: one process or two must
+    # give the same certificate, byte for byte (quick-look rule to keep the test short).
+    run = tmp_path / "run"
+    run.mkdir()
+    for name in ("sweep_04_120mK.csv", "sweep_05_250mK.csv"):
+        shutil.copy(EXAMPLE / name, run)
+    outs = {}
+    for workers in ("1", "2"):
+        outs[workers] = tmp_path / f"w{workers}"
+        argv = ["certify", str(run), "--out", str(outs[workers]), "--quick", "--seed", "11",
+                "--workers", workers]
+        assert main(argv) == 0
+    for name in ("certificate.json", "certificate.html"):
+        assert (outs["1"] / name).read_bytes() == (outs["2"] / name).read_bytes()
+    assert len(json.loads((outs["1"] / "certificate.json").read_text())["results"]) == 2
+
+
+def test_workers_must_be_a_positive_number(tmp_path, capsys):
+    with pytest.raises(SystemExit):
+        main(["certify", str(EXAMPLE), "--out", str(tmp_path / "x"), "--workers", "0"])
+    assert "--workers" in capsys.readouterr().err

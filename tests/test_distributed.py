@@ -23,7 +23,7 @@ from sqlalchemy import func, select
 
 from service import storage as st
 from service.archive import SERVICE_FIELDS, canonical_json
-from tests.service_support import make_lab, server_url, small_run_files
+from tests.service_support import make_lab, reset_server_database, server_url, small_run_files
 
 REPO = Path(__file__).resolve().parents[1]
 FAKE = "tests.fake_analysis:misbehaving_certify"
@@ -108,13 +108,8 @@ class Cluster:
 def _reset(database: str, broker: str) -> None:
     import redis
 
-    from service.storage import Storage
-
     redis.Redis.from_url(broker).flushdb()
-    storage = Storage(database, None)
-    with storage.engine.begin() as conn:
-        st.metadata.drop_all(conn)
-    storage.dispose()
+    reset_server_database(database)
 
 
 @pytest.fixture()

@@ -17,20 +17,18 @@ from service import storage as st
 from service.archive import Archive, LabKey
 from service.queue.jobs import claim, enqueue
 from service.storage import Storage, utc_now
-from tests.service_support import server_url
+from tests.service_support import reset_server_database, server_url
 
 
 @pytest.fixture()
 def server_storage(tmp_path):
     url = server_url("COLDCERT_TEST_DATABASE_URL", "postgresql", "test the storage on a server")
+    reset_server_database(url)
     storage = Storage(url, tmp_path / "blobs")
-    with storage.engine.begin() as conn:
-        st.metadata.drop_all(conn)
     storage.create_schema()
     yield storage
-    with storage.engine.begin() as conn:
-        st.metadata.drop_all(conn)
     storage.dispose()
+    reset_server_database(url)
 
 
 def _people(storage: Storage) -> dict[str, dict]:

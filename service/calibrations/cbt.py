@@ -8,13 +8,11 @@ for the certificate record.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Callable
 from dataclasses import dataclass, replace
 
 from scipy import stats
 
-from analysis.budget import round_for_report
 from analysis.cbt.choice import ModelChoice, fit_sweep_chosen
 from analysis.cbt.fit import (
     FitSettings,
@@ -34,13 +32,15 @@ from analysis.cbt.models import (
 )
 from analysis.cbt.uncertainty import TypeBInputs, temperature_budget
 from service.calibrations.outcome import CalibrationOutcome, CertificationRefused
+from service.calibrations.parallel import run_pieces
 from service.intake import IntakeError, Run, check_cbt_sweep, is_cbt_sweep, manifest_number
+from service.record.results import result_entry
 from service.render.plots import sweep_fit_svg
 
 Progress = Callable[[float, str], None]
 
 #: Below this many bias half-widths on each side a warning goes into the diagnostics (the
-#: asymptote is then fixed only to ~1e-4 of the depth; PHYSICS.md 1.4).
+#: asymptote is then fixed only to ~1e-4 of the depth; docs/physics.md §1.4).
 WARN_RANGE_HALF_WIDTHS = 4.0
 #: Lag-1 autocorrelation of residuals above which the fit is flagged as structured.
 RESIDUAL_CORRELATION_LIMIT = 0.3
@@ -55,9 +55,9 @@ def heating_model(manifest: dict) -> tuple[HeatingModel | None, float]:
     with ``island_volume_m3`` (Ω); ``coupling_relative_u`` (default 0.3: Σ is rarely known
     better, common practice, no source) and ``heat_leak_W`` (default 0).
     """
-    coupling = manifest_number(manifest, "device.coupling_W_per_K5", None, 0.0)
-    sigma = manifest_number(manifest, "device.electron_phonon_constant_W_per_K5_m3", None, 0.0)
-    volume = manifest_number(manifest, "device.island_volume_m3", None, 0.0)
+    coupling = manifest_number(manifest, "device.coupling_W_per_K5", None)
+    sigma = manifest_number(manifest, "device.electron_phonon_constant_W_per_K5_m3", None)
+    volume = manifest_number(manifest, "device.island_volume_m3", None)
     if coupling is None and sigma is not None and volume is not None:
         coupling = sigma * volume
     if coupling is None:
@@ -67,16 +67,16 @@ def heating_model(manifest: dict) -> tuple[HeatingModel | None, float]:
         return None, 0.0
     if coupling <= 0:
         raise IntakeError("expected a positive coupling", file="run.toml", field="device.coupling_W_per_K5")
-    leak = manifest_number(manifest, "device.heat_leak_W", 0.0, 0.0)
-    rel = manifest_number(manifest, "device.coupling_relative_u", 0.3, 0.0, 1.0)
+    leak = manifest_number(manifest, "device.heat_leak_W", 0.0)
+    rel = manifest_number(manifest, "device.coupling_relative_u", 0.3)
     return HeatingModel(coupling, 0.0, leak), rel
 
 
 def type_b_inputs(manifest: dict, coverage_probability: float) -> TypeBInputs:
     """Type B inputs from run.toml's [instruments] and [device] sections (docs/formats.md)."""
-    gain = manifest_number(manifest, "instruments.bias_scale_relative_u", None, 0.0, 0.5)
-    exc = manifest_number(manifest, "instruments.excitation_relative_u", None, 0.0, 1.0)
-    spread = manifest_number(manifest, "device.resistance_spread", None, 0.0, 0.5)
+    gain = manifest_number(manifest, "instruments.bias_scale_relative_u", None)
+    exc = manifest_number(manifest, "instruments.excitation_relative_u", None)
+    spread = manifest_number(manifest, "device.resistance_spread", None)
     rs_u = manifest_number(manifest, "device.series_resistance_u_ohm", 0.0)
     return TypeBInputs(
         bias_scale_relative_u=1e-3 if gain is None else gain,
@@ -173,7 +173,7 @@ def fit_file(f, seed: int, settings: FitSettings, shape: DipShape | None = None,
     return SweepWork(f, data, rs, fit, warnings, shape, choice.reason)
 
 
-def result_entry(work: SweepWork, inputs: TypeBInputs,
+def sweep_result(work: SweepWork, inputs: TypeBInputs,
                  global_note: str | None = None) -> tuple[dict, str]:
     """The certificate's result entry and fit plot for one sweep (independent or global)."""
     f, fit, data = work.file, work.fit, work.data
@@ -183,24 +183,14 @@ def result_entry(work: SweepWork, inputs: TypeBInputs,
         inputs = replace(inputs, series_resistance_ohm=work.rs)
     shape = work.shape
     budget, _ = temperature_budget(fit, shape, setup, inputs, posterior_note=global_note, data=data)
-    value_s, u_s = round_for_report(budget.estimate, budget.combined_standard_uncertainty)
-    _, U_s = round_for_report(budget.estimate, budget.expanded_uncertainty)
-    entry = {
-        "name": "electron temperature",
-        "sweep": f.name,
-        "quantity": "T_e",
-        "value": budget.estimate,
-        "unit": "K",
-        "standard_uncertainty": budget.combined_standard_uncertainty,
-        "expanded_uncertainty": budget.expanded_uncertainty,
-        "coverage_factor": budget.coverage_factor,
-        "coverage_probability": budget.coverage_probability,
-        "effective_degrees_of_freedom": None
-        if math.isinf(budget.effective_degrees_of_freedom) else budget.effective_degrees_of_freedom,
-        "reported": {"value": value_s, "standard_uncertainty": u_s, "expanded_uncertainty": U_s, "unit": "K"},
-        "budget": budget.as_dict(),
-        "model": shape.name,
-        "fit": {
+    entry = result_entry(
+        name="electron temperature",
+        sweep=f.name,
+        quantity="T_e",
+        unit="K",
+        budget=budget,
+        model=shape.name,
+        fit={
             "junctions_in_series": setup.junctions_in_series,
             "parallel_rows": md.get("parallel_rows", 1),
             "excitation_rms_V": setup.excitation_rms_V,
@@ -228,7 +218,7 @@ def result_entry(work: SweepWork, inputs: TypeBInputs,
                 "relative_heating_at_half_depth_bias": fit.heating_at_half_width,
             },
         },
-        "diagnostics": {
+        diagnostics={
             "posterior": fit.posterior.diagnostics(),
             "bias_reach_half_widths": fit.diagnostics["bias_reach_half_widths"],
             "lag1_residual_correlation": fit.lag1_residual_correlation,
@@ -236,8 +226,8 @@ def result_entry(work: SweepWork, inputs: TypeBInputs,
             "model_choice": work.model_reason,
             "warnings": work.warnings,
         },
-    }
-    title = f"{f.name}: T = {value_s} K, u = {fit.u:.3f}"
+    )
+    title = f"{f.name}: T = {entry['reported']['value']} K, u = {fit.u:.3f}"
     svg = sweep_fit_svg(data.bias, data.conductance, fit.model_curve, title)
     return entry, svg
 
@@ -293,10 +283,15 @@ def global_section(g: GlobalFit, works: list[SweepWork]) -> dict:
     }
 
 
+def _fit_piece(piece, report: Progress) -> SweepWork:
+    f, seed, settings, heating, background = piece
+    return fit_file(f, seed, settings, None, report, heating, background)
+
+
 def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = False) -> CalibrationOutcome:
     """Analyse every sweep of a thermometry run independently (each with its own derived seed)."""
     manifest = run.manifest
-    p = manifest_number(manifest, "run.coverage_probability", 0.95, 0.5, 0.9999)
+    p = manifest_number(manifest, "run.coverage_probability", 0.95)
     inputs = type_b_inputs(manifest, p)
     heating, coupling_u = heating_model(manifest)
     background = manifest.get("run", {}).get("linear_background", False)
@@ -306,13 +301,17 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
     settings = fit_settings(manifest, fast)
     sweeps = [f for f in run.files if is_cbt_sweep(f)]
     outcome = CalibrationOutcome(results=[])
-    works = []
-    for k, f in enumerate(sweeps):
-        def sub(frac: float, step: str, k=k, name=f.name) -> None:
-            if progress:
-                progress(0.95 * (k + frac) / len(sweeps), f"{name}: {step}")
+    # Sweeps are independent (each with its own seed, seed + k): fitted side by side on worker
+    # processes, with identical results whatever their number (service/calibrations/parallel.py).
+    done = [0.0] * len(sweeps)
 
-        works.append(fit_file(f, seed + k, settings, None, sub, heating, background))
+    def sub(k: int, frac: float, step: str) -> None:
+        done[k] = frac
+        if progress:
+            progress(0.95 * sum(done) / len(sweeps), f"{sweeps[k].name}: {step}")
+
+    pieces = [(f, seed + k, settings, heating, background) for k, f in enumerate(sweeps)]
+    works = run_pieces(_fit_piece, pieces, sub)
     notes: list[str | None] = [None] * len(works)
     if one_device(works):
         if progress:
@@ -335,7 +334,7 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
                 f"{w.file.name}: u = {w.fit.u:.2f} after the global fit lies beyond the validated range of "
                 f"the {w.shape.name} model (u ≤ {w.shape.max_u:g})"
             )
-        entry, svg = result_entry(w, inputs, note)
+        entry, svg = sweep_result(w, inputs, note)
         outcome.results.append(entry)
         outcome.plots[f"fit-{w.file.name}"] = svg
     outcome.diagnostics["convergence_rule"] = {

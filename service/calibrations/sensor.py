@@ -15,35 +15,34 @@ the curve stored in a certificate (``coldcert sensor-temperatures``).
 
 from __future__ import annotations
 
-import html
 import io
 import math
 from collections.abc import Callable
-from dataclasses import dataclass, field
-from datetime import UTC, datetime
+from dataclasses import dataclass
+from datetime import datetime
 from pathlib import Path
 
 import numpy as np
 from scipy import stats
 
 from analysis import scales, sensors
-from analysis.budget import round_for_report
 from service.calibrations import cbt as thermometry
 from service.calibrations.outcome import CalibrationOutcome, CertificationRefused
 from service.intake import (
     DataFile,
     IntakeError,
-    KeySpec,
     Run,
     is_cbt_sweep,
+    manifest_field,
     manifest_number,
     real_parser,
-    register_keys,
 )
+from service.intake.table import iso_datetime
+from service.record.results import result_entry
+from service.record.terms import CALIBRATION_TABLE_HEADER, CRITERION_NAMES
 
 Progress = Callable[[float, str], None]
 
-TABLE_HEADER = "resistance_ohm,temperature_K,expanded_uncertainty_K"
 DEFAULT_TABLE_POINTS = 25
 #: Defaults used when run.toml does not state them (listed on the certificate as deviations).
 DEFAULT_BRIDGE_RELATIVE_U = 2e-4
@@ -53,31 +52,7 @@ DEFAULT_MELTING_PRESSURE_U_PA = 50.0
 REFUSE_CHI2_P_VALUE = 1e-4
 
 
-def _iso_datetime(text: str) -> datetime:
-    try:
-        value = datetime.fromisoformat(text.strip().replace("Z", "+00:00"))
-    except ValueError:
-        raise ValueError(
-            f"expected an ISO 8601 date-time such as 2026-11-24T09:00:00Z, got {text!r}"
-        ) from None
-    if value.tzinfo is None:
-        value = value.replace(tzinfo=UTC)
-    return value
-
-
 _positive_real = real_parser(0.0, lo_open=True)
-
-
-register_keys(
-    {
-        "melting_pressure_Pa": KeySpec(
-            _positive_real, "³He melting pressure read during the sweep (PLTS-2000 cross-check)"
-        ),
-        "time_origin": KeySpec(
-            lambda t: _iso_datetime(t).isoformat(), "ISO 8601 date-time at which time_s = 0"
-        ),
-    }
-)
 
 
 # --------------------------------------------------------------------------------------------
@@ -115,7 +90,7 @@ def _metadata_parsed(f: DataFile, key: str, parse):
 
 
 def _metadata_time(f: DataFile, key: str) -> datetime | None:
-    return _metadata_parsed(f, key, _iso_datetime)
+    return _metadata_parsed(f, key, iso_datetime)
 
 
 def _metadata_positive(f: DataFile, key: str) -> float | None:
@@ -372,7 +347,7 @@ def curve_from_record(record: dict, source: str = "certificate.json") -> sensors
 
 def _table_bytes(resistance: np.ndarray, temperature: np.ndarray, expanded: np.ndarray) -> bytes:
     out = io.StringIO()
-    out.write(TABLE_HEADER + "\n")
+    out.write(CALIBRATION_TABLE_HEADER + "\n")
     for r, t, u in zip(resistance, temperature, expanded, strict=True):
         out.write(f"{r:.10g},{t:.10g},{u:.4g}\n")
     return out.getvalue().encode("utf-8")
@@ -468,23 +443,10 @@ def curve_svg(fit: sensors.CalibrationFit, table: sensors.CurveTable, title: str
 # The job
 
 
-@dataclass
-class SensorOutcome(CalibrationOutcome):
-    html_sections: list[str] = field(default_factory=list)
-
 
 def _manifest_text(manifest: dict, section: str) -> dict:
     body = manifest.get(section, {})
     return {k: v for k, v in body.items() if isinstance(v, str | int | float | bool)}
-
-
-def _manifest_int(manifest: dict, path: str, default: int, lo: int, hi: int) -> int:
-    value = manifest_number(manifest, path, None, lo, hi)
-    if value is None:
-        return default
-    if not float(value).is_integer():
-        raise IntakeError("expected a whole number", file="run.toml", field=path)
-    return int(value)
 
 
 def plts_cross_check(
@@ -556,22 +518,16 @@ def _global_correlation(section: dict | None, names: list[str]) -> np.ndarray | 
 
 def analyse(
     run: Run, seed: int, progress: Progress | None = None, fast: bool = False
-) -> SensorOutcome:
+) -> CalibrationOutcome:
     """Sensor calibration: CBT temperature per sweep (thermometry job), then the curve."""
     manifest = run.manifest
-    coverage = manifest_number(manifest, "run.coverage_probability", 0.95, 0.5, 0.9999)
-    bridge_u = manifest_number(manifest, "sensor.bridge_relative_u", None, 0.0, 0.1)
-    reading_u = manifest_number(manifest, "sensor.reading_relative_u", None, 0.0, 0.1)
-    pressure_u = manifest_number(manifest, "instruments.melting_pressure_u_Pa", None, 0.0, 1e5)
-    table_points = _manifest_int(manifest, "sensor.table_points", DEFAULT_TABLE_POINTS, 2, 10_000)
-    degree = manifest.get("sensor", {}).get("degree")
-    if degree is not None and (isinstance(degree, bool) or not isinstance(degree, int)):
-        raise IntakeError("expected a whole number", file="run.toml", field="sensor.degree")
-    criterion = manifest.get("sensor", {}).get("degree_criterion", "aicc")
-    if criterion not in ("aicc", "loo"):
-        raise IntakeError(
-            "expected 'aicc' or 'loo'", file="run.toml", field="sensor.degree_criterion"
-        )
+    coverage = manifest_number(manifest, "run.coverage_probability", 0.95)
+    bridge_u = manifest_number(manifest, "sensor.bridge_relative_u", None)
+    reading_u = manifest_number(manifest, "sensor.reading_relative_u", None)
+    pressure_u = manifest_number(manifest, "instruments.melting_pressure_u_Pa", None)
+    table_points = manifest_field(manifest, "sensor.table_points", DEFAULT_TABLE_POINTS)
+    degree = manifest_field(manifest, "sensor.degree")
+    criterion = manifest_field(manifest, "sensor.degree_criterion", "aicc")
 
     sweeps = [f for f in run.files if is_cbt_sweep(f)]
     if len(sweeps) < 4:
@@ -643,7 +599,7 @@ def analyse(
     table = curve.table(grid, coverage_probability=coverage)
     t_lo, t_hi = curve.temperature_range_K
 
-    outcome = SensorOutcome(results=[])
+    outcome = CalibrationOutcome(results=[])
     # The reference temperatures first (with the CBT fit plots), then the table.
     for f in sweeps:
         e = dict(entries[f.name])
@@ -652,32 +608,16 @@ def analyse(
         outcome.results.append(e)
     for i, r in enumerate(table.resistance_ohm):
         b = curve.budget(float(r), coverage_probability=coverage)
-        value_s, u_s = round_for_report(b.estimate, b.combined_standard_uncertainty)
-        _, big_u_s = round_for_report(b.estimate, b.expanded_uncertainty)
         outcome.results.append(
-            {
-                "name": "temperature from the calibration curve",
-                "sweep": f"sensor at R = {r:.6g} ohm",
-                "quantity": "T",
-                "resistance_ohm": float(r),
-                "value": b.estimate,
-                "unit": "K",
-                "standard_uncertainty": b.combined_standard_uncertainty,
-                "expanded_uncertainty": b.expanded_uncertainty,
-                "coverage_factor": b.coverage_factor,
-                "coverage_probability": b.coverage_probability,
-                "effective_degrees_of_freedom": None
-                if math.isinf(b.effective_degrees_of_freedom)
-                else b.effective_degrees_of_freedom,
-                "sensitivity_dlnR_dlnT": float(table.sensitivity_dlnR_dlnT[i]),
-                "reported": {
-                    "value": value_s,
-                    "standard_uncertainty": u_s,
-                    "expanded_uncertainty": big_u_s,
-                    "unit": "K",
-                },
-                "budget": b.as_dict(),
-            }
+            result_entry(
+                name="temperature from the calibration curve",
+                sweep=f"sensor at R = {r:.6g} ohm",
+                quantity="T",
+                unit="K",
+                budget=b,
+                resistance_ohm=float(r),
+                sensitivity_dlnR_dlnT=float(table.sensitivity_dlnR_dlnT[i]),
+            )
         )
     names = [f.name for f in sweeps]
     cross = plts_cross_check(
@@ -822,103 +762,11 @@ def analyse(
         **cbt.conditions,
         "sensor": _manifest_text(manifest, "sensor"),
     }
-    outcome.html_sections = [_html_section(section)]
     if progress:
         progress(1.0, "done")
     return outcome
 
 
-CRITERION_NAMES = {
-    "aicc": "AICc (corrected Akaike information criterion)",
-    "loo": "leave-one-out cross-validation",
-    "fixed degree": "the run manifest (fixed degree)",
-}
-
-
-def _html_section(section: dict) -> str:
-    e = html.escape
-
-    def g(x, d: int = 6) -> str:
-        return "—" if x is None else f"{x:.{d}g}"
-
-    rng = section["valid_range"]
-    fit = section["fit"]
-    parts = [
-        "<h2>Sensor calibration</h2>",
-        "<p>Sensor: " + e(", ".join(f"{k}: {v}" for k, v in section["sensor"].items())) + "</p>",
-        f"<p><b>Valid range</b>: {g(rng['resistance_ohm'][0])}–{g(rng['resistance_ohm'][1])} Ω, "
-        f"i.e. {g(rng['temperature_K'][0] * 1e3, 4)}–{g(rng['temperature_K'][1] * 1e3, 4)} mK. "
-        f"{e(rng['statement'])}.</p>",
-        f"<p>Curve: {e(section['curve']['form'])}; degree {fit['degree']} chosen by "
-        f"{e(CRITERION_NAMES.get(fit['degree_criterion'], fit['degree_criterion']))}; "
-        f"χ² = {g(fit['chi_squared'], 4)} for "
-        f"{fit['degrees_of_freedom']} degrees of freedom (Birge ratio {g(fit['birge_ratio'], 3)}). "
-        "Coefficients: " + ", ".join(g(c, 10) for c in section["curve"]["coefficients"]) + ".</p>",
-        "<h3>Calibration points</h3><table><tr><th>sweep</th><th>R (Ω)</th><th>T (K)</th>"
-        "<th>u(T)/T independent</th><th>residual ln T</th><th>normalised residual</th></tr>",
-    ]
-    for p in section["points"]:
-        parts.append(
-            f"<tr><td>{e(p['sweep'])}</td><td class=num>{g(p['resistance_ohm'], 7)}</td>"
-            f"<td class=num>{g(p['temperature_K'], 6)}</td>"
-            f"<td class=num>{g(p['temperature_relative_u_independent'], 2)}</td>"
-            f"<td class=num>{g(p['residual_ln_T'], 3)}</td>"
-            f"<td class=num>{g(p['normalised_residual'], 3)}</td></tr>"
-        )
-    parts.append("</table>")
-    parts.append(
-        "<p class=small>Components common to all points (carried as correlated): "
-        + e("; ".join(c["name"] for c in section["correlated_components"]))
-        + ".</p>"
-    )
-    hop = section["hopping_check"]
-    if hop:
-        parts.append(
-            f"<p class=small>Sanity check: the hopping form R = R0 exp[(T0/T)^p] fits with "
-            f"p = {hop['exponent_p']:.3f}; it differs from the calibration curve by at most "
-            f"{hop['max_relative_difference'] * 100:.2g} % ({hop['max_normalised_difference']:.2g} "
-            "standard uncertainties of the curve). It is not used for the results.</p>"
-        )
-    cross = section["plts2000_cross_check"]
-    if cross:
-        parts.append(
-            "<h3>Cross-check against PLTS-2000 (³He melting curve)</h3><table><tr><th>sweep</th>"
-            "<th>p (Pa)</th><th>T PLTS-2000 (K)</th><th>T CBT (K)</th><th>difference</th>"
-            "<th>ζ</th><th>E_n</th><th>note</th></tr>"
-        )
-        for c in cross:
-            if c["status"] != "compared":
-                parts.append(
-                    f"<tr><td>{e(c['sweep'])}</td><td class=num>{g(c['pressure_Pa'], 9)}</td>"
-                    f"<td colspan=6>{e(c['status'])}</td></tr>"
-                )
-                continue
-            parts.append(
-                f"<tr><td>{e(c['sweep'])}</td><td class=num>{g(c['pressure_Pa'], 9)}</td>"
-                f"<td class=num>{g(c['plts2000_temperature_K'])}</td>"
-                f"<td class=num>{g(c['cbt_temperature_K'])}</td>"
-                f"<td class=num>{c['relative_difference'] * 100:.3g} %</td>"
-                f"<td class=num>{g(c['normalised_difference_zeta'], 3)}</td>"
-                f"<td class=num>{g(c['E_n'], 3)}</td><td class=small>{e('; '.join(c['warnings']))}"
-                "</td></tr>"
-            )
-        parts.append("</table>")
-    parts.append(
-        "<h3>Calibration table</h3><p class=small>Also written as calibration_table.csv "
-        f"({e(TABLE_HEADER)}); coverage probability {section['table']['coverage_probability']:g}."
-        "</p><table><tr><th>R (Ω)</th><th>T (K)</th><th>u (K)</th><th>U (K)</th><th>k</th>"
-        "<th>d ln R / d ln T</th></tr>"
-    )
-    for r in section["table"]["rows"]:
-        parts.append(
-            f"<tr><td class=num>{g(r['resistance_ohm'], 7)}</td><td class=num>{g(r['temperature_K'])}</td>"
-            f"<td class=num>{g(r['standard_uncertainty_K'], 2)}</td>"
-            f"<td class=num>{g(r['expanded_uncertainty_K'], 2)}</td>"
-            f"<td class=num>{g(r['coverage_factor'], 3)}</td>"
-            f"<td class=num>{g(r['sensitivity_dlnR_dlnT'], 3)}</td></tr>"
-        )
-    parts.append("</table>")
-    return "\n".join(parts)
 
 
 # --------------------------------------------------------------------------------------------

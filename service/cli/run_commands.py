@@ -2,13 +2,16 @@
 
 from __future__ import annotations
 
+import argparse
 import os
 import sys
 import tempfile
 from pathlib import Path
 
 from service.cli.main import CommandError
-from service.intake import IntakeError, load_run
+
+# Handlers import what they use (service.intake loads numpy): `coldcert --help` and the commands
+# that do not read a run start in a fraction of a second.
 
 
 def add_commands(sub) -> None:
@@ -19,6 +22,9 @@ def add_commands(sub) -> None:
                    help="random seed for the MCMC (default: run.toml [run] seed, else 20261201)")
     p.add_argument("--quick", action="store_true",
                    help="quick-look convergence rule (20 autocorrelation times); marked on the certificate")
+    p.add_argument("--workers", type=positive_int, default=None, metavar="N",
+                   help="processes that fit sweeps side by side (default: $COLDCERT_WORKERS, else one "
+                        "per CPU); the certificate is the same for any N")
     p.set_defaults(handler=cmd_certify)
 
     z = sub.add_parser("secondary", help="zero-bias conductance log -> temperatures, using a CBT certificate")
@@ -87,10 +93,28 @@ def write_atomically(folder: Path, files: dict[str, bytes]) -> None:
             raise
 
 
+def positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        value = 0
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected a whole number of 1 or more, got {text!r}")
+    return value
+
+
 def cmd_certify(args) -> int:
     from service.calibrations.certify import certify_run
     from service.calibrations.outcome import CertificationRefused
+    from service.calibrations.parallel import WORKERS_VARIABLE, WorkersError, worker_count
+    from service.intake import IntakeError, load_run
 
+    if args.workers is not None:
+        os.environ[WORKERS_VARIABLE] = str(args.workers)
+    try:
+        worker_count()
+    except WorkersError as exc:
+        raise CommandError(str(exc)) from None
     bar = ProgressBar()
     try:
         run = load_run(args.run)
@@ -119,6 +143,8 @@ def cmd_certify(args) -> int:
 
 
 def cmd_check(args) -> int:
+    from service.intake import IntakeError, load_run
+
     try:
         run = load_run(args.run)
     except IntakeError as exc:
@@ -156,7 +182,7 @@ def cmd_secondary(args) -> int:
     import numpy as np
 
     from analysis.cbt.secondary import temperatures_from_zero_bias
-    from service.intake import parse_csv
+    from service.intake import IntakeError, parse_csv
 
     try:
         record = json.loads(Path(args.certificate).read_text(encoding="utf-8"))

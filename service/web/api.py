@@ -6,7 +6,6 @@ from __future__ import annotations
 import json
 import mimetypes
 import os
-from html import escape
 from pathlib import Path
 from typing import Any
 
@@ -232,32 +231,6 @@ def _cached_pdf(record: dict[str, Any], plots_sha256: str | None) -> bytes:
     return pdf
 
 
-def _with_lifecycle_notice(page: str, record: dict[str, Any]) -> str:
-    """Put amendment, supersession and withdrawal notices at the top of the HTML document.
-
-    ISO/IEC 17025:2017 7.8.8.2: an amended report is identified as such and names the report it
-    replaces; a reader of a superseded or withdrawn one must see that at once.
-    """
-    notices = []
-    if record.get("replaces"):
-        notices.append(
-            f"This revision replaces certificate {record['replaces']}. Reason: "
-            f"{record.get('amendment_reason') or 'not stated'}."
-        )
-    if record.get("state") == "superseded":
-        notices.append(f"Superseded by certificate {record.get('superseded_by')}; do not use.")
-    if record.get("state") == "withdrawn":
-        notices.append(f"Withdrawn: {record.get('withdrawn_reason') or ''}; do not use.")
-    if not notices or "<body>" not in page:
-        return page
-    banner = "".join(
-        f'<p class="lifecycle" style="border:2px solid #a3261b;padding:.4em .6em;'
-        f'color:#a3261b">{escape(text)}</p>'
-        for text in notices
-    )
-    return page.replace("<body>", "<body>" + banner, 1)
-
-
 def render(info: dict[str, Any], fmt: str) -> tuple[bytes | str, str]:
     """A rendering of a certificate: (content, media type)."""
     record = info["record"]
@@ -267,11 +240,9 @@ def render(info: dict[str, Any], fmt: str) -> tuple[bytes | str, str]:
         document = services().archive.signed_entry(info["id"])
         return json.dumps(document, sort_keys=True, indent=2, ensure_ascii=False), RENDERINGS[fmt]
     if fmt == "html":
-        from service.record.certificate import render_html
+        from service.render.html import render_html
 
-        plots, sections = services().archive.presentation(info.get("plots_sha256"))
-        page = render_html(record, plots, sections)
-        return _with_lifecycle_notice(page, record), RENDERINGS[fmt]
+        return render_html(record, services().archive.plots(info.get("plots_sha256"))), RENDERINGS[fmt]
     if fmt == "pdf":
         return _cached_pdf(record, info.get("plots_sha256")), RENDERINGS[fmt]
     if fmt == "xml":

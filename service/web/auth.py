@@ -54,7 +54,14 @@ bp = Blueprint("auth", __name__)
 
 
 class AuthError(Exception):
-    """A refused account operation with a message for the person making it."""
+    """A refused account operation with a message for the person making it.
+
+    ``field`` names the form field or request key at fault, when there is one.
+    """
+
+    def __init__(self, message: str, field: str | None = None) -> None:
+        super().__init__(message)
+        self.field = field
 
 
 # --------------------------------------------------------------------------------------------
@@ -67,7 +74,8 @@ def _parse_roles(roles: str | Iterable[str]) -> list[str]:
     unknown = [r for r in cleaned if r not in ROLES]
     if not cleaned or unknown:
         raise AuthError(
-            f"roles must be a non-empty subset of {', '.join(ROLES)}; got {', '.join(items) or '∅'}"
+            f"roles must be a non-empty subset of {', '.join(ROLES)}; got {', '.join(items) or '∅'}",
+            field="roles",
         )
     return cleaned
 
@@ -89,11 +97,14 @@ def create_user(
 ) -> dict[str, Any]:
     if not _USERNAME.match(username or ""):
         raise AuthError(
-            f"username {username!r} must be 2-80 characters of letters, digits, '.', '_' or '-'"
+            f"username {username!r} must be 2-80 characters of letters, digits, '.', '_' or '-'",
+            field="username",
         )
     role_list = _parse_roles(roles)
     if password is not None and len(password) < MIN_PASSWORD_LENGTH:
-        raise AuthError(f"password must have at least {MIN_PASSWORD_LENGTH} characters")
+        raise AuthError(
+            f"password must have at least {MIN_PASSWORD_LENGTH} characters", field="password"
+        )
     try:
         with storage.write() as conn:
             uid = conn.execute(
@@ -109,7 +120,7 @@ def create_user(
             log_event(conn, actor, "user.created", username, {"roles": role_list})
             row = conn.execute(select(st.users).where(st.users.c.id == uid)).one()
     except IntegrityError:
-        raise AuthError(f"a user named {username!r} already exists") from None
+        raise AuthError(f"a user named {username!r} already exists", field="username") from None
     return _public(row)
 
 
@@ -146,6 +157,7 @@ def update_user(
     if not values:
         raise AuthError("nothing to change: give roles, active or password")
     with storage.write() as conn:
+        _keep_an_administrator(conn, username, values)
         result = conn.execute(
             st.users.update().where(st.users.c.username == username).values(**values)
         )
@@ -157,6 +169,26 @@ def update_user(
         log_event(conn, actor, "user.updated", username, detail)
         row = conn.execute(select(st.users).where(st.users.c.username == username)).one()
     return _public(row)
+
+
+def _keep_an_administrator(conn, username: str, values: Mapping[str, Any]) -> None:
+    """Refuse a change that would leave the archive with no active administrator."""
+    loses_admin = ("roles" in values and "admin" not in values["roles"].split(",")) or (
+        values.get("active") is False
+    )
+    if not loses_admin:
+        return
+    admins = [
+        r.username
+        for r in conn.execute(select(st.users.c.username, st.users.c.roles, st.users.c.active))
+        if r.active and "admin" in r.roles.split(",")
+    ]
+    if admins == [username]:
+        raise AuthError(
+            f"{username} is the only active administrator; make someone else an administrator "
+            "first",
+            field="active" if values.get("active") is False else "roles",
+        )
 
 
 def check_password(storage: Storage, username: str, password: str) -> dict[str, Any] | None:

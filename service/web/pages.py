@@ -24,7 +24,15 @@ from service import storage as st
 from service.archive import ArchiveError, log_event
 from service.queue.jobs import job_status
 from service.web.api import READERS, accept_uploaded, queue_reproduction, services, verify_and_log
-from service.web.auth import ROLES, AuthError, create_token, create_user, list_users, roles_required
+from service.web.auth import (
+    ROLES,
+    AuthError,
+    create_token,
+    create_user,
+    list_users,
+    roles_required,
+    update_user,
+)
 from service.web.upload import UploadError
 
 bp = Blueprint("pages", __name__)
@@ -142,9 +150,19 @@ def _act(certificate_id: str, action, success: str):
     return redirect(url_for("pages.certificate", certificate_id=certificate_id), 303)
 
 
+def _confirmed(certificate_id: str, what: str) -> bool:
+    """Signing and withdrawing cannot be undone: the form's confirmation box must be ticked."""
+    if request.form.get("confirm") == "yes":
+        return True
+    flash(f"Nothing done: tick the box confirming that you {what} {certificate_id}.", "error")
+    return False
+
+
 @bp.post("/certificates/<certificate_id>/issue")
 @roles_required("approver")
 def issue(certificate_id: str):
+    if not _confirmed(certificate_id, "reviewed and authorise the issue of"):
+        return redirect(url_for("pages.certificate", certificate_id=certificate_id), 303)
     return _act(
         certificate_id,
         lambda: services().archive.issue(certificate_id, g.user),
@@ -155,6 +173,8 @@ def issue(certificate_id: str):
 @bp.post("/certificates/<certificate_id>/withdraw")
 @roles_required("approver")
 def withdraw(certificate_id: str):
+    if not _confirmed(certificate_id, "withdraw"):
+        return redirect(url_for("pages.certificate", certificate_id=certificate_id), 303)
     reason = request.form.get("reason", "")
     return _act(
         certificate_id,
@@ -247,10 +267,15 @@ def audit():
 @bp.route("/users", methods=["GET", "POST"])
 @roles_required("admin")
 def users():
-    token = None
+    """People: add a person, change roles or disable an account, make an API token.
+
+    A refused form comes back with what was typed and the field at fault marked.
+    """
+    token, error_field, form = None, None, {}
     if request.method == "POST":
+        action = request.form.get("action", "add")
         try:
-            if request.form.get("action") == "token":
+            if action == "token":
                 token = create_token(
                     services().storage,
                     request.form.get("username", ""),
@@ -258,19 +283,40 @@ def users():
                     actor=g.user["username"],
                 )
                 flash("Token created; copy it now, it is not shown again.", "ok")
+            elif action == "update":
+                username = request.form.get("username", "")
+                update_user(
+                    services().storage,
+                    username,
+                    roles=request.form.getlist("roles"),
+                    active=request.form.get("active") == "on",
+                    actor=g.user["username"],
+                )
+                flash(f"{username} updated.", "ok")
             else:
-                roles = request.form.getlist("roles")
                 create_user(
                     services().storage,
                     request.form.get("username", "").strip(),
-                    roles,
+                    request.form.getlist("roles"),
                     password=request.form.get("password") or None,
                     display_name=request.form.get("display_name", ""),
                     actor=g.user["username"],
                 )
                 flash("User added.", "ok")
         except AuthError as exc:
-            flash(str(exc), "error")
+            flash(f"{exc.field}: {exc}" if exc.field else str(exc), "error")
+            error_field = exc.field
+            form = {
+                "action": action,
+                "username": request.form.get("username", ""),
+                "display_name": request.form.get("display_name", ""),
+                "roles": request.form.getlist("roles"),
+            }
     return render_template(
-        "users.html", users=list_users(services().storage), roles=ROLES, token=token
-    )
+        "users.html",
+        users=list_users(services().storage),
+        roles=ROLES,
+        token=token,
+        error_field=error_field,
+        form=form,
+    ), (400 if error_field else 200)
