@@ -5,7 +5,8 @@
 # The server keeps an append-only file with fsync on every write, so a broker restarted while
 # jobs are queued comes back with them (the tests restart it). Stop it with
 #   redis-cli -u URL shutdown nosave
-# `.ci/redis.sh restart URL` restarts the server of URL on the same port and data folder.
+# `.ci/redis.sh restart URL` restarts the server of URL on the same port and data folder;
+# `.ci/redis.sh start URL DIR` starts a stopped one again (DIR: its `config get dir`).
 set -euo pipefail
 if ! command -v redis-server >/dev/null 2>&1; then
   apt-get update -q >&2 && DEBIAN_FRONTEND=noninteractive apt-get install -y -q redis-server >&2
@@ -31,6 +32,13 @@ if [ "${1:-}" = "restart" ]; then
   redis-cli -h 127.0.0.1 -p "$port" shutdown >/dev/null 2>&1 || true
   sleep 0.5
   start "$port" "$dir"
+  echo "redis://127.0.0.1:$port/0"
+  exit 0
+fi
+
+if [ "${1:-}" = "start" ]; then
+  port=${2##*:}; port=${port%%/*}
+  start "$port" "$3"
   echo "redis://127.0.0.1:$port/0"
   exit 0
 fi

@@ -249,25 +249,35 @@ def test_a_job_over_the_time_limit_is_stopped_and_failed(cluster):
     assert "time limit" in job["error"]
 
 
-def _restart_broker(url: str) -> None:
+def _broker_folder(url: str) -> str:
     import redis
 
     folder = redis.Redis.from_url(url).config_get("dir")["dir"]
     if not Path(folder).name.startswith("coldcert-redis."):
         pytest.skip(f"the broker at {url} was not started by .ci/redis.sh; not restarting it")
-    subprocess.run(["bash", str(REPO / ".ci" / "redis.sh"), "restart", url], check=True)
+    return folder
 
 
-def test_queued_jobs_survive_a_broker_restart_and_a_broker_that_lost_them(cluster):
-    c = cluster()
-    lab, client = c.lab, c.lab.client()
-    uploads = [lab.upload(client, files=_behaving("instant")).get_json() for _ in range(2)]
-    _restart_broker(c.broker)
-    assert lab.services.engine.broker_depth() == 2  # the append-only file kept the messages
-    # A broker that lost everything (no persistence): the database still knows what is queued,
-    # and the sweeper sends it again.
+def test_queued_jobs_survive_a_broker_restart_an_absent_broker_and_a_lost_queue(cluster):
     import redis
 
+    c = cluster()
+    lab, client = c.lab, c.lab.client()
+    folder = _broker_folder(c.broker)
+    uploads = [lab.upload(client, files=_behaving("instant")).get_json() for _ in range(2)]
+    subprocess.run(["bash", str(REPO / ".ci" / "redis.sh"), "restart", c.broker], check=True)
+    assert lab.services.engine.broker_depth() == 2  # the append-only file kept the messages
+    # The broker away during an upload: the run is accepted and its job waits in the database.
+    redis.Redis.from_url(c.broker).shutdown()
+    away = lab.upload(client, files=_behaving("instant"))
+    assert away.status_code == 202, away.get_json()
+    uploads.append(away.get_json())
+    assert c.job_row(uploads[-1]["job_id"]).dispatched_at is None
+    health = client.get("/api/health").get_json()
+    assert health["status"] == "degraded" and not health["queue"]["broker_ok"]
+    subprocess.run(["bash", str(REPO / ".ci" / "redis.sh"), "start", c.broker, folder], check=True)
+    # A broker that lost everything (no persistence): the database still knows what is queued,
+    # and the sweeper sends it again.
     redis.Redis.from_url(c.broker).flushdb()
     lab.services.engine.LOST_AFTER_SECONDS = 0.0
     lab.services.start_workers(0)

@@ -253,7 +253,8 @@ def _work_distributed(config, settings, processes: int) -> int:
     storage.create_schema()
     # Worker processes are forked from this one; they open their own connections and must not
     # touch (or close) the ones inherited from here.
-    os.register_at_fork(after_in_child=lambda: storage.engine.dispose(close=False))
+    if hasattr(os, "register_at_fork"):  # POSIX; Windows workers do not fork
+        os.register_at_fork(after_in_child=lambda: storage.engine.dispose(close=False))
     engine = engine_settings(config)
     queue = EngineQueue(storage, settings, engine)
     # This machine also re-publishes jobs whose message was lost and re-queues jobs whose

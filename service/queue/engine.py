@@ -106,7 +106,12 @@ def make_celery(engine: EngineSettings, worker: WorkerSettings) -> Any:
         worker_prefetch_multiplier=1,
         task_soft_time_limit=engine.time_limit,
         task_time_limit=engine.hard_time_limit,
-        broker_transport_options={"visibility_timeout": engine.effective_visibility_timeout},
+        broker_transport_options={
+            "visibility_timeout": engine.effective_visibility_timeout,
+            # An upload must not hang on a broker that is away: the job stays queued in the
+            # database and the sweeper sends it later.
+            "socket_connect_timeout": 3,
+        },
         broker_connection_retry_on_startup=True,
         broker_connection_timeout=5,
         task_publish_retry_policy={"max_retries": 3, "interval_start": 0.2, "interval_step": 0.5},
