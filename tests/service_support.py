@@ -189,3 +189,28 @@ def reset_server_database(url: str) -> None:
         st.metadata.drop_all(conn)
         conn.execute(text("DROP TABLE IF EXISTS alembic_version"))
     storage.dispose()
+
+
+def complete_record(value: float, u: float, **result: Any) -> dict[str, Any]:
+    """A stand-in certificate record that states everything ISO/IEC 17025 7.8.2.1 asks for (so
+    it can be issued), with one temperature result ``value`` ± ``u`` (k = 2)."""
+    return {
+        "title": "Calibration certificate",
+        "laboratory": {"name": "Archive Test Lab", "address": "1 Test Road"},
+        "customer": {"name": "Cryolab North", "address": "North Road"},
+        "item": {"description": "test thermometer", "identifier": "T-1"},
+        "dates": {"measured": "2026-11-24"},
+        "method": {"description": "stand-in analysis for archive tests"},
+        "results": [
+            {
+                "name": "electron temperature",
+                **result,
+                "value": value,
+                "unit": "K",
+                "standard_uncertainty": u,
+                "expanded_uncertainty": 2 * u,
+                "coverage_factor": 2.0,
+                "coverage_probability": 0.95,
+            }
+        ],
+    }

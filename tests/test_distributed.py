@@ -228,25 +228,19 @@ def test_worker_killed_mid_fit_loses_nothing_and_drafts_once(cluster):
     assert "job.interrupted" in [e["action"] for e in events]
 
 
-def test_a_job_that_keeps_killing_its_worker_is_failed_after_bounded_attempts(cluster):
-    c = cluster()
-    c.start_worker("worker-a")
-    lab, client = c.lab, c.lab.client()
-    upload = lab.upload(client, files=_behaving("crash_always")).get_json()
-    job = lab.wait(client, upload["job_id"], timeout=180)
-    assert job["status"] == "failed"
-    assert "interrupted 3 times" in job["error"]
-    assert c.drafts_of(upload["run_id"]) == 0
-
-
-def test_a_job_over_the_time_limit_is_stopped_and_failed(cluster):
+def test_jobs_that_kill_their_worker_or_overrun_the_time_limit_are_failed(cluster):
     c = cluster(JOB_TIME_LIMIT=3)
     c.start_worker("worker-a")
     lab, client = c.lab, c.lab.client()
-    upload = lab.upload(client, files=_behaving("hang")).get_json()
-    job = lab.wait(client, upload["job_id"], timeout=120)
+    crashing = lab.upload(client, files=_behaving("crash_always")).get_json()
+    hanging = lab.upload(client, files=_behaving("hang")).get_json()
+    job = lab.wait(client, crashing["job_id"], timeout=180)
+    assert job["status"] == "failed"
+    assert "interrupted 3 times" in job["error"]  # bounded attempts, then the reason
+    job = lab.wait(client, hanging["job_id"], timeout=120)
     assert job["status"] == "failed"
     assert "time limit" in job["error"]
+    assert c.drafts_of(crashing["run_id"]) == c.drafts_of(hanging["run_id"]) == 0
 
 
 def _broker_folder(url: str) -> str:

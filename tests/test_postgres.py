@@ -17,7 +17,7 @@ from service import storage as st
 from service.archive import Archive, LabKey
 from service.queue.jobs import claim, enqueue
 from service.storage import Storage, utc_now
-from tests.service_support import reset_server_database, server_url
+from tests.service_support import complete_record, reset_server_database, server_url
 
 
 @pytest.fixture()
@@ -48,29 +48,6 @@ def _people(storage: Storage) -> dict[str, dict]:
     return people
 
 
-def _complete_record(value: float) -> dict:
-    """A stand-in record stating everything ISO/IEC 17025 7.8.2.1 asks for, so it can be issued."""
-    return {
-        "title": "Calibration certificate",
-        "laboratory": {"name": "Server Test Lab", "address": "1 Test Road"},
-        "customer": {"name": "A", "address": "North Road"},
-        "item": {"description": "test thermometer", "identifier": "T-1"},
-        "dates": {"measured": "2026-11-24"},
-        "method": {"description": "stand-in record for the storage tests"},
-        "results": [
-            {
-                "name": "electron temperature",
-                "value": value,
-                "unit": "K",
-                "standard_uncertainty": 0.001,
-                "expanded_uncertainty": 0.002,
-                "coverage_factor": 2.0,
-                "coverage_probability": 0.95,
-            }
-        ],
-    }
-
-
 def test_lifecycle_chain_and_verify_on_postgresql(server_storage, tmp_path):
     storage = server_storage
     archive = Archive(storage, LabKey.load_or_create(tmp_path / "keys"))
@@ -96,7 +73,7 @@ def test_lifecycle_chain_and_verify_on_postgresql(server_storage, tmp_path):
                     seed=n,
                     software={},
                     submitter=people["olga"],
-                    record=_complete_record(0.1 * n),
+                    record=complete_record(0.1 * n, 0.001),
                 )
             )
         archive.issue(ids[-1], people["arno"])
