@@ -200,7 +200,8 @@ def test_upload_draft_issue_reproduce_and_the_same_certificate_as_the_embedded_p
 
 def test_worker_killed_mid_fit_loses_nothing_and_drafts_once(cluster):
     c = cluster()
-    first = c.start_worker("worker-a")
+    c.start_worker("worker-a")
+    c.start_worker("worker-b")
     lab, client = c.lab, c.lab.client()
     lab.services.start_workers(0)  # the web side's sweeper re-queues what a dead worker held
     upload = lab.upload(client, files=_behaving("slow")).get_json()
@@ -210,13 +211,16 @@ def test_worker_killed_mid_fit_loses_nothing_and_drafts_once(cluster):
         row = c.job_row(upload["job_id"])
         if row.status == "running" and row.fraction > 0.05:
             break
-        time.sleep(0.2)
+        time.sleep(0.1)
     else:
         pytest.fail(f"the slow job never got going: {row.status} {row.step}")
     killed_holder = row.claimed_by
-    c.start_worker("worker-b")
-    os.killpg(first.pid, signal.SIGKILL)  # the whole worker, as a machine losing power
-    first.wait(timeout=10)
+    # The worker whose pool process holds the job: kill all of it (main process and pool), as
+    # a machine losing power would.
+    group = os.getpgid(int(killed_holder.split(":")[1]))
+    victim = next(w for w in c.workers if w.pid == group)
+    os.killpg(group, signal.SIGKILL)
+    victim.wait(timeout=10)
     job = lab.wait(client, upload["job_id"], timeout=240)
     assert job["status"] == "done", job["error"]
     row = c.job_row(upload["job_id"])
