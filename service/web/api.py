@@ -90,9 +90,12 @@ def _json_body() -> dict[str, Any]:
 
 @bp.get("/health")
 def health():
+    """Database reachable; the job queue's depth and the analysis workers seen."""
     with services().storage.read() as conn:
         conn.execute(select(1))
-    return jsonify(status="ok")
+    queue = services().queue_health()
+    status = "ok" if queue.get("broker_ok", True) else "degraded"
+    return jsonify(status=status, queue=queue)
 
 
 @bp.get("/openapi.json")
@@ -111,7 +114,7 @@ def public_key():
 
 def accept_uploaded(uploads: list[tuple[str, bytes]]):
     """Validate and store the files of the current request as a run (API and web form alike)."""
-    return accept_run(
+    accepted = accept_run(
         services().storage,
         services().archive,
         import_string(current_app.config["LOAD_RUN"]),
@@ -123,6 +126,8 @@ def accept_uploaded(uploads: list[tuple[str, bytes]]):
         max_bytes=current_app.config["MAX_RUN_BYTES"],
         max_files=current_app.config["MAX_RUN_FILES"],
     )
+    services().submit(accepted.job_id)
+    return accepted
 
 
 @bp.post("/runs")
@@ -423,8 +428,10 @@ def queue_reproduction(certificate_id: str) -> str:
     """Queue a re-analysis of an archived certificate from its raw data; returns the job id."""
     info = services().archive.get(certificate_id)
     with services().storage.write() as conn:
-        return enqueue(conn, purpose="reproduce", run_id=info["run_id"], requested_by=g.user,
-                       certificate_id=certificate_id)
+        job_id = enqueue(conn, purpose="reproduce", run_id=info["run_id"], requested_by=g.user,
+                         certificate_id=certificate_id)
+    services().submit(job_id)
+    return job_id
 
 
 @bp.get("/certificates/<certificate_id>/verify")
