@@ -40,3 +40,22 @@ def test_infinite_degrees_of_freedom_become_none():
 def test_a_kind_cannot_overwrite_the_common_fields():
     with pytest.raises(ValueError, match="value"):
         result_entry(name="x", sweep="", quantity="x", unit="K", budget=_budget(), value=3.0)
+
+
+def test_magnetic_field_caution_only_when_a_field_is_applied():
+    # Common practice, no source: a magnet area needs its own caution; "no applied field" needs none.
+    from service.record.certificate import MAGNET_CAUTION, mentions_magnetic_field, statements_for
+
+    quiet = {"conditions": {"environment": "mixing-chamber plate, no applied field"}}
+    assert not mentions_magnetic_field(quiet)
+    assert MAGNET_CAUTION not in statements_for(quiet)
+    for loud in (
+        {"conditions": {"environment": "sample in 1.5 T from the solenoid"}},
+        {"conditions": {"magnetic_field_T": 0.25}},
+        {"item": {"condition": "mounted in the bore of a superconducting magnet"}},
+    ):
+        assert mentions_magnetic_field(loud), loud
+        statements = statements_for(loud)
+        assert MAGNET_CAUTION in statements
+        assert statements[-1].startswith("This certificate was produced by the coldcert software")
+    assert not mentions_magnetic_field({"conditions": {"magnetic_field_T": 0.0}})

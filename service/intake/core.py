@@ -223,8 +223,12 @@ def parse_csv(name: str, raw: bytes) -> DataFile:
             close = difflib.get_close_matches(key, METADATA_KEYS.keys(), n=1, cutoff=0.8)
             if close:
                 raise IntakeError(f"unknown key; did you mean {close[0]!r}?", file=name, line=i, field=key)
-            free[key] = value
-            continue
+            # The table holds every kind's keys, so a key it lacks is a mistake, not free text.
+            raise IntakeError(
+                "unknown key; write remarks as '# note: …' or as a comment line without ':' "
+                "(the keys are listed in docs/formats.md)",
+                file=name, line=i, field=key,
+            )
         try:
             metadata[key] = spec.parse(value)
         except ValueError as exc:

@@ -15,8 +15,6 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from datetime import UTC, datetime
 
-from analysis.pump.quantized import MAX_ELECTRONS_PER_CYCLE
-
 KIND_CBT = "cbt_thermometry"
 KIND_SENSOR = "sensor_calibration"
 KIND_PUMP = "pump_verification"
@@ -135,7 +133,15 @@ class KeySpec:
 
 _positive = real_parser(0.0, lo_open=True)
 _non_negative = real_parser(0.0)
-_electrons = integer_parser(1, MAX_ELECTRONS_PER_CYCLE)
+
+
+def _electrons(value: object) -> int:
+    """n, electrons per cycle: a whole number from 1 to the largest the pump model accepts."""
+    # Imported here: the CLI reads this table at start-up, and analysis pulls in scipy.
+    from analysis.pump.quantized import MAX_ELECTRONS_PER_CYCLE
+
+    return integer_parser(1, MAX_ELECTRONS_PER_CYCLE)(value)
+
 
 METADATA_KEYS: dict[str, KeySpec] = {
     # CBT sweeps (docs/formats.md)

@@ -19,15 +19,68 @@ from importlib import metadata as importlib_metadata
 SCHEMA = "coldcert/certificate/1"
 
 CAUTIONS = (
-    "Cryogenic work: dilution refrigerators and cryostats hold cryogenic liquids and pressurised "
-    "gas (including ³He/⁴He mixture and, for melting-curve thermometry, ³He at several MPa); follow "
-    "your laboratory's safety rules, local codes and the manufacturers' instructions.",
+    "Cryogenic liquids and gases: dilution refrigerators and cryostats hold liquid helium or "
+    "nitrogen and pressurised gas (including ³He/⁴He mixture); they can cause cold burns, "
+    "asphyxiation in a poorly ventilated room and overpressure when they warm up. Follow your "
+    "laboratory's safety rules, local codes and the manufacturers' instructions.",
+    "High-pressure ³He: melting-curve thermometry keeps ³He at several MPa in its cell and "
+    "capillary; the gas-handling system must meet the local rules for pressure equipment and be "
+    "operated by trained staff.",
+    "Mains-powered instruments (bridges, lock-in amplifiers, current sources and ammeters) wired "
+    "to a cryostat must be earthed and isolated as their manufacturers require; work on them "
+    "follows local electrical-safety rules.",
     "Electrical standards and low-noise measurement chains must be operated by trained staff "
     "under the laboratory's quality system; this document does not replace it.",
     "This certificate was produced by the coldcert software. It is not an accreditation: only the "
     "laboratory's own accreditation body can confer that status, and the issuing laboratory "
     "remains responsible for the validity of the results.",
 )
+
+#: Added when the run's manifest mentions an applied magnetic field.
+MAGNET_CAUTION = (
+    "Magnetic fields: the conditions of this measurement include an applied magnetic field. "
+    "Superconducting magnets store large energies and can quench; keep ferromagnetic objects, "
+    "wearers of pacemakers or implants and magnetic media out of the stray field, and follow "
+    "the local rules for magnet areas."
+)
+
+_FIELD_WORDS = re.compile(
+    r"\bmagnet|\bmagnetic field|\b\d+(\.\d+)?\s*(m?T|tesla|gauss)\b|\bB\s*=\s*\d", re.IGNORECASE
+)
+_NO_FIELD = re.compile(r"\b(no|zero|without)\s+(applied\s+|magnetic\s+|external\s+)*field", re.IGNORECASE)
+
+
+def mentions_magnetic_field(manifest: dict) -> bool:
+    """Whether any text or field of the manifest speaks of an applied magnetic field.
+
+    A key ending in ``_T`` (e.g. ``magnetic_field_T``) with a non-zero value counts, and so does a
+    text naming a magnet, a magnetic field or a value in tesla, unless it says "no applied field".
+    """
+    def walk(node, key=""):
+        if isinstance(node, dict):
+            for k, v in node.items():
+                yield from walk(v, str(k))
+        elif isinstance(node, list):
+            for v in node:
+                yield from walk(v, key)
+        else:
+            yield key, node
+
+    for key, value in walk(manifest):
+        if key.endswith("_T") and "field" in key and isinstance(value, int | float) and value != 0:
+            return True
+        if isinstance(value, str) and _FIELD_WORDS.search(value) and not _NO_FIELD.search(value):
+            return True
+    return False
+
+
+def statements_for(manifest: dict) -> list[str]:
+    """The certificate's statements: results relate to the item, then the cautions that apply."""
+    cautions = list(CAUTIONS)
+    if mentions_magnetic_field(manifest):
+        cautions.insert(-2, MAGNET_CAUTION)
+    return [RELATES_ONLY, *cautions]
+
 
 RELATES_ONLY = "The results relate only to the item calibrated, as received and under the stated conditions."
 
@@ -140,7 +193,7 @@ def build_record(run, outcome, seed: int, job: str) -> dict:
             "The elementary charge is exact in the SI; the current measurement is traceable "
             "through the ammeter-chain calibrations stated in the budget."
         ),
-        "statements": [RELATES_ONLY, *CAUTIONS],
+        "statements": statements_for(m),
         "inputs": {
             "files": [{"name": f.name, "sha256": f.sha256, "bytes": len(f.raw)} for f in run.files],
             "manifest_sha256": manifest_hash,

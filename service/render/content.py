@@ -79,13 +79,33 @@ EXPANDED_NOTE = (
 )
 
 
-def _pairs(section: Mapping[str, Any] | None) -> Pairs:
-    rows = tuple(
-        (str(k), "" if v is None else str(v))
-        for k, v in (section or {}).items()
-        if not isinstance(v, dict | list)
-    )
-    return Pairs(rows)
+#: The order in which a section's fields are shown, the same for drafts and issued certificates
+#: (the record's canonical JSON sorts keys, which would put an address before a name). Fields
+#: not listed follow in alphabetical order. Documented in docs/service.md.
+FIELD_ORDER: dict[str, tuple[str, ...]] = {
+    "laboratory": ("name", "address", "accreditation", "contact"),
+    "customer": ("name", "address", "contact", "reference"),
+    "item": ("description", "identifier", "manufacturer", "model", "serial_number", "condition"),
+    "dates": ("received", "measurement_began", "measured", "issued"),
+}
+
+#: How a date field is labelled on the certificate (ISO/IEC 17025:2017 7.8.2.1 h, i).
+DATE_LABELS = {
+    "received": "item received",
+    "measurement_began": "measurement began",
+    "measured": "date of measurement",
+    "issued": "date of issue",
+}
+
+
+def _pairs(section: Mapping[str, Any] | None, order: tuple[str, ...] = (),
+           labels: Mapping[str, str] | None = None) -> Pairs:
+    fields = {k: v for k, v in (section or {}).items() if not isinstance(v, dict | list)}
+    keys = [k for k in order if k in fields] + sorted(k for k in fields if k not in order)
+    labels = labels or {}
+    return Pairs(tuple(
+        (labels.get(k, str(k)), "" if fields[k] is None else str(fields[k])) for k in keys
+    ))
 
 
 def lifecycle_notices(record: Mapping[str, Any]) -> list[Text]:
@@ -118,10 +138,10 @@ def _heading_blocks(record: Mapping[str, Any]) -> list[Block]:
     if state == "draft":
         blocks.append(Text("Draft — not valid until issued by an authorised approver.", "draft"))
     for heading, key in (("Laboratory", "laboratory"), ("Customer", "customer"), ("Item calibrated", "item")):
-        blocks += [Heading(heading), _pairs(record.get(key))]
+        blocks += [Heading(heading), _pairs(record.get(key), FIELD_ORDER[key])]
     dates = {k: v or "—" for k, v in (record.get("dates") or {}).items()}
     method = record.get("method") or {}
-    blocks += [Heading("Dates"), _pairs(dates), Heading("Method"),
+    blocks += [Heading("Dates"), _pairs(dates, FIELD_ORDER["dates"], DATE_LABELS), Heading("Method"),
                Text(str(method.get("description", method.get("name", ""))))]
     return blocks
 
@@ -226,10 +246,42 @@ def _global_fit_blocks(gf: Mapping[str, Any]) -> list[Block]:
     ]
 
 
-def _closing_blocks(record: Mapping[str, Any]) -> list[Block]:
+def _authorisation_blocks(record: Mapping[str, Any], seal: Mapping[str, Any] | None) -> list[Block]:
+    """Who authorised the certificate and how an auditor checks the electronic signature.
+
+    ISO/IEC 17025:2017 7.8.2.1 o): identification of the person(s) authorising the report. The
+    signature details (chain entry, its SHA-256, the key) come from the archive (``seal``); the
+    record inside the signed entry cannot carry the digest of that entry itself.
+    """
+    people = record.get("people") or {}
+    operator = people.get("operator") or "—"
+    if not people.get("approver"):
+        return [Heading("Authorisation"),
+                Text(f"Operator: {operator}. Not yet issued: no approver has authorised it.")]
+    blocks: list[Block] = [
+        Heading("Authorisation"),
+        Text(f"Operator: {operator}. Approved and issued by {people['approver']} (approver, "
+             f"the laboratory's authorised signatory) on {(record.get('dates') or {}).get('issued')}."),
+    ]
+    if seal:
+        cid = record.get("certificate_id", "")
+        blocks += [
+            Text("This certificate is signed electronically, without a handwritten signature: its "
+                 "record is entry {sequence} of the laboratory's hash chain, signed with the "
+                 "laboratory's Ed25519 key {key_id}.".format(**seal)),
+            Pairs((("chain entry", str(seal["sequence"])), ("entry SHA-256", str(seal["sha256"])),
+                   ("signing key id", str(seal["key_id"])))),
+            Text(f"To verify: in the laboratory's archive, coldcert verify {cid}; anywhere, "
+                 f"coldcert verify {cid}-signed.json --public-key KEY with the signed entry "
+                 "(download 'signed') and the laboratory's public key, published at "
+                 f"{seal.get('public_key_url', 'the laboratory’s /api/public-key')}.", "small"),
+        ]
+    return blocks
+
+
+def _closing_blocks(record: Mapping[str, Any], seal: Mapping[str, Any] | None = None) -> list[Block]:
     conditions = record.get("conditions") or {}
     deviations = record.get("deviations") or []
-    people = record.get("people") or {}
     blocks: list[Block] = [
         Heading("Conditions of measurement"),
         _pairs({k: v for k, v in conditions.items() if k != "sweeps"}),
@@ -240,14 +292,14 @@ def _closing_blocks(record: Mapping[str, Any]) -> list[Block]:
         Text(str(record.get("traceability", "not stated"))),
         Heading("Statements and cautions"),
         Bullets(tuple(str(s) for s in record.get("statements") or [])),
-        Heading("Authorisation"),
-        Text(f"Operator: {people.get('operator') or '—'}. Approved and issued by: "
-             f"{people.get('approver') or 'not yet issued'}."),
+        *_authorisation_blocks(record, seal),
     ]
-    files = (record.get("inputs") or {}).get("files") or []
+    inputs = record.get("inputs") or {}
+    hashes = [(f["name"], f["sha256"]) for f in inputs.get("files") or []]
+    if inputs.get("manifest_sha256"):
+        hashes.append(("run.toml (manifest)", inputs["manifest_sha256"]))
     blocks += [Heading("Records"),
-               Grid(("input file", "SHA-256"), tuple((f["name"], f["sha256"]) for f in files),
-                    frozenset({1}), (1, 3))]
+               Grid(("input file", "SHA-256"), tuple(hashes), frozenset({1}), (1, 3))]
     rep = record.get("reproducibility") or {}
     if rep:
         software = ", ".join(f"{k} {v}" for k, v in (rep.get("software") or {}).items())
@@ -256,8 +308,13 @@ def _closing_blocks(record: Mapping[str, Any]) -> list[Block]:
     return blocks
 
 
-def certificate_blocks(record: Mapping[str, Any], plots: Mapping[str, str] | None = None) -> list[Block]:
-    """The whole certificate, in reading order, from the record and its plots (SVG by name)."""
+def certificate_blocks(record: Mapping[str, Any], plots: Mapping[str, str] | None = None,
+                       seal: Mapping[str, Any] | None = None) -> list[Block]:
+    """The whole certificate, in reading order, from the record and its plots (SVG by name).
+
+    ``seal`` (issued certificates): the chain entry's ``sequence``, ``sha256``, ``key_id`` and the
+    ``public_key_url``, for the authorisation section.
+    """
     remaining = dict(plots or {})
     results = list(record.get("results") or [])
     sections = record.get("sections") or {}
@@ -267,7 +324,7 @@ def certificate_blocks(record: Mapping[str, Any], plots: Mapping[str, str] | Non
     blocks += [Figure(svg, key) for key, svg in remaining.items() if not key.startswith("fit-")]
     if sections.get("global_fit"):
         blocks += _global_fit_blocks(sections["global_fit"])
-    return blocks + _closing_blocks(record)
+    return blocks + _closing_blocks(record, seal)
 
 
 def kind_blocks(record: Mapping[str, Any]) -> list[Block]:

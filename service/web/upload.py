@@ -26,7 +26,7 @@ from sqlalchemy import select
 
 from service import storage as st
 from service.archive import Archive
-from service.intake import MAX_FILE_BYTES
+from service.intake.core import MAX_FILE_BYTES
 from service.queue.jobs import enqueue, new_id
 from service.storage import Storage
 
