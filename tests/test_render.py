@@ -80,6 +80,9 @@ def _pdf_text(pdf: bytes, certificate_id: str) -> str:
         text = text.replace(f"Certificate {certificate_id}\n", "", 1) if text.count(
             f"Certificate {certificate_id}") > 1 else text
         text = re.sub(r"\n(DRAFT — NOT VALID|WITHDRAWN|SUPERSEDED)\s*$", "", text.rstrip())
+        # A paragraph split across pages has the footer between its halves: drop the footer's
+        # certificate line when it ends the page.
+        text = re.sub(rf"\s*Certificate {re.escape(certificate_id)}\s*$", "", text)
         pages.append(text)
     return _squash("".join(pages))
 
