@@ -415,6 +415,21 @@ class ModelEdgeError(SweepError):
         self.u_estimate = u_estimate
 
 
+class ResidualStructureError(SweepError):
+    """The residuals are smooth structure, not noise: the model does not describe the sweep."""
+
+    def __init__(self, message: str):
+        super().__init__(message, field="conductance_S")
+
+
+#: A noise model this close to a deterministic curve (AR(1) ρ at its 0.95 clip, or a 1/f^α
+#: spectrum steeper than α = 2.3, i.e. beyond a random walk's 1/f²) is structure, not noise; the
+#: fit is refused. (The 1/f share of the variance is no guide: with small α the power law alone
+#: also fits white-ish noise.)
+STRUCTURE_RHO = 0.94
+STRUCTURE_ALPHA = 2.3
+
+
 class PointError(SweepError):
     """One or more data points cannot be used as they are; ``points`` are their indices."""
 
@@ -562,6 +577,9 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
     resid = ((data.conductance - curve) * _weights(data))[order]
     r1 = lag1_correlation(resid)
     noise = choose_noise_model(resid)
+    if (noise.kind == "AR(1)" and abs(noise.rho) >= STRUCTURE_RHO) or (
+            noise.kind == "1/f + white" and noise.alpha >= STRUCTURE_ALPHA):
+        raise ResidualStructureError(_structure_message(shape, data, ls, noise, r1))
     if noise.kind != "white":
         data = replace(data, noise_correlation=noise.rho, noise_factor=noise.factor)
         ls = least_squares_fit(shape, data, ls["theta"])
@@ -610,6 +628,29 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
         background_added=background_added, findings=tuple(findings),
     )
     return data, ls, diagnosis
+
+
+def _structure_message(shape: DipShape, data: SweepData, ls: dict, noise, r1: float) -> str:
+    """Why a sweep whose residuals are structure is refused, with the likeliest named cause."""
+    theta = ls["theta"]
+    _, jac_w, e_w = _model_parts(shape, data, theta)
+    s_curve = _design(shape, data, theta[None, :])[0][:, 0] * ls["amplitudes"][0]
+    centred = data.bias - theta[2]
+    v_half = fwhm_volts(shape, data.setup, theta[0], theta[1])
+    templates = {
+        "self-heating (give the electron-phonon coupling to fit a heating model)":
+            (whiten(data, _heating_template(shape, data, theta, ls, v_half)), ""),
+        "an asymmetric dip (thermal gradient, drifting offset or background-charge jumps)":
+            (whiten(data, np.sign(centred) * (ls["amplitudes"][0] - s_curve)), ""),
+    }
+    if not data.background:
+        templates["a slope (linear_background)"] = (whiten(data, centred * s_curve), "")
+    tests = sorted(template_tests(jac_w, e_w, templates), key=lambda t: -abs(t.t_statistic))
+    cause = (f"likely cause: {tests[0].cause}, t = {tests[0].t_statistic:.1f} under white noise"
+             if tests and tests[0].significant else "no named cause fits; check the model choice and the set-up")
+    return (f"the residuals are smooth structure, not noise (lag-1 correlation {r1:.2f}; as noise they would "
+            f"need a {noise.describe()} spectrum): the {shape.name} model does not describe this sweep, "
+            f"so no temperature is certified from it; {cause}")
 
 
 def _heating_template(shape: DipShape, data: SweepData, theta: np.ndarray, ls: dict, v_half: float) -> np.ndarray:
@@ -771,6 +812,7 @@ __all__ = [
     "FitSettings",
     "ModelEdgeError",
     "PointError",
+    "ResidualStructureError",
     "SweepData",
     "SweepError",
     "SweepFit",
