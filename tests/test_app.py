@@ -712,3 +712,14 @@ def test_an_incomplete_draft_is_not_issued_until_corrected(lab):
     assert issued.status_code == 200, issued.get_json()
     record = client.get(f"/api/certificates/{cert}/json", headers=lab.headers("olga")).get_json()
     assert record["customer"]["name"] == "A Customer" and "customer" in record["corrected_fields"]
+
+
+def test_issued_renderings_carry_the_signature_details(lab, issued):
+    # The auditor's check of authorisation: approver and role, key id, chain entry and its hash,
+    # and where the public key is published, in the HTML the archive serves.
+    client, cert = lab.client(), issued["certificate_id"]
+    info = client.get(f"/api/certificates/{cert}", headers=lab.headers("olga")).get_json()
+    html = client.get(f"/api/certificates/{cert}/html", headers=lab.headers("olga")).data.decode()
+    assert "signed electronically" in html and "(approver" in html
+    assert info["sha256"] in html and info["key_id"] in html
+    assert f"entry {info['sequence']}" in html and "/api/public-key" in html

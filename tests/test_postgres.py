@@ -8,7 +8,6 @@ moving to a database server gets the same lifecycle, chain, verification and job
 
 from __future__ import annotations
 
-import os
 import threading
 
 import pytest
@@ -18,29 +17,18 @@ from service import storage as st
 from service.archive import Archive, LabKey
 from service.queue.jobs import claim, enqueue
 from service.storage import Storage, utc_now
-
-URL = os.environ.get("COLDCERT_TEST_DATABASE_URL", "")
-pytestmark = pytest.mark.skipif(
-    not URL.startswith("postgresql"), reason="set COLDCERT_TEST_DATABASE_URL to a PostgreSQL URL"
-)
-
-
-def _drop_everything(storage: Storage) -> None:
-    # The schema revision table too, or the next test's create_schema would find the database
-    # "at head" with no tables in it.
-    with storage.engine.begin() as conn:
-        st.metadata.drop_all(conn)
-        conn.exec_driver_sql("DROP TABLE IF EXISTS alembic_version")
+from tests.service_support import complete_record, reset_server_database, server_url
 
 
 @pytest.fixture()
 def server_storage(tmp_path):
-    storage = Storage(URL, tmp_path / "blobs")
-    _drop_everything(storage)
+    url = server_url("COLDCERT_TEST_DATABASE_URL", "postgresql", "test the storage on a server")
+    reset_server_database(url)
+    storage = Storage(url, tmp_path / "blobs")
     storage.create_schema()
     yield storage
-    _drop_everything(storage)
     storage.dispose()
+    reset_server_database(url)
 
 
 def _people(storage: Storage) -> dict[str, dict]:
@@ -58,24 +46,6 @@ def _people(storage: Storage) -> dict[str, dict]:
             ).inserted_primary_key[0]
             people[name] = {"id": uid, "username": name, "display_name": name}
     return people
-
-
-def _complete_record(record: dict) -> dict:
-    """What issue requires (ISO/IEC 17025 7.8.2.1) around the test's own fields."""
-    out = {
-        "title": "Calibration certificate",
-        "laboratory": {"name": "Test lab (fictional)", "address": "Larkspur"},
-        "item": {"identifier": "CBT SN 7", "description": "test device"},
-        "dates": {"measured": "2026-11-20"},
-        "method": {"description": "test method"},
-        **record,
-    }
-    out["customer"] = {"address": "Mudford", **record.get("customer", {})}
-    out["results"] = [
-        {"expanded_uncertainty": 0.01, "coverage_factor": 2.0, "coverage_probability": 0.95, **r}
-        for r in record["results"]
-    ]
-    return out
 
 
 def test_lifecycle_chain_and_verify_on_postgresql(server_storage, tmp_path):
@@ -103,16 +73,13 @@ def test_lifecycle_chain_and_verify_on_postgresql(server_storage, tmp_path):
                     seed=n,
                     software={},
                     submitter=people["olga"],
-                    record=_complete_record(
-                        {
-                            "results": [{"value": 0.1 * n, "unit": "K"}],
-                            "customer": {"name": "A"},
-                        }
-                    ),
+                    record=complete_record(0.1 * n, 0.001),
                 )
             )
         archive.issue(ids[-1], people["arno"])
-    amended = archive.amend(ids[0], people["olga"], "name", {"customer": {"name": "B"}})
+    amended = archive.amend(
+        ids[0], people["olga"], "name", {"customer": {"name": "B", "address": "North Road"}}
+    )
     archive.issue(amended, people["arno"])
     archive.withdraw(ids[1], people["arno"], "damaged")
     for cert in ids + [amended]:
@@ -207,3 +174,28 @@ def test_item_history_and_public_check_on_postgresql(server_storage, tmp_path):
     answer = public_check(archive, ids[1], digest)
     assert answer["authentic"] and answer["withdrawn_reason"] == "damaged"
     assert not public_check(archive, ids[0], digest)["authentic"]
+
+
+def test_blobs_live_in_the_database_and_are_checked_on_read(server_storage):
+    """On a server the raw files need no shared folder: the same SHA-256-addressed store, kept
+    in a table, and verify sees an altered row as it sees an altered file."""
+    import hashlib
+
+    from service.storage import DatabaseBlobStore
+
+    blobs = server_storage.blobs
+    assert isinstance(blobs, DatabaseBlobStore)
+    data = b"bias_V,conductance_S\n0,1.5\n"
+    digest = blobs.put(data)
+    assert digest == hashlib.sha256(data).hexdigest()  # reference: Python's hashlib
+    assert blobs.put(data) == digest and blobs.get(digest) == data
+    assert blobs.size(digest) == len(data) and blobs.digest_on_disk(digest) == digest
+    with server_storage.engine.begin() as conn:
+        assert conn.execute(text("SELECT count(*) FROM blob_data")).scalar() == 1
+        conn.execute(text("UPDATE blob_data SET data = 'altered'::bytea"))
+    assert blobs.digest_on_disk(digest) not in (None, digest)
+    assert blobs.digest_on_disk("0" * 64) is None
+    with pytest.raises(KeyError, match="missing"):
+        blobs.get("0" * 64)
+    with pytest.raises(ValueError):
+        blobs.get("../../etc/passwd")

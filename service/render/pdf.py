@@ -246,11 +246,13 @@ def render_pdf(
     record: Mapping[str, Any],
     plots: Mapping[str, str] | None = None,
     check: Mapping[str, str] | None = None,
+    seal: Mapping[str, Any] | None = None,
 ) -> bytes:
     """The certificate as PDF bytes (A4): the same blocks as the HTML page, laid out on pages.
 
     ``check`` (issued certificates) adds, below the certificate's number, where and how a holder
     checks the file: the number, the SHA-256 of the signed record, the address and its QR code.
+    ``seal`` adds the signature details to the authorisation section (as on the HTML page).
     """
     cid = str(record.get("certificate_id", "unnumbered"))
     state = str(record.get("state", "draft"))
@@ -261,7 +263,7 @@ def render_pdf(
         subject=f"Certificate {cid}",
         author=str((record.get("laboratory") or {}).get("name", "")),
     )
-    blocks = content.certificate_blocks(record, plots)
+    blocks = content.certificate_blocks(record, plots, seal)
     story = _flowables(blocks, TEXT_WIDTH)
     if check:
         # Headings and texts map one to one onto flowables, so the place after the number line

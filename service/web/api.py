@@ -90,9 +90,12 @@ def _json_body() -> dict[str, Any]:
 
 @bp.get("/health")
 def health():
+    """Database reachable; the job queue's depth and the analysis workers seen."""
     with services().storage.read() as conn:
         conn.execute(select(1))
-    return jsonify(status="ok")
+    queue = services().queue_health()
+    status = "ok" if queue.get("broker_ok", True) else "degraded"
+    return jsonify(status=status, queue=queue)
 
 
 @bp.get("/openapi.json")
@@ -111,7 +114,7 @@ def public_key():
 
 def accept_uploaded(uploads: list[tuple[str, bytes]]):
     """Validate and store the files of the current request as a run (API and web form alike)."""
-    return accept_run(
+    accepted = accept_run(
         services().storage,
         services().archive,
         import_string(current_app.config["LOAD_RUN"]),
@@ -123,6 +126,8 @@ def accept_uploaded(uploads: list[tuple[str, bytes]]):
         max_bytes=current_app.config["MAX_RUN_BYTES"],
         max_files=current_app.config["MAX_RUN_FILES"],
     )
+    services().submit(accepted.job_id)
+    return accepted
 
 
 @bp.post("/runs")
@@ -224,8 +229,23 @@ def get_certificate(certificate_id: str):
     return jsonify(services().archive.get(certificate_id))
 
 
+def seal_of(info: dict[str, Any]) -> dict[str, Any] | None:
+    """The signature details an issued certificate's renderings show (None for a draft)."""
+    if info.get("sequence") is None:
+        return None
+    return {
+        "sequence": info["sequence"],
+        "sha256": info["sha256"],
+        "key_id": info.get("key_id") or services().key.key_id,
+        "public_key_url": url_for("api.public_key", _external=True),
+    }
+
+
 def _cached_pdf(
-    record: dict[str, Any], plots_sha256: str | None, check: dict[str, str] | None = None
+    record: dict[str, Any],
+    plots_sha256: str | None,
+    check: dict[str, str] | None = None,
+    seal: dict[str, Any] | None = None,
 ) -> bytes:
     """PDF of a record; laying out the plots takes seconds, so identical requests reuse it.
 
@@ -238,7 +258,8 @@ def _cached_pdf(
 
     key = sha256_hex(
         canonical_json(
-            {"record": record, "plots": plots_sha256, "renderer": RENDERER_VERSION, "check": check}
+            {"record": record, "plots": plots_sha256, "renderer": RENDERER_VERSION,
+             "check": check, "seal": seal}
         )
     )
     folder = Path(current_app.instance_path) / "cache" / "pdf"
@@ -248,7 +269,7 @@ def _cached_pdf(
             return data
         logger.warning("PDF cache file %s does not match its name; laying out again", path.name)
         path.unlink(missing_ok=True)
-    pdf = render_pdf(record, services().archive.plots(plots_sha256), check=check)
+    pdf = render_pdf(record, services().archive.plots(plots_sha256), check=check, seal=seal)
     path = folder / f"{key}-{sha256_hex(pdf)}.pdf"
     folder.mkdir(parents=True, exist_ok=True)
     tmp = path.with_suffix(f".{os.getpid()}.tmp")
@@ -283,9 +304,12 @@ def render(info: dict[str, Any], fmt: str) -> tuple[bytes | str, str]:
     if fmt == "html":
         from service.render.html import render_html
 
-        return render_html(record, services().archive.plots(info.get("plots_sha256"))), RENDERINGS[fmt]
+        plots = services().archive.plots(info.get("plots_sha256"))
+        return render_html(record, plots, seal_of(info)), RENDERINGS[fmt]
     if fmt == "pdf":
-        return _cached_pdf(record, info.get("plots_sha256"), check_block(info)), RENDERINGS[fmt]
+        return _cached_pdf(
+            record, info.get("plots_sha256"), check_block(info), seal_of(info)
+        ), RENDERINGS[fmt]
     if fmt == "xml":
         from service.render.dcc import configured_schema, render_dcc, validate_dcc
 
@@ -404,8 +428,10 @@ def queue_reproduction(certificate_id: str) -> str:
     """Queue a re-analysis of an archived certificate from its raw data; returns the job id."""
     info = services().archive.get(certificate_id)
     with services().storage.write() as conn:
-        return enqueue(conn, purpose="reproduce", run_id=info["run_id"], requested_by=g.user,
-                       certificate_id=certificate_id)
+        job_id = enqueue(conn, purpose="reproduce", run_id=info["run_id"], requested_by=g.user,
+                         certificate_id=certificate_id)
+    services().submit(job_id)
+    return job_id
 
 
 @bp.get("/certificates/<certificate_id>/verify")

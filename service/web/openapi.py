@@ -88,7 +88,14 @@ def openapi_document() -> dict[str, Any]:
             },
         },
         "paths": {
-            "/api/health": {"get": _op("Service is up", [], {"200": _json("ok")})},
+            "/api/health": {
+                "get": _op(
+                    "Service is up; job counts by status, queue mode, messages waiting in the "
+                    "broker and the number of analysis workers seen",
+                    [],
+                    {"200": _json("ok")},
+                )
+            },
             "/api/openapi.json": {"get": _op("This document", [], {"200": _json("OpenAPI")})},
             "/api/public-key": {
                 "get": _op("The lab's Ed25519 public key", [], {"200": _json("key")})

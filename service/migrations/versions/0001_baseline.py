@@ -16,6 +16,8 @@ APPEND_ONLY_TABLES = ("chain", "events")
 
 
 def upgrade() -> None:
+    """Create today's tables, indexes and triggers. Long because it is one frozen list of DDL
+    (generated once from the metadata), which must never change once shipped."""
     op.create_table('blobs',
     sa.Column('sha256', sa.String(length=64), nullable=False),
     sa.Column('size', sa.Integer(), nullable=False),

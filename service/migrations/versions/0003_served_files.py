@@ -1,15 +1,15 @@
 """served_files: the SHA-256 of every file of an issued certificate the service handed out, so
 that a customer's copy can be recognised by the public check (docs/history.md). Append-only.
 
-Revision ID: 0002_served_files
-Revises: 0001_baseline
+Revision ID: 0003_served_files
+Revises: 0002_distributed_queue
 """
 
 import sqlalchemy as sa
 from alembic import op
 
-revision = "0002_served_files"
-down_revision = "0001_baseline"
+revision = "0003_served_files"
+down_revision = "0002_distributed_queue"
 branch_labels = None
 depends_on = None
 
