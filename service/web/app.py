@@ -102,7 +102,7 @@ def content_security_policy() -> str:
         "default-src 'self'; "
         f"script-src 'self' 'nonce-{csp_nonce()}'; "
         "style-src 'self' 'unsafe-inline'; img-src 'self' data:; object-src 'none'; "
-        "base-uri 'none'; frame-ancestors 'none'; form-action 'self'"
+        "base-uri 'none'; frame-ancestors 'self'; form-action 'self'"
     )
 
 
