@@ -58,8 +58,10 @@ class Cluster:
     def start_worker(self, name: str) -> subprocess.Popen:
         folder = self.tmp_path / name
         folder.mkdir(parents=True, exist_ok=True)
+        # The lab's public configuration only: its public key, never the signing key.
+        config = {**self.worker_config, "LAB_PUBLIC_KEY": self.lab.services.key.public_raw.hex()}
         (folder / "config.py").write_text(
-            "".join(f"{key} = {value!r}\n" for key, value in self.worker_config.items())
+            "".join(f"{key} = {value!r}\n" for key, value in config.items())
         )
         env = {**os.environ, "OPENBLAS_NUM_THREADS": "1", "PYTHONPATH": str(REPO)}
         command = [sys.executable, "-m", "service.cli.main", "work", "--quick", "--processes", "1"]

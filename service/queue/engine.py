@@ -39,7 +39,6 @@ from sqlalchemy import func, select
 from sqlalchemy.exc import OperationalError
 
 from service import storage as st
-from service.archive import Archive
 from service.queue.jobs import (
     WorkerSettings,
     _host_id,
@@ -142,7 +141,7 @@ class _Context:
         self.pid = os.getpid()
         self.settings = settings
         self.storage = settings.open_storage()
-        self.archive = Archive(self.storage, None, number_prefix=settings.number_prefix)
+        self.archive = settings.open_archive(self.storage)
         self.certify = import_string(settings.certify)
         self.load_run = import_string(settings.load_run)
 

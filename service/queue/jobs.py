@@ -337,6 +337,19 @@ class WorkerSettings:
     #: Keyword options for the analysis (e.g. {"fast": True}); recorded with each certificate.
     options: dict[str, Any] = field(default_factory=dict)
 
+    #: The lab's public keys (hex): the current one and earlier ones. Reading an issued
+    #: certificate (a reproduction) checks its signed entry; drafting needs no key at all.
+    public_keys: list[str] = field(default_factory=list)
+
+    def open_archive(self, storage: Storage) -> Archive:
+        """The archive as a worker sees it: it drafts and verifies, it never signs."""
+        return Archive(
+            storage,
+            None,
+            number_prefix=self.number_prefix,
+            trusted_public_keys=[bytes.fromhex(h) for h in self.public_keys],
+        )
+
     def open_storage(self, read_only: bool = False) -> Storage:
         return Storage(self.database_url, self.blob_root, self.blob_store, read_only=read_only)
 
@@ -465,7 +478,7 @@ def worker_main(settings: WorkerSettings, stop: Any) -> None:
     logging.basicConfig(level=logging.INFO)
     storage = settings.open_storage()
     # Workers draft; they never sign, so they get no key.
-    archive = Archive(storage, None, number_prefix=settings.number_prefix)
+    archive = settings.open_archive(storage)
     certify = import_string(settings.certify)
     load_run = import_string(settings.load_run)
     worker = f"{_host_id()}:{os.getpid()}:{uuid.uuid4().hex[:8]}"

@@ -52,6 +52,10 @@ DEFAULTS: dict[str, Any] = {
     # Distributed queue: seconds before Redis re-delivers a message whose worker vanished;
     # None = JOB_TIME_LIMIT + 330 s. Must exceed the longest job.
     "BROKER_VISIBILITY_TIMEOUT": None,
+    # The lab's public key (hex, as /api/public-key shows it) for analysis workers on machines
+    # without the instance folder: a reproduction checks the signed entry it re-runs.
+    # COLDCERT_LAB_PUBLIC_KEY sets it too.
+    "LAB_PUBLIC_KEY": None,
     "WORKERS": 2,
     "START_WORKERS": False,
     "CERTIFY": "service.calibrations.certify:certify_run",
@@ -219,17 +223,34 @@ def load_config(instance: Path, overrides: Mapping[str, Any] | None = None) -> C
     config = Config(str(instance))
     config.from_mapping(DEFAULTS)
     config.from_pyfile("config.py", silent=True)
-    for key, variable in (("DATABASE_URL", DATABASE_ENV), ("BROKER_URL", BROKER_ENV)):
+    for key, variable in (
+        ("DATABASE_URL", DATABASE_ENV),
+        ("BROKER_URL", BROKER_ENV),
+        ("LAB_PUBLIC_KEY", "COLDCERT_LAB_PUBLIC_KEY"),
+    ):
         if os.environ.get(variable):
             config[key] = os.environ[variable]
     config.update({k: v for k, v in (overrides or {}).items() if k != "INSTANCE_PATH"})
     return config
 
 
+def _public_hex(pem: Path) -> str:
+    from cryptography.hazmat.primitives import serialization
+
+    public = serialization.load_pem_public_key(pem.read_bytes())
+    return public.public_bytes(serialization.Encoding.Raw, serialization.PublicFormat.Raw).hex()
+
+
 def worker_settings(config: Mapping[str, Any], instance: Path) -> WorkerSettings:
     """What an analysis worker needs: database, blob store and the lab's public settings (never
     the signing key)."""
+    public_keys = [config["LAB_PUBLIC_KEY"]] if config.get("LAB_PUBLIC_KEY") else []
+    public_keys += list(config.get("TRUSTED_PUBLIC_KEYS", ()))
+    pem = instance / "keys" / LabKey.PUBLIC_NAME
+    if pem.is_file():  # a copy of the lab's public key, e.g. on the web machine itself
+        public_keys.append(_public_hex(pem))
     return WorkerSettings(
+        public_keys=public_keys,
         database_url=config["DATABASE_URL"] or default_database_url(instance),
         blob_root=str(instance / "blobs"),
         blob_store=config["BLOB_STORE"],
@@ -289,6 +310,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
         number_prefix=app.config["CERTIFICATE_PREFIX"],
         trusted_public_keys=trusted,
     )
+    settings.public_keys = [key.public_raw.hex(), *settings.public_keys]
     services = Services(storage, archive, key, settings)
     if app.config["BROKER_URL"]:
         services.engine = EngineQueue(storage, settings, engine_settings(app.config))
