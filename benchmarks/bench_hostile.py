@@ -72,25 +72,47 @@ def post(url: str, token: str, files, fields=None) -> int:
     return status
 
 
-def fuzz_uploads(url: str, token: str, count: int) -> collections.Counter:
-    from hypothesis import HealthCheck, Phase, given, settings
+def fuzz_uploads_in_parallel(url: str, token: str, count: int, clients: int) -> collections.Counter:
+    """``clients`` processes, each its own Hypothesis run with its own seed, on one server."""
+    import multiprocessing
+
+    shares = [count // clients + (1 if i < count % clients else 0) for i in range(clients)]
+    with multiprocessing.get_context("spawn").Pool(clients) as pool:
+        parts = pool.starmap(fuzz_uploads, [(url, token, n, i) for i, n in enumerate(shares)])
+    total: collections.Counter = collections.Counter()
+    for part in parts:
+        total.update(part)
+    return total
+
+
+def fuzz_uploads(url: str, token: str, count: int, client: int = 0) -> collections.Counter:
+    import warnings
+
+    from hypothesis import HealthCheck, Phase, given, seed, settings
+
+    warnings.simplefilter("ignore")
 
     from tests.fuzz_strategies import SEEDS, UPLOADS
 
     statuses: collections.Counter = collections.Counter()
     examples: dict[int, object] = {}
 
+    @seed(20261202 + client)
     @settings(max_examples=count, deadline=None, database=None, phases=[Phase.generate],
               suppress_health_check=list(HealthCheck))
-    @given(files=UPLOADS, seed=SEEDS)
-    def send(files, seed):
-        fields = {} if seed is None or "\x00" in seed else {"seed": seed}
+    @given(files=UPLOADS, seed_text=SEEDS)
+    def send(files, seed_text):
+        fields = {} if seed_text is None or "\x00" in seed_text else {"seed": seed_text}
         try:
             status = post(url, token, files, fields)
         except Exception as exc:  # a dropped connection counts as a server failure
             status = 599
             examples.setdefault(status, repr(exc))
         statuses[status] += 1
+        done = sum(statuses.values())
+        if done % 500 == 0:
+            print(f"  client {client}: {done} uploads, statuses {dict(sorted(statuses.items()))}",
+                  flush=True)
         if status >= 500:
             examples.setdefault(status, [(n, d[:60]) for n, d in files])
 
@@ -167,13 +189,14 @@ def main() -> None:
     parser.add_argument("--uploads", type=int, default=10_000)
     parser.add_argument("--cli", type=int, default=2_000)
     parser.add_argument("--bomb-mb", type=int, default=250)
+    parser.add_argument("--clients", type=int, default=2, help="uploading processes")
     args = parser.parse_args()
     with tempfile.TemporaryDirectory(prefix="coldcert-bench-hostile-") as tmp:
         proc, url, tokens = start_server(Path(tmp))
         try:
             zip_bombs(url, tokens["olga"], proc.pid, size_mb=args.bomb_mb)
             started = time.perf_counter()
-            statuses = fuzz_uploads(url, tokens["olga"], args.uploads)
+            statuses = fuzz_uploads_in_parallel(url, tokens["olga"], args.uploads, args.clients)
             total = sum(statuses.values())
             failures = sum(v for k, v in statuses.items() if k >= 500)
             print(f"uploads: {total} fuzzed uploads in {time.perf_counter() - started:.0f} s → "

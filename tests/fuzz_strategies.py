@@ -126,7 +126,8 @@ def archive_uploads(draw) -> list[tuple[str, bytes]]:
         else:
             mode = {"tar": "w", "tar.gz": "w:gz", "tar.xz": "w:xz"}[kind]
             data, name = _tar(members, mode), "run." + kind
-    except (ValueError, UnicodeEncodeError):
+    except (ValueError, UnicodeEncodeError, IndexError, OSError):
+        # Names zipfile/tarfile cannot write (empty after normalising, too long for a header).
         data, name = b"", "run.zip"
     damage = draw(hs.sampled_from(["none", "flip", "truncate", "splice"]))
     if data and damage == "flip":
