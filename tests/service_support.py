@@ -156,3 +156,16 @@ class LiveServer:
                 return reply.status, dict(reply.headers), reply.read()
         except urllib.error.HTTPError as reply:
             return reply.code, dict(reply.headers), reply.read()
+
+
+def issuable_fields(laboratory: str) -> dict:
+    """What ISO/IEC 17025 7.8.2.1 asks a certificate to state besides its results, so that a
+    stand-in draft can be issued by the archive (invented values)."""
+    return {
+        "title": "Calibration certificate",
+        "laboratory": {"name": laboratory, "address": "1 Test Road"},
+        "customer": {"name": "Cryolab North", "address": "North Road"},
+        "item": {"description": "test thermometer", "identifier": "T-1"},
+        "dates": {"measured": "2026-11-24"},
+        "method": {"description": "stand-in analysis for archive tests"},
+    }

@@ -26,6 +26,7 @@ from service.archive import (
     verify_signed_document,
 )
 from service.storage import Storage, default_database_url, sha256_hex
+from tests.service_support import issuable_fields
 
 # ---- published test vectors -----------------------------------------------------------------
 
@@ -110,12 +111,7 @@ def _fake_certify(run: Path, seed: int, progress=None) -> dict:
     u = float(draws.std(ddof=1))
     return {
         # Everything ISO/IEC 17025 7.8.2.1 asks a certificate to state, so that it can be issued.
-        "title": "Calibration certificate",
-        "laboratory": {"name": "Archive Test Lab", "address": "1 Test Road"},
-        "customer": {"name": "Cryolab North", "address": "North Road"},
-        "item": {"description": "test thermometer", "identifier": "T-1"},
-        "dates": {"measured": "2026-11-24"},
-        "method": {"description": "stand-in analysis for archive tests"},
+        **issuable_fields("Archive Test Lab"),
         "results": [
             {
                 "name": "electron temperature",

@@ -18,6 +18,7 @@ from service import storage as st
 from service.archive import Archive, LabKey
 from service.queue.jobs import claim, enqueue
 from service.storage import Storage, utc_now
+from tests.service_support import issuable_fields
 
 URL = os.environ.get("COLDCERT_TEST_DATABASE_URL", "")
 pytestmark = pytest.mark.skipif(
@@ -45,12 +46,7 @@ def _drop_everything(storage: Storage) -> None:
 def _complete_record(value: float) -> dict:
     """A draft that states what ISO/IEC 17025 7.8.2.1 asks, so the archive lets it be issued."""
     return {
-        "title": "Calibration certificate",
-        "laboratory": {"name": "Server Test Lab", "address": "1 Test Road"},
-        "customer": {"name": "A", "address": "North Road"},
-        "item": {"description": "test thermometer", "identifier": "CBT SN 7"},
-        "dates": {"measured": "2026-11-24"},
-        "method": {"description": "stand-in record for the server tests"},
+        **issuable_fields("Server Test Lab"),
         "results": [{"name": "electron temperature", "sweep": "s.csv", "value": value,
                      "unit": "K", "standard_uncertainty": 0.001, "expanded_uncertainty": 0.002,
                      "coverage_factor": 2.0, "coverage_probability": 0.95}],
