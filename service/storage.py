@@ -4,9 +4,11 @@ Everything the service keeps goes through here. Tables are declared with SQLAlch
 same statements run on the embedded default (SQLite in WAL mode inside the instance folder) and on
 a PostgreSQL server chosen by a database URL; nothing outside this module knows which one it is.
 
-Raw bytes (uploaded measurement files) do not go into the database. They live in a blob folder,
-one file per content, named by its SHA-256, so identical uploads share one copy and a stored file
-can always be checked against its name. A blob is written to a temporary file in the same folder,
+On the embedded default raw bytes (uploaded measurement files, plots, output files) do not go into
+the database. They live in a blob folder, one file per content, named by its SHA-256, so
+identical uploads share one copy and a stored file can always be checked against its name. On a
+database server they go into the ``blob_data`` table instead, by the same content address, so
+workers on other machines need no shared folder (:class:`DatabaseBlobStore`). A blob is written to a temporary file in the same folder,
 flushed to disk (fsync) and then renamed into place: a crash leaves either the whole file or
 nothing, never a partial blob under a valid name (POSIX rename is atomic within one file system).
 """
@@ -36,6 +38,7 @@ from sqlalchemy import (
     ForeignKey,
     Index,
     Integer,
+    LargeBinary,
     MetaData,
     String,
     Table,
@@ -43,8 +46,10 @@ from sqlalchemy import (
     create_engine,
     event,
     inspect,
+    select,
 )
 from sqlalchemy.engine import make_url
+from sqlalchemy.exc import IntegrityError
 
 logger = logging.getLogger(__name__)
 
@@ -82,6 +87,15 @@ blobs = Table(
     Column("sha256", String(64), primary_key=True),
     Column("size", Integer, nullable=False),
     Column("stored_at", String(40), nullable=False),
+)
+
+#: Blob contents when they live in the database (``BLOB_STORE = "database"``, the default on a
+#: database server), so workers on other machines need no shared folder.
+blob_data = Table(
+    "blob_data",
+    metadata,
+    Column("sha256", String(64), primary_key=True),
+    Column("data", LargeBinary, nullable=False),
 )
 
 #: An accepted upload: a validated run folder.
@@ -128,6 +142,8 @@ jobs = Table(
     Column("started_at", String(40), nullable=True),
     Column("finished_at", String(40), nullable=True),
     Column("result_json", Text, nullable=True),
+    # Distributed queue only: when the job's message was last handed to the broker.
+    Column("dispatched_at", String(40), nullable=True),
 )
 Index("ix_jobs_status", jobs.c.status, jobs.c.created_at)
 
@@ -163,7 +179,11 @@ certificates = Table(
     Column("sequence", Integer, nullable=True, unique=True),
     Column("withdrawn_reason", Text, nullable=True),
     Column("withdrawn_at", String(40), nullable=True),
+    # The job that drafted it (None for amendments). Unique: a job delivered twice by the queue
+    # can never leave two drafts.
+    Column("job_id", String(40), nullable=True),
 )
+Index("ux_certificates_job_id", certificates.c.job_id, unique=True)
 Index(
     "ix_certificates_search", certificates.c.state, certificates.c.kind, certificates.c.created_at
 )
@@ -194,6 +214,18 @@ events = Table(
     Column("action", String(60), nullable=False),
     Column("subject", String(120), nullable=False, default=""),
     Column("detail_json", Text, nullable=False, default="{}"),
+)
+
+#: The SHA-256 of every file of an issued certificate the service handed out (PDF, JSON, signed
+#: entry, DCC, HTML), so that a customer can later show a file and ask whether it is authentic.
+#: Append-only like chain and events (migration 0003_served_files).
+served_files = Table(
+    "served_files",
+    metadata,
+    Column("certificate_id", String(60), primary_key=True),
+    Column("sha256", String(64), primary_key=True),
+    Column("rendering", String(20), nullable=False),
+    Column("first_served_at", String(40), nullable=False),
 )
 
 #: Named counters (certificate numbers, chain sequence lock row).
@@ -240,6 +272,44 @@ def pid_alive(pid: int) -> bool:
     except PermissionError:
         return True
     return True
+
+
+def clean_scratch_places(own: Path | None, older_than: float = SCRATCH_MAX_AGE_SECONDS) -> list[str]:
+    """Remove what stopped processes left in ``own`` (a store's private temporary folder) and,
+    by their coldcert prefixes, in the system's temporary folder. Returns the names removed."""
+    removed = []
+    host, now = socket.gethostname(), time.time()
+    places = [p for p in (own, Path(tempfile.gettempdir())) if p is not None]
+    for place in places:
+        try:
+            entries = list(place.iterdir())
+        except OSError:
+            continue
+        for entry in entries:
+            name = entry.name
+            legacy = place != own
+            if legacy and not name.startswith(_SCRATCH_PREFIXES):
+                continue
+            match = _OWNER.search(name)
+            try:
+                age = now - entry.lstat().st_mtime
+            except OSError:
+                continue
+            dead = match is not None and match["host"] == host and not pid_alive(int(match["pid"]))
+            if not (dead or age > older_than):
+                continue
+            try:
+                if entry.is_dir() and not entry.is_symlink():
+                    shutil.rmtree(entry)
+                else:
+                    entry.unlink()
+            except OSError:
+                continue
+            removed.append(name)
+    if removed:
+        logger.warning("removed %d temporary file(s) left by stopped processes: %s",
+                       len(removed), removed[:10])
+    return removed
 
 
 class BlobStore:
@@ -302,44 +372,15 @@ class BlobStore:
         """Remove temporary folders and partial blobs left by processes that are gone: those of
         this host whose process no longer exists, and any older than ``older_than`` seconds.
         Returns the names removed."""
-        removed = []
         if self.read_only:
-            return removed
-        host, now = socket.gethostname(), time.time()
-        places = [self.root / "tmp", Path(tempfile.gettempdir())]
-        for place in places:
-            try:
-                entries = list(place.iterdir())
-            except OSError:
-                continue
-            for entry in entries:
-                name = entry.name
-                legacy = place != self.root / "tmp"
-                if legacy and not name.startswith(_SCRATCH_PREFIXES):
-                    continue
-                match = _OWNER.search(name)
-                try:
-                    age = now - entry.lstat().st_mtime
-                except OSError:
-                    continue
-                dead = match is not None and match["host"] == host and not pid_alive(int(match["pid"]))
-                if not (dead or age > older_than):
-                    continue
-                try:
-                    if entry.is_dir() and not entry.is_symlink():
-                        shutil.rmtree(entry)
-                    else:
-                        entry.unlink()
-                except OSError:
-                    continue
-                removed.append(name)
-        if removed:
-            logger.warning("removed %d temporary file(s) left by stopped processes: %s",
-                           len(removed), removed[:10])
-        return removed
+            return []
+        return clean_scratch_places(self.root / "tmp", older_than)
 
     def exists(self, digest: str) -> bool:
         return self.path(digest).is_file()
+
+    def size(self, digest: str) -> int:
+        return self.path(digest).stat().st_size
 
     def digest_on_disk(self, digest: str) -> str | None:
         """SHA-256 of what is actually stored under ``digest`` (None if the file is missing)."""
@@ -351,6 +392,72 @@ class BlobStore:
             for chunk in iter(lambda: handle.read(1 << 20), b""):
                 hasher.update(chunk)
         return hasher.hexdigest()
+
+
+class DatabaseBlobStore:
+    """The same content-addressed store as :class:`BlobStore`, kept in the ``blob_data`` table.
+
+    For a database server shared by several machines: a worker elsewhere reads raw files and
+    writes renderings through the database URL alone. Each blob is written in a transaction of
+    its own (content-addressed, so a blob left behind by a rolled-back caller is harmless, as in
+    the folder); a read returns exactly the stored bytes, and ``digest_on_disk`` hashes them so
+    verify catches an altered row as it catches an altered file.
+    """
+
+    def __init__(self, engine: Engine) -> None:
+        self.engine = engine
+
+    def scratch(self, purpose: str) -> tempfile.TemporaryDirectory:
+        """A private temporary folder in the system's temporary folder (there is no blob folder),
+        named with this process's id and host so :meth:`clean_scratch` can tell it is orphaned."""
+        return tempfile.TemporaryDirectory(prefix=f"coldcert-{purpose}-{_owner()}")
+
+    def clean_scratch(self, older_than: float = SCRATCH_MAX_AGE_SECONDS) -> list[str]:
+        return clean_scratch_places(None, older_than)
+
+    @staticmethod
+    def _check(digest: str) -> str:
+        if len(digest) != 64 or any(c not in "0123456789abcdef" for c in digest):
+            raise ValueError(f"not a SHA-256 hex digest: {digest!r}")
+        return digest
+
+    def put(self, data: bytes) -> str:
+        digest = sha256_hex(data)
+        with self.engine.begin() as conn:
+            found = conn.execute(
+                select(blob_data.c.sha256).where(blob_data.c.sha256 == digest)
+            ).first()
+            if found is None:
+                try:
+                    with conn.begin_nested():
+                        conn.execute(blob_data.insert().values(sha256=digest, data=bytes(data)))
+                except IntegrityError:  # the same content stored by another process meanwhile
+                    pass
+        return digest
+
+    def _load(self, digest: str) -> bytes | None:
+        with self.engine.connect() as conn:
+            row = conn.execute(
+                select(blob_data.c.data).where(blob_data.c.sha256 == self._check(digest))
+            ).first()
+        return None if row is None else bytes(row.data)
+
+    def get(self, digest: str) -> bytes:
+        data = self._load(digest)
+        if data is None:
+            raise KeyError(f"raw file {digest} is missing from the database blob table")
+        return data
+
+    def exists(self, digest: str) -> bool:
+        return self._load(digest) is not None
+
+    def size(self, digest: str) -> int:
+        return len(self.get(digest))
+
+    def digest_on_disk(self, digest: str) -> str | None:
+        """SHA-256 of what is actually stored under ``digest`` (None if it is missing)."""
+        data = self._load(digest)
+        return None if data is None else sha256_hex(data)
 
 
 def _fsync_directory(path: Path) -> None:
@@ -371,14 +478,31 @@ class Storage:
     """Database engine plus blob folder for one service instance."""
 
     def __init__(
-        self, database_url: str, blob_root: str | os.PathLike[str], read_only: bool = False
+        self,
+        database_url: str,
+        blob_root: str | os.PathLike[str] | None,
+        blob_store: str = "auto",
+        read_only: bool = False,
     ) -> None:
-        """``read_only`` opens an archive copy for auditing: SQLite in read-only mode, no
-        pragma or schema that writes, nothing created in the blob folder."""
+        """``blob_store``: "folder" (files under ``blob_root``), "database" (the ``blob_data``
+        table) or "auto": the folder with SQLite, the database with a server. ``read_only``
+        opens an archive copy for auditing: SQLite in read-only mode, no pragma or schema that
+        writes, nothing created in the blob folder."""
         self.database_url = database_url
         self.read_only = read_only
         self.engine: Engine = _make_engine(database_url, read_only=read_only)
-        self.blobs = BlobStore(blob_root, read_only=read_only)
+        if blob_store == "auto":
+            blob_store = "folder" if self.is_sqlite else "database"
+        if blob_store == "database" and self.is_sqlite:
+            raise ValueError("BLOB_STORE 'database' needs a database server; SQLite keeps blobs in a folder")
+        if blob_store == "database":
+            self.blobs: BlobStore | DatabaseBlobStore = DatabaseBlobStore(self.engine)
+        elif blob_store == "folder":
+            if blob_root is None:
+                raise ValueError("a blob folder is needed when BLOB_STORE is 'folder'")
+            self.blobs = BlobStore(blob_root, read_only=read_only)
+        else:
+            raise ValueError(f"BLOB_STORE must be 'auto', 'folder' or 'database', not {blob_store!r}")
 
     @property
     def is_sqlite(self) -> bool:

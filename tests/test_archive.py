@@ -26,7 +26,7 @@ from service.archive import (
     verify_signed_document,
 )
 from service.storage import Storage, default_database_url, sha256_hex
-from tests.service_support import issuable_fields
+from tests.service_support import complete_record
 
 # ---- published test vectors -----------------------------------------------------------------
 
@@ -109,23 +109,13 @@ def _fake_certify(run: Path, seed: int, progress=None) -> dict:
     if progress:
         progress(1.0, "done")
     u = float(draws.std(ddof=1))
-    return {
-        # Everything ISO/IEC 17025 7.8.2.1 asks a certificate to state, so that it can be issued.
-        **issuable_fields("Archive Test Lab"),
-        "results": [
-            {
-                "name": "electron temperature",
-                "sweep": "sweep.csv",
-                "value": float(draws.mean()),
-                "unit": "K",
-                "standard_uncertainty": u,
-                "expanded_uncertainty": 2 * u,
-                "coverage_factor": 2.0,
-                "coverage_probability": 0.95,
-                "budget": {"effective_degrees_of_freedom": None},
-            }
-        ],
-    }
+    # Everything ISO/IEC 17025 7.8.2.1 asks a certificate to state, so that it can be issued.
+    return complete_record(
+        float(draws.mean()),
+        u,
+        sweep="sweep.csv",
+        budget={"effective_degrees_of_freedom": None},
+    )
 
 
 class Lab:

@@ -138,3 +138,40 @@ def test_renderings_are_repeatable():
     record = _record("sensor-larkspur")
     assert render_html(record) == render_html(record)
     assert render_pdf(record) == render_pdf(record)
+
+
+def test_fields_in_a_defined_order_and_the_manifest_among_the_records():
+    # The canonical JSON sorts keys; the certificate must not (ISO/IEC 17025 7.8.2.1: name and
+    # address of the laboratory; dates of receipt, measurement and issue in that order).
+    record = _record("sensor-larkspur")
+    record["dates"]["issued"] = "2026-12-01"
+    html = render_html(record)
+    lab, cust = record["laboratory"], record["customer"]
+    assert html.index(lab["name"]) < html.index(lab["address"])
+    assert html.index(cust["name"]) < html.index(cust["address"])
+    assert html.index("item received") < html.index("date of measurement") < html.index("date of issue")
+    assert "run.toml (manifest)" in html and record["inputs"]["manifest_sha256"] in html
+    # A dimensionless sensitivity coefficient reads "1", never "1 1".
+    assert "<td class=\"num\">1 1</td>" not in html
+
+
+def test_issued_certificate_states_its_electronic_signature_in_html_and_pdf():
+    from service.render.content import certificate_blocks
+
+    record = _record("sensor-larkspur")
+    record.update(state="issued", certificate_id="CC-2026-00077")
+    record["dates"]["issued"] = "2026-12-01"
+    record["people"]["approver"] = "B. Approver"
+    seal = {"sequence": 12, "sha256": "ab" * 32, "key_id": "ed25519:0123456789abcdef",
+            "public_key_url": "https://lab.example/api/public-key"}
+    html = render_html(record, None, seal)
+    pdf_text = _pdf_text(render_pdf(record, None, seal), record["certificate_id"])
+    for text in ("signed electronically", "B. Approver (approver", "entry 12", "ab" * 32,
+                 "ed25519:0123456789abcdef", "coldcert verify CC-2026-00077",
+                 "https://lab.example/api/public-key"):
+        assert text in html, text
+        assert _squash(text) in pdf_text, text
+    # A draft says it is not yet authorised, and carries no signature details.
+    draft = _record("sensor-larkspur")
+    texts = " ".join(getattr(b, "text", "") for b in certificate_blocks(draft))
+    assert "Not yet issued" in texts and "signed electronically" not in texts

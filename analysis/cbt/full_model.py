@@ -111,8 +111,10 @@ class FullTunnellingShape:
     """Full orthodox-tunnelling dip shape G/G_T(x, u) of a uniform chain of N junctions.
 
     A dip shape in the sense of analysis.cbt.models: ``shape(x, u)`` with x = eV/(N k_B T) and
-    u = ΔE/(k_B T), ΔE = ((N − 1)/N) e²/C, broadcasting x against u; vectorised (measured
-    3.3–3.8e6 points per second on a shared 2-core machine, benchmarks/bench_full_model.py).
+    u = ΔE/(k_B T), ΔE = ((N − 1)/N) e²/C, broadcasting x against u; evaluated through a grid
+    built once from the table spline (analysis.cbt.dip_grid; 1.3–1.5e7 points per second for
+    16–64 walkers on a shared 2-core machine, about 5x the spline's own rate,
+    benchmarks/bench_full_model.py).
     Source: the orthodox master equation of PHYSICS.md 1.3 (Melsen et al., PRB 55, 10638 (1997)
     for arrays), solved exactly for N = 2, 3, 4 and continued in 1/N² (module docstring).
 

@@ -559,16 +559,18 @@ class Archive:
     def __init__(
         self,
         storage: Storage,
-        key: LabKey,
+        key: LabKey | None,
         *,
         number_prefix: str = "CC",
         trusted_public_keys: Iterable[bytes] = (),
     ) -> None:
+        """``key`` is the lab's signing key; None for an analysis worker, which drafts but never
+        signs (issuing and withdrawing stay with the process that holds the key)."""
         self.storage = storage
         self.key = key
         self.number_prefix = number_prefix
         # Keys the lab used before a key rotation still verify their old entries.
-        self.public_keys = {key.key_id: key.public_raw}
+        self.public_keys = {key.key_id: key.public_raw} if key is not None else {}
         self._public_key_objects: dict[str, Ed25519PublicKey] = {}
         for raw in trusted_public_keys:
             self.public_keys[sha256_hex(raw)[:16]] = raw
@@ -623,7 +625,7 @@ class Archive:
         exists = conn.execute(select(st.blobs.c.sha256).where(st.blobs.c.sha256 == digest)).first()
         if exists is None:
             if size is None:
-                size = self.storage.blobs.path(digest).stat().st_size
+                size = self.storage.blobs.size(digest)
             conn.execute(st.blobs.insert().values(sha256=digest, size=size, stored_at=utc_now()))
 
     def presentation(self, plots_sha256: str | None) -> tuple[dict[str, str], list[str]]:
@@ -684,11 +686,13 @@ class Archive:
         extra_files: Mapping[str, bytes] | None = None,
         html_sections: Iterable[str] = (),
         extras: Mapping[str, Mapping[str, Any]] | None = None,
+        job_id: str | None = None,
     ) -> str:
         """Store a draft certificate made from an analysis record; return its id.
 
         The service numbers certificates itself (unique, sequential per year); an identifier the
-        analysis derived from its inputs is kept as ``analysis_id``.
+        analysis derived from its inputs is kept as ``analysis_id``. ``job_id`` names the job
+        that made the draft; the database refuses a second draft for the same job.
         """
         run = conn.execute(select(st.runs).where(st.runs.c.id == run_id)).first()
         if run is None:
@@ -749,6 +753,7 @@ class Archive:
                 created_at=utc_now(),
                 replaces=replaces,
                 amendment_reason=amendment_reason,
+                job_id=job_id,
             )
         )
         log_event(
@@ -862,6 +867,8 @@ class Archive:
     def _append(
         self, conn: Connection, entry_type: str, certificate_id: str, body: Mapping[str, Any]
     ) -> tuple[int, str]:
+        if self.key is None:
+            raise ArchiveError("this process holds no signing key (an analysis worker cannot sign)", 500)
         # The counter row lock serialises appends on servers; on SQLite the write transaction
         # (BEGIN IMMEDIATE) already does.
         sequence = self.storage.next_counter(conn, "chain")
@@ -1142,6 +1149,7 @@ class Archive:
                 info["sha256"] = chain_row.sha256
                 info["previous_sha256"] = chain_row.previous_sha256
                 info["signature"] = chain_row.signature
+                info["key_id"] = chain_row.key_id
             elif conn.execute(
                 select(st.chain.c.sequence).where(st.chain.c.certificate_id == certificate_id)
             ).first() is not None:

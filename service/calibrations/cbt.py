@@ -16,6 +16,8 @@ from scipy import stats
 from analysis.cbt.choice import ModelChoice, fit_sweep_chosen
 from analysis.cbt.fit import (
     FitSettings,
+    ModelEdgeError,
+    PointError,
     SweepData,
     SweepError,
     SweepFit,
@@ -30,7 +32,7 @@ from analysis.cbt.models import (
     correct_series_resistance,
     higher_order_shape,
 )
-from analysis.cbt.uncertainty import TypeBInputs, temperature_budget
+from analysis.cbt.uncertainty import TypeBInputs, defaulted_inputs, temperature_budget
 from service.calibrations.outcome import CalibrationOutcome, CertificationRefused
 from service.calibrations.parallel import run_pieces
 from service.intake import IntakeError, Run, check_cbt_sweep, is_cbt_sweep, manifest_number
@@ -42,8 +44,6 @@ Progress = Callable[[float, str], None]
 #: Below this many bias half-widths on each side a warning goes into the diagnostics (the
 #: asymptote is then fixed only to ~1e-4 of the depth; docs/physics.md §1.4).
 WARN_RANGE_HALF_WIDTHS = 4.0
-#: Lag-1 autocorrelation of residuals above which the fit is flagged as structured.
-RESIDUAL_CORRELATION_LIMIT = 0.3
 #: Relative electron heating at the half-depth bias above which a sweep is flagged.
 HEATING_WARNING = 0.10
 
@@ -77,7 +77,7 @@ def type_b_inputs(manifest: dict, coverage_probability: float) -> TypeBInputs:
     gain = manifest_number(manifest, "instruments.bias_scale_relative_u", None)
     exc = manifest_number(manifest, "instruments.excitation_relative_u", None)
     spread = manifest_number(manifest, "device.resistance_spread", None)
-    rs_u = manifest_number(manifest, "device.series_resistance_u_ohm", 0.0)
+    rs_u = manifest_number(manifest, "device.series_resistance_u_ohm", None)
     return TypeBInputs(
         bias_scale_relative_u=1e-3 if gain is None else gain,
         bias_scale_stated=gain is not None,
@@ -86,7 +86,17 @@ def type_b_inputs(manifest: dict, coverage_probability: float) -> TypeBInputs:
         resistance_spread=0.02 if spread is None else spread,
         resistance_spread_stated=spread is not None,
         series_resistance_u_ohm=rs_u or 0.0,
+        series_resistance_stated=rs_u is not None,
         coverage_probability=coverage_probability,
+    )
+
+
+def sweep_inputs(inputs: TypeBInputs, metadata: dict) -> TypeBInputs:
+    """The run's Type B inputs with what one sweep's metadata states (excitation, series resistance)."""
+    return replace(
+        inputs,
+        excitation_amplitude_stated="excitation_rms_V" in metadata,
+        series_resistance_stated=inputs.series_resistance_stated or "series_resistance_ohm" in metadata,
     )
 
 
@@ -136,6 +146,12 @@ def fit_file(f, seed: int, settings: FitSettings, shape: DipShape | None = None,
             fit = fit_sweep(data, seed=seed, shape=shape, settings=settings, progress=progress)
             choice = ModelChoice(shape, "model fixed by the caller")
         shape = choice.shape
+    except ModelEdgeError as exc:
+        raise CertificationRefused(f"{f.name}: {exc}") from None
+    except PointError as exc:
+        lines = ", ".join(str(f.line_of_row(i)) for i in exc.points[:20])
+        raise IntakeError(f"{exc} (line {lines})", file=f.name, line=f.line_of_row(exc.points[0]),
+                          field=exc.field) from None
     except SweepError as exc:
         raise IntakeError(str(exc), file=f.name, field=exc.field) from None
     warnings: list[str] = []
@@ -144,20 +160,16 @@ def fit_file(f, seed: int, settings: FitSettings, shape: DipShape | None = None,
         warnings.append(
             f"bias range reaches only ±{reach:.1f} V_1/2; ±{WARN_RANGE_HALF_WIDTHS:g} or more fixes G_T better"
         )
-    if abs(fit.lag1_residual_correlation) > RESIDUAL_CORRELATION_LIMIT:
-        warnings.append(
-            f"residuals are correlated (lag-1 {fit.lag1_residual_correlation:.2f}): the model or the "
-            "noise description may be incomplete"
-        )
+    if fit.diagnosis is not None:
+        # What the residual checks found, each naming its likely cause (analysis.cbt.robust).
+        warnings.extend(fit.diagnosis.findings)
+        if fit.diagnosis.outliers:
+            warnings.append("outliers left out of the fit: line "
+                            + ", ".join(str(f.line_of_row(i)) for i in fit.diagnosis.outliers))
     if fit.heating_at_half_width > HEATING_WARNING:
         warnings.append(
             f"self-heating dominates: electrons are {100 * fit.heating_at_half_width:.0f} % above the bath at the "
             "half-depth bias; the result rests on the heating model and its coupling constant"
-        )
-    if heating is None and abs(fit.lag1_residual_correlation) > RESIDUAL_CORRELATION_LIMIT:
-        warnings.append(
-            "structured residuals in a fit without a heating model: at low temperature this is the signature "
-            "of self-heating; give the island volume and coupling constant in run.toml [device]"
         )
     if not fit.posterior.converged:
         raise CertificationRefused(
@@ -181,6 +193,7 @@ def sweep_result(work: SweepWork, inputs: TypeBInputs,
     setup = data.setup
     if work.rs:
         inputs = replace(inputs, series_resistance_ohm=work.rs)
+    inputs = sweep_inputs(inputs, md)
     shape = work.shape
     budget, _ = temperature_budget(fit, shape, setup, inputs, posterior_note=global_note, data=data)
     entry = result_entry(
@@ -222,6 +235,10 @@ def sweep_result(work: SweepWork, inputs: TypeBInputs,
             "posterior": fit.posterior.diagnostics(),
             "bias_reach_half_widths": fit.diagnostics["bias_reach_half_widths"],
             "lag1_residual_correlation": fit.lag1_residual_correlation,
+            "residual_checks": None if fit.diagnosis is None else {
+                **fit.diagnosis.as_dict(),
+                "outlier_lines": [f.line_of_row(i) for i in fit.diagnosis.outliers],
+            },
             "model_validated_up_to_u": shape.max_u,
             "model_choice": work.model_reason,
             "warnings": work.warnings,
@@ -347,12 +364,11 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
         outcome.deviations.append(
             "quick-look convergence rule (chain ≥ 20 autocorrelation times) used; not for issue"
         )
-    if not inputs.bias_scale_stated:
-        outcome.deviations.append("bias-voltage scale uncertainty not stated by the lab: 0.1 % (rectangular) assumed")
-    if not inputs.resistance_spread_stated:
-        outcome.deviations.append("junction-resistance spread not stated: 2 % assumed for the non-uniformity row")
-    if any(f.metadata.get("excitation_rms_V") for f in sweeps) and not inputs.excitation_stated:
-        outcome.deviations.append("excitation amplitude uncertainty not stated: 5 % (rectangular) assumed")
+    for f in sweeps:  # every defaulted budget input, with the value assumed (analysis.cbt.uncertainty)
+        setup = SweepSetup(f.metadata["junctions_in_series"], f.metadata.get("excitation_rms_V", 0.0))
+        for text in defaulted_inputs(sweep_inputs(inputs, f.metadata), setup, heating is not None):
+            if text not in outcome.deviations:
+                outcome.deviations.append(text)
     if any("current_A" in f.columns and "conductance_S" not in f.columns for f in sweeps):
         outcome.deviations.append("conductance obtained by numerical differentiation of a DC I–V")
     outcome.method = {

@@ -164,7 +164,8 @@ METADATA_KEYS: dict[str, KeySpec] = {
     # Pump records and scans (docs/pump_formats.md)
     "frequency_Hz": KeySpec(_positive, "pump drive frequency f in hertz (required)", PUMP),
     "electrons_per_cycle": KeySpec(_electrons, "n, electrons per cycle (default 1)", PUMP),
-    "settling_s": KeySpec(_non_negative, "readings dropped after each pump switch, seconds", PUMP),
+    "settling_s": KeySpec(_non_negative, "least time dropped after each pump switch, seconds "
+                          "(the transient measured in the record may call for more)", PUMP),
     "operating_gate_V": KeySpec(real_parser(), "gate voltage at which a record was taken", PUMP),
     "second_gate_V": KeySpec(real_parser(), "second gate voltage at which a record or scan was taken", PUMP),
     "magnetic_field_T": KeySpec(real_parser(), "applied magnetic field", PUMP),
@@ -205,7 +206,7 @@ MANIFEST_FIELDS: dict[str, KeySpec] = {
     # Pump (docs/pump_formats.md)
     "pump.frequency_Hz": KeySpec(_positive, "drive frequency for files that do not state it", PUMP),
     "pump.electrons_per_cycle": KeySpec(_electrons, "n for files that do not state it (default 1)", PUMP),
-    "pump.settling_s": KeySpec(_non_negative, "readings dropped after each switch", PUMP),
+    "pump.settling_s": KeySpec(_non_negative, "least time dropped after each switch", PUMP),
     "pump.operating_gate_V": KeySpec(real_parser(), "gate voltage of the records", PUMP),
     "pump.second_gate_V": KeySpec(real_parser(), "second gate voltage", PUMP),
     "pump.magnetic_field_T": KeySpec(real_parser(), "applied magnetic field", PUMP),

@@ -79,13 +79,33 @@ EXPANDED_NOTE = (
 )
 
 
-def _pairs(section: Mapping[str, Any] | None) -> Pairs:
-    rows = tuple(
-        (str(k), "" if v is None else str(v))
-        for k, v in (section or {}).items()
-        if not isinstance(v, dict | list)
-    )
-    return Pairs(rows)
+#: The order in which a section's fields are shown, the same for drafts and issued certificates
+#: (the record's canonical JSON sorts keys, which would put an address before a name). Fields
+#: not listed follow in alphabetical order. Documented in docs/service.md.
+FIELD_ORDER: dict[str, tuple[str, ...]] = {
+    "laboratory": ("name", "address", "accreditation", "contact"),
+    "customer": ("name", "address", "contact", "reference"),
+    "item": ("description", "identifier", "manufacturer", "model", "serial_number", "condition"),
+    "dates": ("received", "measurement_began", "measured", "issued"),
+}
+
+#: How a date field is labelled on the certificate (ISO/IEC 17025:2017 7.8.2.1 h, i).
+DATE_LABELS = {
+    "received": "item received",
+    "measurement_began": "measurement began",
+    "measured": "date of measurement",
+    "issued": "date of issue",
+}
+
+
+def _pairs(section: Mapping[str, Any] | None, order: tuple[str, ...] = (),
+           labels: Mapping[str, str] | None = None) -> Pairs:
+    fields = {k: v for k, v in (section or {}).items() if not isinstance(v, dict | list)}
+    keys = [k for k in order if k in fields] + sorted(k for k in fields if k not in order)
+    labels = labels or {}
+    return Pairs(tuple(
+        (labels.get(k, str(k)), "" if fields[k] is None else str(fields[k])) for k in keys
+    ))
 
 
 def lifecycle_notices(record: Mapping[str, Any]) -> list[Text]:
@@ -118,10 +138,10 @@ def _heading_blocks(record: Mapping[str, Any]) -> list[Block]:
     if state == "draft":
         blocks.append(Text("Draft — not valid until issued by an authorised approver.", "draft"))
     for heading, key in (("Laboratory", "laboratory"), ("Customer", "customer"), ("Item calibrated", "item")):
-        blocks += [Heading(heading), _pairs(record.get(key))]
+        blocks += [Heading(heading), _pairs(record.get(key), FIELD_ORDER[key])]
     dates = {k: v or "—" for k, v in (record.get("dates") or {}).items()}
     method = record.get("method") or {}
-    blocks += [Heading("Dates"), _pairs(dates), Heading("Method"),
+    blocks += [Heading("Dates"), _pairs(dates, FIELD_ORDER["dates"], DATE_LABELS), Heading("Method"),
                Text(str(method.get("description", method.get("name", ""))))]
     return blocks
 
@@ -226,10 +246,42 @@ def _global_fit_blocks(gf: Mapping[str, Any]) -> list[Block]:
     ]
 
 
-def _closing_blocks(record: Mapping[str, Any]) -> list[Block]:
+def _authorisation_blocks(record: Mapping[str, Any], seal: Mapping[str, Any] | None) -> list[Block]:
+    """Who authorised the certificate and how an auditor checks the electronic signature.
+
+    ISO/IEC 17025:2017 7.8.2.1 o): identification of the person(s) authorising the report. The
+    signature details (chain entry, its SHA-256, the key) come from the archive (``seal``); the
+    record inside the signed entry cannot carry the digest of that entry itself.
+    """
+    people = record.get("people") or {}
+    operator = people.get("operator") or "—"
+    if not people.get("approver"):
+        return [Heading("Authorisation"),
+                Text(f"Operator: {operator}. Not yet issued: no approver has authorised it.")]
+    blocks: list[Block] = [
+        Heading("Authorisation"),
+        Text(f"Operator: {operator}. Approved and issued by {people['approver']} (approver, "
+             f"the laboratory's authorised signatory) on {(record.get('dates') or {}).get('issued')}."),
+    ]
+    if seal:
+        cid = record.get("certificate_id", "")
+        blocks += [
+            Text("This certificate is signed electronically, without a handwritten signature: its "
+                 "record is entry {sequence} of the laboratory's hash chain, signed with the "
+                 "laboratory's Ed25519 key {key_id}.".format(**seal)),
+            Pairs((("chain entry", str(seal["sequence"])), ("entry SHA-256", str(seal["sha256"])),
+                   ("signing key id", str(seal["key_id"])))),
+            Text(f"To verify: in the laboratory's archive, coldcert verify {cid}; anywhere, "
+                 f"coldcert verify {cid}-signed.json --public-key KEY with the signed entry "
+                 "(download 'signed') and the laboratory's public key, published at "
+                 f"{seal.get('public_key_url', 'the laboratory’s /api/public-key')}.", "small"),
+        ]
+    return blocks
+
+
+def _closing_blocks(record: Mapping[str, Any], seal: Mapping[str, Any] | None = None) -> list[Block]:
     conditions = record.get("conditions") or {}
     deviations = record.get("deviations") or []
-    people = record.get("people") or {}
     blocks: list[Block] = [
         Heading("Conditions of measurement"),
         _pairs({k: v for k, v in conditions.items() if k != "sweeps"}),
@@ -240,14 +292,14 @@ def _closing_blocks(record: Mapping[str, Any]) -> list[Block]:
         Text(str(record.get("traceability", "not stated"))),
         Heading("Statements and cautions"),
         Bullets(tuple(str(s) for s in record.get("statements") or [])),
-        Heading("Authorisation"),
-        Text(f"Operator: {people.get('operator') or '—'}. Approved and issued by: "
-             f"{people.get('approver') or 'not yet issued'}."),
+        *_authorisation_blocks(record, seal),
     ]
-    files = (record.get("inputs") or {}).get("files") or []
+    inputs = record.get("inputs") or {}
+    hashes = [(f["name"], f["sha256"]) for f in inputs.get("files") or []]
+    if inputs.get("manifest_sha256"):
+        hashes.append(("run.toml (manifest)", inputs["manifest_sha256"]))
     blocks += [Heading("Records"),
-               Grid(("input file", "SHA-256"), tuple((f["name"], f["sha256"]) for f in files),
-                    frozenset({1}), (1, 3))]
+               Grid(("input file", "SHA-256"), tuple(hashes), frozenset({1}), (1, 3))]
     rep = record.get("reproducibility") or {}
     if rep:
         software = ", ".join(f"{k} {v}" for k, v in (rep.get("software") or {}).items())
@@ -256,8 +308,13 @@ def _closing_blocks(record: Mapping[str, Any]) -> list[Block]:
     return blocks
 
 
-def certificate_blocks(record: Mapping[str, Any], plots: Mapping[str, str] | None = None) -> list[Block]:
-    """The whole certificate, in reading order, from the record and its plots (SVG by name)."""
+def certificate_blocks(record: Mapping[str, Any], plots: Mapping[str, str] | None = None,
+                       seal: Mapping[str, Any] | None = None) -> list[Block]:
+    """The whole certificate, in reading order, from the record and its plots (SVG by name).
+
+    ``seal`` (issued certificates): the chain entry's ``sequence``, ``sha256``, ``key_id`` and the
+    ``public_key_url``, for the authorisation section.
+    """
     remaining = dict(plots or {})
     results = list(record.get("results") or [])
     sections = record.get("sections") or {}
@@ -267,7 +324,7 @@ def certificate_blocks(record: Mapping[str, Any], plots: Mapping[str, str] | Non
     blocks += [Figure(svg, key) for key, svg in remaining.items() if not key.startswith("fit-")]
     if sections.get("global_fit"):
         blocks += _global_fit_blocks(sections["global_fit"])
-    return blocks + _closing_blocks(record)
+    return blocks + _closing_blocks(record, seal)
 
 
 def kind_blocks(record: Mapping[str, Any]) -> list[Block]:
@@ -446,7 +503,44 @@ def _record_blocks(r: Mapping[str, Any]) -> list[Block]:
             f"JCGM 101 Monte Carlo ({mc['draws']} draws, seed {mc['seed']}): u = "
             f"{mc['standard_uncertainty']:.3g} ppm, probabilistically symmetric 95 % interval "
             f"[{lo:.4g}, {hi:.4g}] ppm; the GUM interval is "
-            + ("validated" if mc["gum_framework_validated"] else "NOT validated")
-            + f" at tolerance {mc['tolerance']:.2g} ppm (JCGM 101 clause 8)."
+            + _VALIDATION_WORDS[mc["gum_framework_validated"]]
+            + f" at tolerance {mc['tolerance']:.2g} ppm (JCGM 101 clause 8"
+            + (f"; numerical standard deviation of an interval end "
+               f"{mc['interval_end_numerical_u']:.2g} ppm)." if "interval_end_numerical_u" in mc
+               else ").")
         ),
+    ] + (_settling_blocks(rec["settling_transient"], r["nominal_current_A"])
+         if rec.get("settling_transient") else [])
+
+
+_VALIDATION_WORDS = {True: "validated", False: "NOT validated",
+                     None: "neither validated nor rejected (the two intervals differ by more than "
+                           "the tolerance but by less than the Monte Carlo's own resolution)"}
+
+
+def _settling_blocks(st: Mapping[str, Any], i0: float) -> list[Block]:
+    """The settling transient measured from the record: fits, discard, correction
+    (analysis.pump.settling)."""
+    rows = tuple(
+        (f"{c['fit_window_start_s']:g}",
+         f"{c['amplitude_after_switch_on_A'] * 1e15:.3g} ± {c['amplitude_after_switch_on_u_A'] * 1e15:.2g}",
+         f"{c['amplitude_after_switch_off_A'] * 1e15:.3g} ± {c['amplitude_after_switch_off_u_A'] * 1e15:.2g}",
+         f"{c['time_constant_s']:.3g} ± {c['time_constant_u_s']:.2g}",
+         "yes" if c["resolved"] else "no")
+        for c in st["components"]
+    )
+    b, ub = st["residual_bias_A"], st["residual_bias_u_A"]
+    floor = (f" (at least the stated {st['minimum_discard_s']:g} s)"
+             if st["minimum_discard_s"] > 0 else "")
+    return [
+        Heading("Settling transient, measured from the record", 4),
+        Text(f"Readings within {st['discard_s']:g} s after each switch were dropped{floor}. The "
+             f"transient left in the kept readings, {b * 1e15:+.3g} ± {ub * 1e15:.2g} fA "
+             f"({b / i0 * 1e6:+.3g} ± {ub / i0 * 1e6:.2g} ppm of n·e·f), is corrected for and its "
+             "uncertainty is a row of the budget (a fit that is not resolved is not corrected for; "
+             "it gives an allowance). Each fit is A·exp(−(t − w)/τ) after switch-on and after "
+             "switch-off with a shared τ, fitted to the segments stacked on their switch from w "
+             f"on; uncertainties by jackknife over {st['jackknife_blocks']} blocks of segments."),
+        Grid(("fitted from w (s)", "A after switch-on at w (fA)", "A after switch-off at w (fA)",
+              "τ (s)", "resolved"), rows, frozenset({0, 1, 2, 3})),
     ]

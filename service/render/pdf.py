@@ -34,7 +34,7 @@ from service.render import content
 logger = logging.getLogger(__name__)
 
 #: Bump when the layout changes, so cached PDFs are laid out again.
-RENDERER_VERSION = 2
+RENDERER_VERSION = 3
 
 
 
@@ -111,8 +111,9 @@ def _svg_flowable(svg: str, max_width: float):
     return drawing
 
 
-def _numbered_canvas(certificate_id: str, state: str):
-    """A canvas class that stamps "<id> · page i of n" on every page once n is known."""
+def numbered_canvas(label: str, stamp: str = ""):
+    """A canvas class that writes ``label`` and "page i of n" at the foot of every page once n
+    is known, and ``stamp`` (in red) between them if given."""
 
     class NumberedCanvas(rl_canvas.Canvas):
         def __init__(self, *args, **kwargs) -> None:
@@ -135,15 +136,78 @@ def _numbered_canvas(certificate_id: str, state: str):
             width, _height = self._pagesize
             self.setFont(FONT, 8)
             self.setFillColor(colors.HexColor("#333333"))
-            self.drawString(18 * mm, 10 * mm, f"Certificate {certificate_id}")
+            self.drawString(18 * mm, 10 * mm, label)
             self.drawRightString(width - 18 * mm, 10 * mm, f"page {number} of {total}")
-            if state != "issued":
+            if stamp:
                 self.setFillColor(colors.HexColor("#a3261b"))
-                self.drawCentredString(
-                    width / 2, 10 * mm, state.upper() + (" — NOT VALID" if state == "draft" else "")
-                )
+                self.drawCentredString(width / 2, 10 * mm, stamp)
 
     return NumberedCanvas
+
+
+def _numbered_canvas(certificate_id: str, state: str):
+    """Every page: "Certificate <id>", "page i of n", and the state unless issued."""
+    stamp = "" if state == "issued" else state.upper() + (" — NOT VALID" if state == "draft" else "")
+    return numbered_canvas(f"Certificate {certificate_id}", stamp)
+
+
+#: Width of the text column of an A4 page with our margins.
+TEXT_WIDTH = A4[0] - 36 * mm
+
+
+def a4_document(buffer: io.BytesIO, *, title: str, subject: str, author: str = ""):
+    """An A4 document with our margins, in reportlab's invariant mode (no creation time or
+    random id: the same content gives the same bytes)."""
+    return SimpleDocTemplate(
+        buffer,
+        pagesize=A4,
+        leftMargin=18 * mm,
+        rightMargin=18 * mm,
+        topMargin=16 * mm,
+        bottomMargin=18 * mm,
+        title=title,
+        author=author,
+        subject=subject,
+        creator="coldcert",
+        invariant=1,
+    )
+
+
+def _check_flowable(check: Mapping[str, str], width: float) -> Table:
+    """Where and how a holder checks this certificate, with a QR code of the check address
+    (reportlab's own QR widget, ISO/IEC 18004)."""
+    from reportlab.graphics.barcode.qr import QrCodeWidget
+    from reportlab.graphics.shapes import Drawing
+
+    size = 26 * mm
+    widget = QrCodeWidget(check["url"], barLevel="M")
+    x0, y0, x1, y1 = widget.getBounds()
+    drawing = Drawing(size, size, transform=[size / (x1 - x0), 0, 0, size / (y1 - y0), 0, 0])
+    drawing.add(widget)
+    text = [
+        _p("Check this certificate", H3),
+        _p(
+            f"Certificate number {check['certificate_id']}. SHA-256 of its signed record: "
+            f"{check['signed_record_sha256']}.",
+            SMALL,
+        ),
+        _p(
+            f"Anyone holding this file can check that the laboratory issued it and whether it is "
+            f"still in force, without an account, at {check['url']} (give the number and this "
+            "file; the file is fingerprinted in the browser and not uploaded).",
+            SMALL,
+        ),
+    ]
+    table = Table([[text, drawing]], colWidths=[width - size - 6 * mm, size + 6 * mm])
+    table.setStyle(
+        TableStyle(
+            [
+                ("BOX", (0, 0), (-1, -1), 0.4, colors.HexColor("#b5bcc6")),
+                ("VALIGN", (0, 0), (-1, -1), "TOP"),
+            ]
+        )
+    )
+    return table
 
 
 STYLES = {"body": BODY, "small": SMALL, "warn": WARN, "id": BODY, "draft": DRAFT, "notice": DRAFT}
@@ -178,25 +242,36 @@ def _flowables(blocks: list[content.Block], width: float) -> list[Any]:
     return story
 
 
-def render_pdf(record: Mapping[str, Any], plots: Mapping[str, str] | None = None) -> bytes:
-    """The certificate as PDF bytes (A4): the same blocks as the HTML page, laid out on pages."""
+def render_pdf(
+    record: Mapping[str, Any],
+    plots: Mapping[str, str] | None = None,
+    check: Mapping[str, str] | None = None,
+    seal: Mapping[str, Any] | None = None,
+) -> bytes:
+    """The certificate as PDF bytes (A4): the same blocks as the HTML page, laid out on pages.
+
+    ``check`` (issued certificates) adds, below the certificate's number, where and how a holder
+    checks the file: the number, the SHA-256 of the signed record, the address and its QR code.
+    ``seal`` adds the signature details to the authorisation section (as on the HTML page).
+    """
     cid = str(record.get("certificate_id", "unnumbered"))
     state = str(record.get("state", "draft"))
     buffer = io.BytesIO()
-    doc = SimpleDocTemplate(
+    doc = a4_document(
         buffer,
-        pagesize=A4,
-        leftMargin=18 * mm,
-        rightMargin=18 * mm,
-        topMargin=16 * mm,
-        bottomMargin=18 * mm,
         title=f"{record.get('title', 'Calibration certificate')} {cid}",
-        author=str((record.get("laboratory") or {}).get("name", "")),
         subject=f"Certificate {cid}",
-        creator="coldcert",
-        invariant=1,  # no creation time or random id: the same record gives the same bytes
+        author=str((record.get("laboratory") or {}).get("name", "")),
     )
-    width = A4[0] - 36 * mm
-    story = _flowables(content.certificate_blocks(record, plots), width)
+    blocks = content.certificate_blocks(record, plots, seal)
+    story = _flowables(blocks, TEXT_WIDTH)
+    if check:
+        # Headings and texts map one to one onto flowables, so the place after the number line
+        # is the same index in both lists.
+        at = next(
+            (i + 1 for i, b in enumerate(blocks) if isinstance(b, content.Text) and b.style == "id"),
+            0,
+        )
+        story[at:at] = [Spacer(1, 2 * mm), _check_flowable(check, TEXT_WIDTH)]
     doc.build(story, canvasmaker=_numbered_canvas(cid, state))
     return buffer.getvalue()

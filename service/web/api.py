@@ -15,6 +15,7 @@ from sqlalchemy import select
 
 from service import storage as st
 from service.archive import ArchiveError, canonical_json, log_event
+from service.archive.items import record_rendering
 from service.queue.jobs import RetryRefused, enqueue, import_string, job_status, retry
 from service.storage import sha256_hex
 from service.web.auth import (
@@ -89,9 +90,12 @@ def _json_body() -> dict[str, Any]:
 
 @bp.get("/health")
 def health():
+    """Database reachable; the job queue's depth and the analysis workers seen."""
     with services().storage.read() as conn:
         conn.execute(select(1))
-    return jsonify(status="ok")
+    queue = services().queue_health()
+    status = "ok" if queue.get("broker_ok", True) else "degraded"
+    return jsonify(status=status, queue=queue)
 
 
 @bp.get("/openapi.json")
@@ -110,7 +114,7 @@ def public_key():
 
 def accept_uploaded(uploads: list[tuple[str, bytes]]):
     """Validate and store the files of the current request as a run (API and web form alike)."""
-    return accept_run(
+    accepted = accept_run(
         services().storage,
         services().archive,
         import_string(current_app.config["LOAD_RUN"]),
@@ -122,6 +126,8 @@ def accept_uploaded(uploads: list[tuple[str, bytes]]):
         max_bytes=current_app.config["MAX_RUN_BYTES"],
         max_files=current_app.config["MAX_RUN_FILES"],
     )
+    services().submit(accepted.job_id)
+    return accepted
 
 
 @bp.post("/runs")
@@ -223,18 +229,38 @@ def get_certificate(certificate_id: str):
     return jsonify(services().archive.get(certificate_id))
 
 
-def _cached_pdf(record: dict[str, Any], plots_sha256: str | None) -> bytes:
+def seal_of(info: dict[str, Any]) -> dict[str, Any] | None:
+    """The signature details an issued certificate's renderings show (None for a draft)."""
+    if info.get("sequence") is None:
+        return None
+    return {
+        "sequence": info["sequence"],
+        "sha256": info["sha256"],
+        "key_id": info.get("key_id") or services().key.key_id,
+        "public_key_url": url_for("api.public_key", _external=True),
+    }
+
+
+def _cached_pdf(
+    record: dict[str, Any],
+    plots_sha256: str | None,
+    check: dict[str, str] | None = None,
+    seal: dict[str, Any] | None = None,
+) -> bytes:
     """PDF of a record; laying out the plots takes seconds, so identical requests reuse it.
 
-    The PDF is a pure function of the record and the plots (reportlab's invariant mode). The
-    cache is keyed by the SHA-256 of those inputs and each file is named with the SHA-256 of its
-    own bytes as well, checked on every read: a damaged or swapped file is laid out again, never
-    served (``KEY-PDFSHA256.pdf``).
+    The PDF is a pure function of the record, the plots and the check block (reportlab's
+    invariant mode). The cache is keyed by the SHA-256 of those inputs and each file is named
+    with the SHA-256 of its own bytes as well, checked on every read: a damaged or swapped file
+    is laid out again, never served (``KEY-PDFSHA256.pdf``).
     """
     from service.render.pdf import RENDERER_VERSION, render_pdf
 
     key = sha256_hex(
-        canonical_json({"record": record, "plots": plots_sha256, "renderer": RENDERER_VERSION})
+        canonical_json(
+            {"record": record, "plots": plots_sha256, "renderer": RENDERER_VERSION,
+             "check": check, "seal": seal}
+        )
     )
     folder = Path(current_app.instance_path) / "cache" / "pdf"
     for path in sorted(folder.glob(f"{key}-*.pdf")):
@@ -243,13 +269,28 @@ def _cached_pdf(record: dict[str, Any], plots_sha256: str | None) -> bytes:
             return data
         logger.warning("PDF cache file %s does not match its name; laying out again", path.name)
         path.unlink(missing_ok=True)
-    pdf = render_pdf(record, services().archive.plots(plots_sha256))
+    pdf = render_pdf(record, services().archive.plots(plots_sha256), check=check, seal=seal)
     path = folder / f"{key}-{sha256_hex(pdf)}.pdf"
     folder.mkdir(parents=True, exist_ok=True)
     tmp = path.with_suffix(f".{os.getpid()}.tmp")
     tmp.write_bytes(pdf)
     os.replace(tmp, path)
     return pdf
+
+
+def check_block(info: dict[str, Any]) -> dict[str, str] | None:
+    """What an issued certificate's PDF says about checking it: its number, the SHA-256 of its
+    signed record, and the public page where a customer checks the file they hold."""
+    if info.get("sequence") is None or not info.get("sha256"):
+        return None
+    base = current_app.config.get("PUBLIC_CHECK_URL") or url_for(
+        "public.check_page", _external=True
+    )
+    return {
+        "certificate_id": info["id"],
+        "signed_record_sha256": info["sha256"],
+        "url": f"{base}?id={info['id']}",
+    }
 
 
 def render(info: dict[str, Any], fmt: str) -> tuple[bytes | str, str]:
@@ -263,9 +304,12 @@ def render(info: dict[str, Any], fmt: str) -> tuple[bytes | str, str]:
     if fmt == "html":
         from service.render.html import render_html
 
-        return render_html(record, services().archive.plots(info.get("plots_sha256"))), RENDERINGS[fmt]
+        plots = services().archive.plots(info.get("plots_sha256"))
+        return render_html(record, plots, seal_of(info)), RENDERINGS[fmt]
     if fmt == "pdf":
-        return _cached_pdf(record, info.get("plots_sha256")), RENDERINGS[fmt]
+        return _cached_pdf(
+            record, info.get("plots_sha256"), check_block(info), seal_of(info)
+        ), RENDERINGS[fmt]
     if fmt == "xml":
         from service.render.dcc import configured_schema, render_dcc, validate_dcc
 
@@ -287,6 +331,11 @@ def get_rendering(certificate_id: str, fmt: str):
         content, media = render(info, fmt)
     except ValueError as exc:
         return error(409, str(exc))
+    if info.get("sequence") is not None:
+        # A file of an issued certificate leaves the service: note its SHA-256, so that the
+        # customer holding it can later check it on the public page.
+        data = content.encode("utf-8") if isinstance(content, str) else content
+        record_rendering(services().archive, certificate_id, fmt, sha256_hex(data))
     response = Response(content, mimetype=media.split(";")[0])
     response.headers["Content-Type"] = media
     extension = "json" if fmt == "signed" else fmt
@@ -379,8 +428,10 @@ def queue_reproduction(certificate_id: str) -> str:
     """Queue a re-analysis of an archived certificate from its raw data; returns the job id."""
     info = services().archive.get(certificate_id)
     with services().storage.write() as conn:
-        return enqueue(conn, purpose="reproduce", run_id=info["run_id"], requested_by=g.user,
-                       certificate_id=certificate_id)
+        job_id = enqueue(conn, purpose="reproduce", run_id=info["run_id"], requested_by=g.user,
+                         certificate_id=certificate_id)
+    services().submit(job_id)
+    return job_id
 
 
 @bp.get("/certificates/<certificate_id>/verify")

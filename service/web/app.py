@@ -18,13 +18,18 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from flask import Flask, g, has_request_context, jsonify, render_template, request
+from flask import Config, Flask, g, has_request_context, jsonify, render_template, request
 from flask.sessions import SecureCookieSessionInterface
 from werkzeug.exceptions import HTTPException
 
 from service.archive import Archive, LabKey
+from service.queue.engine import BROKER_ENV, EngineQueue, EngineSettings, queue_counts
 from service.queue.jobs import WorkerPool, WorkerSettings
 from service.storage import Storage, default_database_url
+
+#: Environment variable naming the database (overrides ``DATABASE_URL`` of ``config.py``), so a
+#: worker machine can be configured without an instance folder.
+DATABASE_ENV = "COLDCERT_DATABASE_URL"
 
 logger = logging.getLogger(__name__)
 
@@ -35,6 +40,18 @@ DEFAULTS: dict[str, Any] = {
     "MAX_RUN_BYTES": 256 * 1024 * 1024,
     "MAX_RUN_FILES": 500,
     "DATABASE_URL": None,
+    # Where raw files, plots and output files live: "folder" (instance/blobs), "database" (the
+    # blob_data table; no shared folder for workers elsewhere) or "auto" (folder with SQLite,
+    # database with a server).
+    "BLOB_STORE": "auto",
+    # A broker URL (e.g. redis://host:6379/0) moves analysis jobs to the distributed queue
+    # (Celery); None keeps the embedded worker pool. COLDCERT_BROKER_URL sets it too.
+    "BROKER_URL": None,
+    # Distributed queue: seconds a job may run before it is stopped and failed.
+    "JOB_TIME_LIMIT": 3600,
+    # Distributed queue: seconds before Redis re-delivers a message whose worker vanished;
+    # None = JOB_TIME_LIMIT + 330 s. Must exceed the longest job.
+    "BROKER_VISIBILITY_TIMEOUT": None,
     "WORKERS": 2,
     "START_WORKERS": False,
     "CERTIFY": "service.calibrations.certify:certify_run",
@@ -45,6 +62,12 @@ DEFAULTS: dict[str, Any] = {
     "ANALYSIS_OPTIONS": {},
     # Public keys (hex) of lab keys used before a key change, so their entries still verify.
     "TRUSTED_PUBLIC_KEYS": (),
+    # The laboratory's recall policy: maximum permissible change per tracked quantity and the
+    # interval bounds (docs/history.md). Empty: the default interval of service.archive.history.
+    "RECALL_POLICY": {},
+    # Where customers check a certificate (printed on the PDF with a QR code); None: this
+    # service's own /check page as the request reached it.
+    "PUBLIC_CHECK_URL": None,
     # The laboratory's copy of the DCC 3.3.0 dcc.xsd; when set (here or by COLDCERT_DCC_SCHEMA),
     # every DCC rendering is validated against it before it is served.
     "DCC_SCHEMA": None,
@@ -117,8 +140,15 @@ class Services:
     key: LabKey
     worker_settings: WorkerSettings
     pool: WorkerPool | None = None
+    #: The distributed queue (Celery) when a broker is configured; None for the embedded pool.
+    engine: EngineQueue | None = None
 
     def start_workers(self, processes: int) -> WorkerPool | None:
+        """Embedded mode: start ``processes`` local worker processes. Distributed mode: start
+        the dispatcher that publishes queued jobs (the workers are ``coldcert work``)."""
+        if self.engine is not None:
+            self.engine.start()
+            return None
         if int(processes) <= 0:
             # "--workers 0" means none: this process only serves; `coldcert work` runs the jobs.
             logger.info("no analysis workers started here; queued jobs wait for `coldcert work`")
@@ -129,9 +159,37 @@ class Services:
         return self.pool
 
     def stop_workers(self) -> None:
+        if self.engine is not None:
+            self.engine.stop()
         if self.pool is not None:
             self.pool.stop()
             self.pool = None
+
+    def submit(self, job_id: str) -> None:
+        """Hand a newly queued job (already committed) to the workers. The embedded pool polls
+        the table; the distributed queue gets a message now (or from the next sweep)."""
+        if self.engine is not None:
+            self.engine.submit(job_id)
+
+    def queue_health(self) -> dict[str, Any]:
+        """Queue depth and the workers seen, for the health endpoint."""
+        report: dict[str, Any] = {"jobs": queue_counts(self.storage)}
+        if self.engine is not None:
+            report.update(self.engine.health())
+        else:
+            alive = 0 if self.pool is None else self.pool.alive()
+            report.update(mode="embedded", workers_seen=alive)
+        return report
+
+
+def engine_settings(config: Mapping[str, Any]) -> EngineSettings:
+    """The distributed queue's settings from the service configuration."""
+    timeout = config.get("BROKER_VISIBILITY_TIMEOUT")
+    return EngineSettings(
+        broker_url=str(config["BROKER_URL"]),
+        time_limit=float(config.get("JOB_TIME_LIMIT") or 3600),
+        visibility_timeout=float(timeout) if timeout is not None else None,
+    )
 
 
 def _unwritable(instance: Path) -> bool:
@@ -156,14 +214,39 @@ def _secret_key(instance: Path, read_only: bool = False) -> str:
     return path.read_text().strip()
 
 
+def load_config(instance: Path, overrides: Mapping[str, Any] | None = None) -> Config:
+    """``DEFAULTS``, then ``instance/config.py``, then the environment, then ``overrides``."""
+    config = Config(str(instance))
+    config.from_mapping(DEFAULTS)
+    config.from_pyfile("config.py", silent=True)
+    for key, variable in (("DATABASE_URL", DATABASE_ENV), ("BROKER_URL", BROKER_ENV)):
+        if os.environ.get(variable):
+            config[key] = os.environ[variable]
+    config.update({k: v for k, v in (overrides or {}).items() if k != "INSTANCE_PATH"})
+    return config
+
+
+def worker_settings(config: Mapping[str, Any], instance: Path) -> WorkerSettings:
+    """What an analysis worker needs: database, blob store and the lab's public settings (never
+    the signing key)."""
+    return WorkerSettings(
+        database_url=config["DATABASE_URL"] or default_database_url(instance),
+        blob_root=str(instance / "blobs"),
+        blob_store=config["BLOB_STORE"],
+        certify=config["CERTIFY"],
+        load_run=config["LOAD_RUN"],
+        number_prefix=config["CERTIFICATE_PREFIX"],
+        options=dict(config["ANALYSIS_OPTIONS"]),
+    )
+
+
 def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     """Build the service. ``config`` overrides ``DEFAULTS`` and ``instance/config.py``.
 
     Set ``INSTANCE_PATH`` to choose the instance folder (tests use a temporary one) and
     ``START_WORKERS`` to start the background worker processes with the app.
     """
-    config = dict(config or {})
-    instance_path = config.pop("INSTANCE_PATH", None) or os.environ.get("COLDCERT_INSTANCE")
+    instance_path = (config or {}).get("INSTANCE_PATH") or os.environ.get("COLDCERT_INSTANCE")
     app = Flask(
         __name__,
         instance_path=str(Path(instance_path).resolve()) if instance_path else None,
@@ -171,15 +254,13 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     )
     app.session_interface = _SessionInterface()
     app.jinja_env.globals["csp_nonce"] = csp_nonce
-    app.config.from_mapping(DEFAULTS)
-    app.config.from_pyfile("config.py", silent=True)
-    app.config.update(config)
+    instance = Path(app.instance_path)
+    app.config.update(load_config(instance, config))
     proxies = int(app.config.get("TRUSTED_PROXIES") or 0)
     if proxies > 0:
         from werkzeug.middleware.proxy_fix import ProxyFix
 
         app.wsgi_app = ProxyFix(app.wsgi_app, x_for=proxies, x_proto=proxies, x_host=proxies)
-    instance = Path(app.instance_path)
     read_only = bool(app.config["READ_ONLY"]) or _unwritable(instance)
     app.config["READ_ONLY"] = read_only
     if read_only:
@@ -189,8 +270,8 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     if not app.config.get("SECRET_KEY"):
         app.config["SECRET_KEY"] = _secret_key(instance, read_only)
 
-    database_url = app.config["DATABASE_URL"] or default_database_url(instance)
-    storage = Storage(database_url, instance / "blobs", read_only=read_only)
+    settings = worker_settings(app.config, instance)
+    storage = settings.open_storage(read_only=read_only)
     storage.create_schema()
     # Raw data a killed process left in temporary folders (an upload being checked, a fit).
     storage.blobs.clean_scratch()
@@ -208,23 +289,18 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
         number_prefix=app.config["CERTIFICATE_PREFIX"],
         trusted_public_keys=trusted,
     )
-    settings = WorkerSettings(
-        database_url=database_url,
-        blob_root=str(instance / "blobs"),
-        key_dir=str(instance / "keys"),
-        certify=app.config["CERTIFY"],
-        load_run=app.config["LOAD_RUN"],
-        number_prefix=app.config["CERTIFICATE_PREFIX"],
-        options=dict(app.config["ANALYSIS_OPTIONS"]),
-    )
     services = Services(storage, archive, key, settings)
+    if app.config["BROKER_URL"]:
+        services.engine = EngineQueue(storage, settings, engine_settings(app.config))
     app.extensions["coldcert"] = services
 
-    from service.web import api, auth, pages
+    from service.web import api, auth, history, pages, public
 
     app.register_blueprint(auth.bp)
     app.register_blueprint(api.bp)
     app.register_blueprint(pages.bp)
+    app.register_blueprint(history.bp)
+    public.init_app(app)
 
     @app.errorhandler(HTTPException)
     def _http_error(exc: HTTPException):
