@@ -4,6 +4,7 @@ failed with the reason. The analysis here misbehaves on purpose (tests/fake_anal
 
 from __future__ import annotations
 
+import io
 import os
 import socket
 
@@ -12,7 +13,7 @@ from sqlalchemy import func, select
 
 from service import storage as st
 from service.queue.jobs import recover_interrupted
-from service.storage import utc_now
+from service.storage import Storage, default_database_url, utc_now
 from tests.service_support import EXAMPLE, make_lab
 
 RUN_TOML = (EXAMPLE / "run.toml").read_bytes()
@@ -292,3 +293,20 @@ def test_health_reports_the_embedded_queue(troubled_lab):
     lab.services.start_workers(1)
     health = lab.client().get("/api/health").get_json()
     assert health["queue"]["workers_seen"] == 1
+
+
+def test_progress_never_moves_backwards(tmp_path):
+    # Sweeps fitted side by side report out of order; the job's progress must only grow.
+    from service.cli.run_commands import ProgressBar
+    from service.queue.jobs import ProgressReporter
+
+    storage = Storage(default_database_url(tmp_path), tmp_path / "blobs")
+    reporter = ProgressReporter(storage, "job-x", "worker-x")
+    for fraction in (0.2, 0.6, 0.4, 0.5, 0.9):
+        reporter(fraction, "fitting")
+    assert reporter.latest[0] == 0.9
+    bar = ProgressBar(io.StringIO())
+    for fraction in (0.3, 0.1):
+        bar(fraction, "x")
+    assert bar.last == 0.3
+    storage.dispose()

@@ -75,12 +75,11 @@ def _pdf_text(pdf: bytes, certificate_id: str) -> str:
     pages = []
     for page in pypdf.PdfReader(io.BytesIO(pdf)).pages:
         text = page.extract_text()
-        # The footer ("Certificate <id>", "page i of n", state) is drawn last on every page.
-        text = re.sub(r"page \d+ of \d+", "", text)
-        text = text.replace(f"Certificate {certificate_id}\n", "", 1) if text.count(
-            f"Certificate {certificate_id}") > 1 else text
-        text = re.sub(r"\n(DRAFT — NOT VALID|WITHDRAWN|SUPERSEDED)\s*$", "", text.rstrip())
-        pages.append(text)
+        # The footer ("Certificate <id>", "page i of n", state) is drawn last on every page, so
+        # it ends the page's text (even where a paragraph runs on to the next page).
+        footer = (rf"\n?Certificate {re.escape(certificate_id)}\npage \d+ of \d+"
+                  r"(\n(DRAFT — NOT VALID|WITHDRAWN|SUPERSEDED))?\s*$")
+        pages.append(re.sub(footer, "", text.rstrip()))
     return _squash("".join(pages))
 
 
@@ -165,7 +164,7 @@ def test_issued_certificate_states_its_electronic_signature_in_html_and_pdf():
     seal = {"sequence": 12, "sha256": "ab" * 32, "key_id": "ed25519:0123456789abcdef",
             "public_key_url": "https://lab.example/api/public-key"}
     html = render_html(record, None, seal)
-    pdf_text = _pdf_text(render_pdf(record, None, seal), record["certificate_id"])
+    pdf_text = _pdf_text(render_pdf(record, None, seal=seal), record["certificate_id"])
     for text in ("signed electronically", "B. Approver (approver", "entry 12", "ab" * 32,
                  "ed25519:0123456789abcdef", "coldcert verify CC-2026-00077",
                  "https://lab.example/api/public-key"):
@@ -175,3 +174,20 @@ def test_issued_certificate_states_its_electronic_signature_in_html_and_pdf():
     draft = _record("sensor-larkspur")
     texts = " ".join(getattr(b, "text", "") for b in certificate_blocks(draft))
     assert "Not yet issued" in texts and "signed electronically" not in texts
+
+
+def test_temperatures_below_one_kelvin_read_in_millikelvin_with_the_same_digits():
+    # The record keeps kelvin (SI); the certificate shows mK below 1 K, shifting the GUM 7.2.6
+    # rounded strings exactly (no new rounding, no binary float re-entering).
+    from service.render.numbers import as_millikelvin, label
+
+    shifted = as_millikelvin({"value": "0.015001", "standard_uncertainty": "0.000011",
+                              "expanded_uncertainty": "0.000021"})
+    assert shifted == {"value": "15.001", "standard_uncertainty": "0.011",
+                       "expanded_uncertainty": "0.021", "unit": "mK"}
+    record = _record("sensor-larkspur")
+    first = record["results"][0]
+    assert first["unit"] == "K" and first["value"] < 1
+    html = render_html(record)
+    assert as_millikelvin(first["reported"])["value"] in html and ">mK<" in html
+    assert label("frequency_Hz") == "frequency (Hz)" and label("electrons_per_cycle") == "electrons per cycle"

@@ -363,15 +363,10 @@ class SettlingAnalysis:
         return self.components[0].resolved
 
     def describe(self) -> str:
-        parts = []
-        for c in self.components:
-            f = c.fit
-            parts.append(f"A_on = {f.amplitude_on_a * 1e15:.3g} ± {c.amplitude_on_u_a * 1e15:.2g} fA, "
-                         f"A_off = {f.amplitude_off_a * 1e15:.3g} ± {c.amplitude_off_u_a * 1e15:.2g} fA, "
-                         f"τ = {f.tau_s:.3g} ± {c.tau_u_s:.2g} s (fitted from {f.window_start_s:g} s "
-                         "after the switch, amplitudes there)")
-        return ("settling transient measured from the record: " + "; ".join(parts)
-                + f"; readings within {self.discard_s:g} s after each switch dropped")
+        f = self.fit
+        return (f"readings within {self.discard_s:g} s after each pump switch dropped, the discard "
+                f"chosen from the settling transient measured in the record (first fit: τ = "
+                f"{f.tau_s:.3g} s; {len(self.components)} fit(s) in all)")
 
     def as_dict(self) -> dict:
         return {

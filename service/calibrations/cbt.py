@@ -18,6 +18,7 @@ from analysis.cbt.fit import (
     FitSettings,
     ModelEdgeError,
     PointError,
+    ResidualStructureError,
     SweepData,
     SweepError,
     SweepFit,
@@ -146,7 +147,7 @@ def fit_file(f, seed: int, settings: FitSettings, shape: DipShape | None = None,
             fit = fit_sweep(data, seed=seed, shape=shape, settings=settings, progress=progress)
             choice = ModelChoice(shape, "model fixed by the caller")
         shape = choice.shape
-    except ModelEdgeError as exc:
+    except (ModelEdgeError, ResidualStructureError) as exc:
         raise CertificationRefused(f"{f.name}: {exc}") from None
     except PointError as exc:
         lines = ", ".join(str(f.line_of_row(i)) for i in exc.points[:20])

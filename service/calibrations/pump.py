@@ -212,9 +212,14 @@ def allan_svg(res: R.RecordAnalysis, i0: float, title: str) -> str:
               label=f"cycle differences (slope {ad.slope:.2f})")
     ref = ad.deviation[0] / i0 * 1e6 * (ad.m / ad.m[0]) ** -0.5
     ax.loglog(ad.tau_s, ref, "--", lw=0.8, color="0.4", label="white noise, τ^−1/2")
-    from matplotlib.ticker import NullFormatter
+    from matplotlib.ticker import LogLocator, NullFormatter, ScalarFormatter
 
-    ax.xaxis.set_minor_formatter(NullFormatter())
+    # Label 1-2-5 in every decade, so a record spanning less than a decade still has numbers on
+    # both axes (a log axis labels only powers of ten by default).
+    for axis in (ax.xaxis, ax.yaxis):
+        axis.set_major_locator(LogLocator(base=10, subs=(1.0, 2.0, 5.0)))
+        axis.set_major_formatter(ScalarFormatter())
+        axis.set_minor_formatter(NullFormatter())
     ax.set_xlabel("averaging time τ (s)")
     ax.set_ylabel("Allan deviation (ppm of n·e·f)")
     ax.set_title(title, fontsize=9)

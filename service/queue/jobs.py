@@ -300,7 +300,8 @@ class ProgressReporter:
         self.latest: tuple[float, str] = (0.0, "starting")
 
     def __call__(self, fraction: float, step: str = "") -> None:
-        fraction = min(max(float(fraction), 0.0), 1.0)
+        # Never backwards: sweeps fitted side by side report their own fractions out of order.
+        fraction = min(max(float(fraction), self.latest[0], 0.0), 1.0)
         self.latest = (fraction, str(step))
         now = time.monotonic()
         if now - self._last < PROGRESS_MIN_INTERVAL and fraction < 1.0:

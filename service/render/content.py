@@ -17,7 +17,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from service.record.terms import CALIBRATION_TABLE_HEADER, CRITERION_NAMES
-from service.render.numbers import g, g_or_dash, manifest_value, percent
+from service.render.numbers import as_millikelvin, g, g_or_dash, label, manifest_value, percent
 
 
 @dataclass(frozen=True)
@@ -99,12 +99,14 @@ DATE_LABELS = {
 
 
 def _pairs(section: Mapping[str, Any] | None, order: tuple[str, ...] = (),
-           labels: Mapping[str, str] | None = None) -> Pairs:
+           labels: Mapping[str, str] | None = None, name=str) -> Pairs:
+    """A section's scalar fields in ``order`` (then alphabetically), each shown under
+    ``labels[key]`` or ``name(key)``."""
     fields = {k: v for k, v in (section or {}).items() if not isinstance(v, dict | list)}
     keys = [k for k in order if k in fields] + sorted(k for k in fields if k not in order)
     labels = labels or {}
     return Pairs(tuple(
-        (labels.get(k, str(k)), "" if fields[k] is None else str(fields[k])) for k in keys
+        (labels.get(k) or name(str(k)), "" if fields[k] is None else str(fields[k])) for k in keys
     ))
 
 
@@ -150,11 +152,15 @@ def _results_blocks(results: list[Mapping[str, Any]]) -> list[Block]:
     rows = []
     for r in results:
         reported = r.get("reported") or {}
+        unit = str(r.get("unit", ""))
+        # Below 1 K a physicist reads millikelvin; the record keeps kelvin (SI).
+        if unit == "K" and reported and isinstance(r.get("value"), int | float) and 0 < abs(r["value"]) < 1:
+            reported, unit = as_millikelvin(reported), "mK"
         rows.append((
             str(r.get("name", "")),
             str(r.get("sweep", "")),
             str(reported.get("value", g(r.get("value")))),
-            str(r.get("unit", "")),
+            unit,
             str(reported.get("standard_uncertainty", g(r.get("standard_uncertainty"), 2))),
             str(reported.get("expanded_uncertainty", g(r.get("expanded_uncertainty"), 2))),
             g(r.get("coverage_factor"), 3),
@@ -284,7 +290,7 @@ def _closing_blocks(record: Mapping[str, Any], seal: Mapping[str, Any] | None = 
     deviations = record.get("deviations") or []
     blocks: list[Block] = [
         Heading("Conditions of measurement"),
-        _pairs({k: v for k, v in conditions.items() if k != "sweeps"}),
+        _pairs({k: v for k, v in conditions.items() if k != "sweeps"}, name=label),
         *[_pairs(sweep) for sweep in conditions.get("sweeps", []) or []],
         Heading("Deviations and assumptions"),
         Bullets(tuple(str(d) for d in deviations)) if deviations else Text("None."),
@@ -422,7 +428,7 @@ def pump_blocks(sections: Mapping[str, Any], results: Iterable[Mapping[str, Any]
         Heading("What was verified"),
         Text(str(sections["statement"])),
         Heading("Pump and operating point"),
-        Pairs(tuple((str(k), manifest_value(v)) for k, v in (sections.get("pump") or {}).items())),
+        Pairs(tuple((label(str(k)), manifest_value(v)) for k, v in (sections.get("pump") or {}).items())),
     ]
     for scan in sections.get("plateau_scans") or []:
         blocks += _scan_blocks(scan) if scan["kind"] == "plateau scan" else _map_blocks(scan)
