@@ -29,7 +29,12 @@ from pathlib import Path
 import numpy as np
 
 from analysis.cbt.models import dip_function
-from analysis.cbt.tunnelling import ArrayDescription, solve_master_equation
+from analysis.cbt.tunnelling import (
+    ArrayDescription,
+    estimated_window_states,
+    solve_bias_sweep,
+    solve_master_equation,
+)
 
 TABLE_PATH = Path(__file__).with_name("short_arrays.npz")
 VALIDATION_PATH = Path(__file__).with_name("validation.npz")
@@ -47,7 +52,7 @@ VALIDATION_POINTS = (
 X_NODES = np.concatenate(
     (np.arange(0.0, 12.0, 0.2), np.arange(12.0, 20.0, 0.5), np.arange(20.0, 40.01, 1.0))
 )
-U_NODES = np.round(np.arange(0.0, 3.21, 0.1), 10)
+U_NODES = np.round(np.arange(0.0, 5.21, 0.1), 10)
 LENGTHS = (2, 3, 4)
 X4_MAX = 12.0
 X4_MAX_STRONG = 20.0  # the tail is slower in stronger blockade: solve further out for u >= 1
@@ -55,6 +60,32 @@ U4_MIN = 0.5
 SIGMAS = 7.0
 
 logger = logging.getLogger(__name__)
+
+# Exact N = 5 and 6 chains (--long). They are stored as conductances G/G_T on a coarser grid
+# than the short tables; the model interpolates their difference from the N = 4 table, which is
+# small and smooth. A node is solved only if its window holds at most LONG_MAX_STATES states
+# (the window grows as T_eff^((N-1)/2) with bias, so N = 6 at u = 1.5 stops at x = 3.5); the
+# model continues the difference beyond the last solved node. Cost on one core: ~35 min.
+LONG_TABLE_PATH = Path(__file__).with_name("long_arrays.npz")
+HELD_OUT_PATH = Path(__file__).with_name("held_out.npz")
+LONG_LENGTHS = (5, 6)
+LONG_X_NODES = np.array([0.0, 0.5, 1.0, 1.5, 2.0, 2.5, 3.0, 3.5, 4.0, 5.0, 6.0, 7.0, 8.0, 10.0, 12.0])
+LONG_U_NODES = np.array([1.5, 2.0, 2.5, 3.0, 3.5, 4.0, 4.5, 5.0])
+#: Window of the N = 5, 6 solves: changing 6 -> 7 sigmas moves G/G_T by <= 7e-7, 7 -> 8.5 by
+#: <= 3e-9 (N = 5, u = 2-3, x = 0-12, measured); 6.5 sits between, and every row re-checks it.
+LONG_SIGMAS = 6.5
+LONG_PARTIAL_PATH = Path(__file__).with_name("long_arrays.partial.npz")
+LONG_MAX_STATES = {5: 250_000, 6: 150_000}
+WINDOW_CHECK_X = {5: (0.0, 4.0), 6: (0.0,)}
+# Off-grid exact points that set the interpolation part of the N = 5, 6 model error
+# (bound_points.npz) ...
+BOUND_PATH = Path(__file__).with_name("bound_points.npz")
+BOUND_POINTS = ([(5, u, x) for u in (2.25, 3.75, 4.75) for x in (0.75, 2.75, 4.5, 9.0)]
+                + [(6, u, x) for u in (2.25, 3.75, 4.75) for x in (0.75, 2.75, 4.5)]
+                + [(6, 4.75, 9.0)])
+# ... and held-out ones that nothing is built from: only the tests compare the model with them.
+HELD_OUT_POINTS = ([(5, u, x) for u in (1.75, 2.75, 4.25) for x in (1.25, 3.25, 6.5)]
+                   + [(6, u, x) for u in (2.75, 4.25) for x in (1.25, 3.25)] + [(6, 4.25, 6.5)])
 
 
 def _solve_row(task: tuple[int, float, np.ndarray]) -> tuple[int, float, np.ndarray, float, float]:
@@ -96,8 +127,12 @@ def build_tables(workers: int = 2, reuse: dict[str, np.ndarray] | None = None) -
         # solves are deterministic, so the result equals a run from scratch).
         j_of = {float(u): j for j, u in enumerate(U_NODES)}
         pending = []
+        old_columns = reuse["u_nodes"].size
         for n, u, xs in tasks:
             j = j_of[u]
+            if j >= old_columns:
+                pending.append((n, u, xs, 0))
+                continue
             old = reuse[f"dip_{n}"][:, j]
             known = reuse["solved_4"][:, j] if n == 4 else np.ones(nx, dtype=bool)
             done = int(np.argmin(known[: len(xs)])) if not known[: len(xs)].all() else len(xs)
@@ -149,10 +184,12 @@ def build_tables(workers: int = 2, reuse: dict[str, np.ndarray] | None = None) -
     }
 
 
-def _solve_point(task: tuple[int, float, float]) -> tuple[int, float, float, float, float]:
+def _solve_point(
+    task: tuple[int, float, float], sigmas: float = SIGMAS
+) -> tuple[int, float, float, float, float]:
     n, u, x = task
     start = time.perf_counter()
-    sol = solve_master_equation(ArrayDescription(n), x, u, sigmas=SIGMAS)
+    sol = solve_master_equation(ArrayDescription(n), x, u, sigmas=sigmas)
     logger.info("N=%d u=%.2f x=%.2f: G/G_T = %.12f (%d states, edge %.1e, %.0f s)", n, u, x,
                 sol.conductance, sol.n_states, sol.boundary_probability,
                 time.perf_counter() - start)
@@ -169,6 +206,62 @@ def build_validation(workers: int = 2) -> dict[str, np.ndarray]:
             "conductance": arr[:, 3], "edge_probability": arr[:, 4]}
 
 
+def build_long_tables(resume: bool = False) -> dict[str, np.ndarray]:
+    """Exact G/G_T for N = 5, 6 on LONG_X_NODES x LONG_U_NODES, with window checks (one core).
+
+    Each finished (N, u) column is saved to LONG_PARTIAL_PATH, so that an interrupted run can
+    continue with ``resume`` (the solves are deterministic).
+    """
+    shape = (LONG_X_NODES.size, LONG_U_NODES.size)
+    out: dict[str, np.ndarray] = {"x_nodes": LONG_X_NODES, "u_nodes": LONG_U_NODES,
+                                  "lengths": np.array(LONG_LENGTHS),
+                                  "window_sigmas": np.array(LONG_SIGMAS),
+                                  "max_states": np.array(LONG_MAX_STATES)}
+    for n in LONG_LENGTHS:
+        for key in ("conductance", "edge_probability", "n_states"):
+            out[f"{key}_{n}"] = np.full(shape, np.nan)
+        out[f"done_{n}"] = np.zeros(LONG_U_NODES.size, dtype=bool)
+    out["window_check"] = np.zeros((0, 4))
+    if resume and LONG_PARTIAL_PATH.exists():
+        with np.load(LONG_PARTIAL_PATH) as old:
+            out.update({key: np.array(old[key]) for key in old.files})
+    for n in LONG_LENGTHS:
+        for j, u in enumerate(LONG_U_NODES):
+            if out[f"done_{n}"][j]:
+                continue
+            start = time.perf_counter()
+            array = ArrayDescription(n)
+            budget = LONG_MAX_STATES[n]
+            xs = [x for x in LONG_X_NODES
+                  if estimated_window_states(array, float(x), float(u), LONG_SIGMAS) <= budget]
+            row = solve_bias_sweep(array, np.array(xs), float(u), sigmas=LONG_SIGMAS)
+            out[f"conductance_{n}"][: len(xs), j] = [sol.conductance for sol in row]
+            out[f"edge_probability_{n}"][: len(xs), j] = [sol.boundary_probability for sol in row]
+            out[f"n_states_{n}"][: len(xs), j] = [sol.n_states for sol in row]
+            checks = []
+            for x in WINDOW_CHECK_X[n]:
+                sol = solve_master_equation(array, x, float(u), sigmas=LONG_SIGMAS,
+                                            check_window=True)
+                checks.append((n, u, x, sol.window_change))
+            out["window_check"] = np.concatenate((out["window_check"], np.array(checks)))
+            out[f"done_{n}"][j] = True
+            np.savez_compressed(LONG_PARTIAL_PATH, **out)
+            logger.info("N=%d u=%.2f: %d points to x = %g in %.0f s (max %d states, edge <= "
+                        "%.1e, window change <= %.1e)", n, u, len(xs), xs[-1],
+                        time.perf_counter() - start, np.nanmax(out[f"n_states_{n}"][:, j]),
+                        np.nanmax(out[f"edge_probability_{n}"][:, j]),
+                        max(c[3] for c in checks))
+    return out
+
+
+def build_points(points: list[tuple[int, float, float]]) -> dict[str, np.ndarray]:
+    """Exact G/G_T at single (N, u, x) points, serially on one core."""
+    rows = [_solve_point((n, u, x), sigmas=LONG_SIGMAS) for n, u, x in points]
+    arr = np.array(rows)
+    return {"n": arr[:, 0].astype(int), "u": arr[:, 1], "x": arr[:, 2],
+            "conductance": arr[:, 3], "edge_probability": arr[:, 4]}
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--workers", type=int, default=2)
@@ -176,9 +269,23 @@ def main() -> None:
                         help="earlier table on the same grid whose solved nodes are kept")
     parser.add_argument("--validate", action="store_true",
                         help="compute the exact off-table reference points instead of the tables")
+    parser.add_argument("--long", action="store_true",
+                        help="compute the exact N = 5, 6 tables (one core, ~25 min)")
+    parser.add_argument("--resume", action="store_true",
+                        help="with --long: keep the columns an interrupted run finished")
+    parser.add_argument("--bound", action="store_true",
+                        help="compute the off-grid N = 5, 6 points that set the model error")
+    parser.add_argument("--held-out", action="store_true",
+                        help="compute the held-out N = 5, 6 points that only the tests use")
     args = parser.parse_args()
     logging.basicConfig(level=logging.INFO, format="%(asctime)s %(message)s")
-    if args.validate:
+    if args.long:
+        out, data = LONG_TABLE_PATH, build_long_tables(args.resume)
+    elif args.bound:
+        out, data = BOUND_PATH, build_points(BOUND_POINTS)
+    elif args.held_out:
+        out, data = HELD_OUT_PATH, build_points(HELD_OUT_POINTS)
+    elif args.validate:
         out, data = VALIDATION_PATH, build_validation(args.workers)
     else:
         reuse = None
