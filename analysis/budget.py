@@ -120,6 +120,18 @@ def coverage_factor(degrees_of_freedom: float, coverage_probability: float = 0.9
     return float(stats.t.ppf(tail, nu))
 
 
+def degrees_of_freedom_from_reliability(relative_uncertainty_of_u: float) -> float:
+    """ν ≈ ½ (Δu/u)⁻² for a Type B standard uncertainty whose own relative uncertainty is Δu/u.
+
+    GUM G.4.2, eq. (G.3); the GUM's example there: judged reliable to about 25 % gives ν = 8.
+    Δu/u = 0 (an input known exactly) gives ν = ∞.
+    """
+    r = float(relative_uncertainty_of_u)
+    if r < 0 or not math.isfinite(r):
+        raise ValueError(f"relative uncertainty of the uncertainty must be finite and >= 0, got {r}")
+    return math.inf if r == 0 else 0.5 / r**2
+
+
 @dataclass(frozen=True)
 class Budget:
     """A combined GUM budget for one measurand."""

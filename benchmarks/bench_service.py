@@ -31,8 +31,8 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from service.app import create_app  # noqa: E402
-from service.auth import create_token, create_user  # noqa: E402
+from service.web.app import create_app  # noqa: E402
+from service.web.auth import create_token, create_user  # noqa: E402
 from tests.service_support import LiveServer  # noqa: E402
 
 EXAMPLE = ROOT / "example_runs" / "cbt-hollowmere"
@@ -102,7 +102,7 @@ def bench_upload_to_draft(root: Path, quick: bool) -> dict:
 
 
 def bench_verify(root: Path, records: int, quick: bool) -> dict:
-    from service.certify import certify_run
+    from service.calibrations.certify import certify_run
     from service.intake import load_run
 
     app, tokens = _lab(root / "archive", quick=True, workers=1)

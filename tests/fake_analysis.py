@@ -13,7 +13,7 @@ import os
 import time
 from pathlib import Path
 
-from service.certify import certify_run
+from service.calibrations.certify import certify_run
 
 
 def misbehaving_certify(run, seed, progress=None, **options):

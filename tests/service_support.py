@@ -17,8 +17,8 @@ from typing import Any
 
 from werkzeug.serving import make_server
 
-from service.app import create_app
-from service.auth import create_token, create_user
+from service.web.app import create_app
+from service.web.auth import create_token, create_user
 
 EXAMPLE = Path(__file__).resolve().parents[1] / "example_runs" / "cbt-hollowmere"
 PASSWORD = "correct horse battery"

@@ -17,8 +17,8 @@ from sqlalchemy import func, select
 
 from service import storage as st
 from service.archive import canonical_json, verify_signed_document
-from service.openapi import openapi_document
 from service.storage import sha256_hex, utc_now
+from service.web.openapi import openapi_document
 from tests.service_support import (
     EXAMPLE,
     LiveServer,
@@ -122,6 +122,25 @@ def test_upload_to_issued_through_the_test_client(lab, issued):
         "certificate.verified",
         "certificate.reproduced",
     } <= set(actions)
+
+
+def test_a_configured_dcc_schema_checks_every_xml_rendering(lab, issued, tmp_path):
+    # A lab's own schema copy (DCC_SCHEMA / COLDCERT_DCC_SCHEMA) is applied before the XML is
+    # served: a schema our rendering cannot satisfy makes the request fail with a named reason.
+    strict = tmp_path / "other.xsd"
+    strict.write_text(
+        '<xs:schema xmlns:xs="http://www.w3.org/2001/XMLSchema">'
+        '<xs:element name="somethingElse" type="xs:string"/></xs:schema>'
+    )
+    client, cert = lab.client(), issued["certificate_id"]
+    lab.app.config["DCC_SCHEMA"] = str(strict)
+    try:
+        refused = client.get(f"/api/certificates/{cert}/xml", headers=lab.headers("olga"))
+    finally:
+        lab.app.config["DCC_SCHEMA"] = None
+    assert refused.status_code == 409
+    assert "does not validate against" in refused.get_json()["error"]
+    assert client.get(f"/api/certificates/{cert}/xml", headers=lab.headers("olga")).status_code == 200
 
 
 def test_four_eyes_through_the_api(lab):
@@ -530,7 +549,7 @@ def test_signed_record_is_canonical_json(lab, issued):
 
 
 def test_command_line_verify_and_reproduce(lab, issued, tmp_path, capsys):
-    from service.cli import main as cli_main
+    from service.cli.main import main as cli_main
 
     instance = lab.app.instance_path
     cert = issued["certificate_id"]
@@ -621,3 +640,49 @@ def test_pages_for_each_step(lab, issued):
     assert b"User added." in reply.data and b"gus" in reply.data
     reply = admin.post("/users", data={"csrf_token": csrf, "action": "token", "username": "gus"})
     assert re.search(rb'id="new-token">cct_', reply.data)
+
+
+def test_an_incomplete_draft_is_not_issued_until_corrected(lab):
+    # ISO/IEC 17025:2017 7.8.2.1 lists what every report states (laboratory, customer, item,
+    # dates, method, results with uncertainty, authorisation): a draft may lack some of it, an
+    # issued certificate may not. Without a manifest, the date of measurement comes from the
+    # sweep's '# sweep_started:' line.
+    sweep = (EXAMPLE / "sweep_03_60mK.csv").read_bytes()
+    assert b"# sweep_started: 2026-" in sweep
+    client = lab.client()
+    reply = lab.upload(client, files=[("sweep_03_60mK.csv", sweep)])
+    assert reply.status_code == 202, reply.get_json()
+    job = lab.wait(client, reply.get_json()["job_id"])
+    assert job["status"] == "done", job["error"]
+    cert = job["certificate_id"]
+    info = client.get(f"/api/certificates/{cert}", headers=lab.headers("olga")).get_json()
+    assert info["record"]["dates"]["measured"][:4] == "2026"
+    missing = {m["field"] for m in info["missing"]}
+    assert {"laboratory.name", "customer.name", "item.identifier"} <= missing
+    assert "dates.measured" not in missing and "method.description" not in missing
+    refused = client.post(f"/api/certificates/{cert}/issue", headers=lab.headers("arno"))
+    assert refused.status_code == 409
+    assert "customer's name" in refused.get_json()["error"]
+    assert client.get(f"/api/certificates/{cert}", headers=lab.headers("olga")).get_json()[
+        "state"] == "draft"
+    # Results cannot be "corrected"; administrative fields can, on the draft itself.
+    bad = client.post(
+        f"/api/certificates/{cert}/corrections",
+        json={"corrections": {"results": []}},
+        headers=lab.headers("olga"),
+    )
+    assert bad.status_code == 400
+    fill = {
+        "laboratory": {"name": "Test Lab", "address": "1 Test Road"},
+        "customer": {"name": "A Customer", "address": "2 Client Street"},
+        "item": {"description": "CBT chip", "identifier": "CBT-1"},
+    }
+    done = client.post(
+        f"/api/certificates/{cert}/corrections", json={"corrections": fill},
+        headers=lab.headers("olga"),
+    )
+    assert done.status_code == 200 and done.get_json()["missing"] == []
+    issued = client.post(f"/api/certificates/{cert}/issue", headers=lab.headers("arno"))
+    assert issued.status_code == 200, issued.get_json()
+    record = client.get(f"/api/certificates/{cert}/json", headers=lab.headers("olga")).get_json()
+    assert record["customer"]["name"] == "A Customer" and "customer" in record["corrected_fields"]

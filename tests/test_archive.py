@@ -107,16 +107,25 @@ def _fake_certify(run: Path, seed: int, progress=None) -> dict:
     draws = column.mean() + column.std() * rng.standard_normal(64)
     if progress:
         progress(1.0, "done")
+    u = float(draws.std(ddof=1))
     return {
+        # Everything ISO/IEC 17025 7.8.2.1 asks a certificate to state, so that it can be issued.
         "title": "Calibration certificate",
-        "customer": {"name": "Cryolab North"},
+        "laboratory": {"name": "Archive Test Lab", "address": "1 Test Road"},
+        "customer": {"name": "Cryolab North", "address": "North Road"},
+        "item": {"description": "test thermometer", "identifier": "T-1"},
+        "dates": {"measured": "2026-11-24"},
+        "method": {"description": "stand-in analysis for archive tests"},
         "results": [
             {
                 "name": "electron temperature",
                 "sweep": "sweep.csv",
                 "value": float(draws.mean()),
                 "unit": "K",
-                "standard_uncertainty": float(draws.std(ddof=1)),
+                "standard_uncertainty": u,
+                "expanded_uncertainty": 2 * u,
+                "coverage_factor": 2.0,
+                "coverage_probability": 0.95,
                 "budget": {"effective_degrees_of_freedom": None},
             }
         ],

@@ -9,9 +9,9 @@ import pytest
 from sqlalchemy import select
 
 from service import storage as st
-from service.auth import AuthError, create_token, create_user, update_user
-from service.cli import main as cli_main
+from service.cli.main import main as cli_main
 from service.storage import sha256_hex
+from service.web.auth import AuthError, create_token, create_user, get_user, update_user
 from tests.service_support import PASSWORD, make_lab
 
 
@@ -216,10 +216,48 @@ def test_add_admin_command_creates_the_first_admin(tmp_path, monkeypatch, capsys
     assert "at least 10" in capsys.readouterr().err
     assert cli_main(["new-token", "root", "--instance", str(instance)]) == 0
     token = capsys.readouterr().out.strip()
-    from service.app import create_app
+    from service.web.app import create_app
 
     app = create_app({"INSTANCE_PATH": str(instance)})
     reply = app.test_client().get("/api/users", headers={"Authorization": f"Bearer {token}"})
     assert reply.status_code == 200
     assert [u["username"] for u in reply.get_json()["users"]] == ["root"]
     assert create_token  # the CLI and the API share one token implementation
+
+
+def test_people_page_changes_roles_disables_and_keeps_a_refused_form(lab):
+    storage = lab.services.storage
+    client = lab.client()
+    login(client, "adam")
+    csrf = _csrf(client.get("/users").data)
+
+    def update(username, roles, active=True):
+        data = {"csrf_token": csrf, "action": "update", "username": username, "roles": roles}
+        if active:
+            data["active"] = "on"
+        return client.post("/users", data=data)
+
+    # The first administrator can take the operator and approver roles from the page.
+    assert update("adam", ["admin", "operator", "approver"]).status_code == 200
+    assert get_user(storage, "adam")["roles"] == ["admin", "approver", "operator"]
+    # An account is disabled from the page, and its token stops working at once.
+    assert update("olga", ["operator"], active=False).status_code == 200
+    assert not get_user(storage, "olga")["active"]
+    assert lab.client().get("/api/certificates", headers=lab.headers("olga")).status_code in (401, 403)
+    # The only active administrator cannot remove their own administration.
+    refused = update("adam", ["operator"])
+    assert refused.status_code == 400 and b"only active administrator" in refused.data
+    assert "admin" in get_user(storage, "adam")["roles"]
+    # A refused form comes back with what was typed, the field named.
+    refused = client.post(
+        "/users",
+        data={
+            "csrf_token": csrf, "action": "add", "username": "new-person",
+            "display_name": "New Person", "password": "short", "roles": ["auditor"],
+        },
+    )
+    assert refused.status_code == 400
+    assert b"password: password must have at least" in refused.data
+    assert b'value="new-person"' in refused.data and b'value="New Person"' in refused.data
+    assert b'value="auditor" checked' in refused.data
+    assert get_user(storage, "new-person") is None

@@ -63,7 +63,8 @@ def test_budget_rows_and_correction():
     bias, g, setup = simulate_sweep(33, 0.05, 0.01, 3e-6, seed=2, excitation_rms_V=5e-6)
     s = FitSettings(walkers=12, block=100, max_steps=3000, min_tau_multiple=20, tau_tolerance=0.2)
     fit = fit_sweep(SweepData(bias, g, setup), seed=1, settings=s)
-    inputs = TypeBInputs(bias_scale_relative_u=1e-3, resistance_spread=0.05)
+    inputs = TypeBInputs(bias_scale_relative_u=1e-3, bias_scale_stated=True, resistance_spread=0.05,
+                         resistance_spread_stated=True, excitation_amplitude_stated=True)
     budget, factor = temperature_budget(fit, higher_order_shape, setup, inputs)
     names = [r.quantity for r in budget.rows]
     for needed in ("posterior", "bias-voltage scale", "excitation", "non-uniformity", "model truncation"):

@@ -11,8 +11,8 @@ from analysis.cbt.models import (
     half_width_voltage,
     higher_order_shape,
 )
+from service.calibrations.cbt import fit_file
 from service.intake import parse_csv
-from service.thermometry import fit_file
 
 N, M, R_T = 33, 10, 20e3
 G_T = M / (N * R_T)

@@ -6,7 +6,7 @@ from pathlib import Path
 
 import pytest
 
-from service.cli import main
+from service.cli.main import main
 
 EXAMPLE = Path(__file__).resolve().parent.parent / "example_runs" / "cbt-hollowmere"
 
@@ -108,3 +108,45 @@ def test_secondary_command_round_trip(tmp_path, capsys):
     log.write_text("time_s,conductance_S\n0,1.0e-5\n")
     assert main(["secondary", str(cert), str(log), "--out", str(out)]) == 2
     assert "log.csv:2: conductance_S" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize(
+    "argv",
+    [["verify", "CC-2026-00001"], ["verify", "--all"], ["reproduce", "CC-2026-00001"]],
+)
+def test_read_only_commands_never_create_an_instance(tmp_path, monkeypatch, capsys, argv):
+    # Without --instance, verify/reproduce used to create ./instance with a new lab key pair and
+    # then report "not found". A missing instance is an error naming the folder searched.
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.delenv("COLDCERT_INSTANCE", raising=False)
+    assert main(argv) == 2
+    err = capsys.readouterr().err
+    assert str(tmp_path / "instance") in err and "--instance" in err
+    assert list(tmp_path.iterdir()) == []
+    missing = tmp_path / "elsewhere"
+    assert main([*argv, "--instance", str(missing)]) == 2
+    assert str(missing) in capsys.readouterr().err and not missing.exists()
+
+
+def test_same_bytes_whatever_the_number_of_workers(tmp_path):
+    # Sweeps are fitted on worker processes, each with its own seed: one process or two must
+    # give the same certificate, byte for byte (quick-look rule to keep the test short).
+    run = tmp_path / "run"
+    run.mkdir()
+    for name in ("sweep_04_120mK.csv", "sweep_05_250mK.csv"):
+        shutil.copy(EXAMPLE / name, run)
+    outs = {}
+    for workers in ("1", "2"):
+        outs[workers] = tmp_path / f"w{workers}"
+        argv = ["certify", str(run), "--out", str(outs[workers]), "--quick", "--seed", "11",
+                "--workers", workers]
+        assert main(argv) == 0
+    for name in ("certificate.json", "certificate.html"):
+        assert (outs["1"] / name).read_bytes() == (outs["2"] / name).read_bytes()
+    assert len(json.loads((outs["1"] / "certificate.json").read_text())["results"]) == 2
+
+
+def test_workers_must_be_a_positive_number(tmp_path, capsys):
+    with pytest.raises(SystemExit):
+        main(["certify", str(EXAMPLE), "--out", str(tmp_path / "x"), "--workers", "0"])
+    assert "--workers" in capsys.readouterr().err

@@ -1,5 +1,6 @@
-"""Renderings: DCC 3.3.0 XML validated against the published schema files (kept in the shared
-folder beside the repository), our own completeness checks, and the PDF's page footers."""
+"""Renderings: DCC 3.3.0 XML validated against the published schema files (PTB's, not part of
+the repository: COLDCERT_DCC_SCHEMA names them), our own completeness checks, and the PDF's page
+footers."""
 
 from __future__ import annotations
 
@@ -13,29 +14,29 @@ import pytest
 from lxml import etree
 from pypdf import PdfReader
 
-from service.certify import certify_run
-from service.dcc import (
+from service.calibrations.certify import certify_run
+from service.intake import load_run
+from service.render.dcc import (
     DCC_NS,
     SI_NS,
     CertificateIncomplete,
+    DccSchemaError,
     check_complete,
     render_dcc,
     si_unit,
     si_value,
 )
-from service.intake import load_run
-from service.pdf import render_pdf
+from service.render.pdf import render_pdf
 
 EXAMPLE = Path(__file__).resolve().parents[1] / "example_runs" / "cbt-hollowmere"
-# The schema files stay in the shared folder next to the repository; never copied into it.
-SCHEMA = Path(__file__).resolve().parents[1] / ".." / "shared" / "schemas" / "dcc-3.3.0" / "dcc.xsd"
 NS = {"dcc": DCC_NS, "si": SI_NS}
 
 
 @pytest.fixture(scope="module")
-def schema() -> etree.XMLSchema:
-    assert SCHEMA.is_file(), f"DCC 3.3.0 schema not found at {SCHEMA.resolve()}"
-    return etree.XMLSchema(etree.parse(str(SCHEMA)))
+def schema(dcc_schema_path) -> etree.XMLSchema:
+    # PTB's schema files are not part of the repository: the path comes from COLDCERT_DCC_SCHEMA
+    # (tests/conftest.py skips without it, and fails under CI=true).
+    return etree.XMLSchema(etree.parse(str(dcc_schema_path)))
 
 
 @pytest.fixture(scope="module")
@@ -56,14 +57,35 @@ def issued_record(certified):
     return record
 
 
-def test_schema_check_is_live(schema):
+def test_schema_check_is_live(schema, dcc_schema_path):
     # The bundled minimal example validates; without coreData it must not (README of the folder).
-    example = etree.parse(str(SCHEMA.parent / "minimal-example.xml"))
+    example = etree.parse(str(dcc_schema_path.parent / "minimal-example.xml"))
     assert schema.validate(example)
     example.getroot().find("dcc:administrativeData/dcc:coreData", NS).getparent().remove(
         example.getroot().find("dcc:administrativeData/dcc:coreData", NS)
     )
     assert not schema.validate(example)
+
+
+def test_validate_dcc_accepts_ours_and_names_the_first_violation(dcc_schema_path, issued_record):
+    # The service-side check a lab turns on with COLDCERT_DCC_SCHEMA / DCC_SCHEMA.
+    from service.render.dcc import validate_dcc
+
+    document = render_dcc(issued_record)
+    validate_dcc(document, dcc_schema_path)
+    tree = etree.fromstring(document)
+    core = tree.find("dcc:administrativeData/dcc:coreData", NS)
+    core.getparent().remove(core)
+    with pytest.raises(DccSchemaError, match=r"does not validate against .*line \d+"):
+        validate_dcc(etree.tostring(tree), dcc_schema_path)
+
+
+def test_a_missing_schema_file_is_named(tmp_path, issued_record):
+    from service.render.dcc import validate_dcc
+
+    missing = tmp_path / "nowhere" / "dcc.xsd"
+    with pytest.raises(DccSchemaError, match="COLDCERT_DCC_SCHEMA"):
+        validate_dcc(render_dcc(issued_record), missing)
 
 
 def test_issued_certificate_validates_against_dcc_3_3_0(schema, issued_record):

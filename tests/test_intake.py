@@ -116,3 +116,33 @@ def test_dc_iv_is_differentiated():
     f = parse_csv("iv.csv", text.encode())
     _, g = check_cbt_sweep(f)
     np.testing.assert_allclose(g, 3e-6 + 4e-4 * v, rtol=1e-9)
+
+
+# Header messages name what is actually wrong (one test per message).
+
+
+@pytest.mark.parametrize(("sep", "called"), [(";", "semicolons"), ("\t", "tabs")])
+def test_other_separators_are_named(sep, called):
+    text = sweep_text().decode().replace(",", sep)
+    err = refuse(text.encode(), line=2)
+    assert called in err.message and "comma-separated" in err.message
+
+
+def test_missing_header_line_is_named():
+    text = sweep_text().decode().split("\n", 2)
+    no_header = (text[0] + "\n" + text[2]).encode()
+    err = refuse(no_header, line=2)
+    assert "no header line" in err.message and "bias_V,conductance_S" in err.message
+
+
+def test_prefixed_unit_is_refused_with_the_unprefixed_name():
+    err = refuse(sweep_text(header="bias_mV,conductance_S"), field="bias_mV", line=2)
+    assert "'mV' has an SI prefix" in err.message and "bias_V" in err.message
+    assert "must end in an SI unit" not in err.message
+
+
+def test_a_name_that_ends_in_a_unit_is_accepted_and_the_missing_column_named():
+    # G_S ends in a unit, so the header is fine; the sweep check then says which column it needs.
+    err = refuse(sweep_text(header="bias_V,G_S"), field="conductance_S", line=2)
+    assert "must end in an SI unit" not in err.message
+    assert "conductance_S" in err.message and "found bias_V, G_S" in err.message

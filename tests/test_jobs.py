@@ -10,7 +10,7 @@ import pytest
 from sqlalchemy import func, select
 
 from service import storage as st
-from service.jobs import recover_interrupted
+from service.queue.jobs import recover_interrupted
 from service.storage import utc_now
 from tests.service_support import EXAMPLE, make_lab
 
@@ -120,7 +120,7 @@ def test_separate_worker_command_runs_queued_jobs(tmp_path):
         [
             sys.executable,
             "-m",
-            "service.cli",
+            "service.cli.main",
             "work",
             "--quick",
             "--instance",
@@ -146,7 +146,7 @@ def test_separate_worker_command_runs_queued_jobs(tmp_path):
 
 def test_output_files_are_kept_signed_verified_and_reproduced(troubled_lab):
     from service.intake import load_run
-    from service.jobs import import_string
+    from service.queue.jobs import import_string
     from service.storage import sha256_hex
 
     lab = troubled_lab
@@ -184,7 +184,7 @@ def test_output_files_are_kept_signed_verified_and_reproduced(troubled_lab):
 
 def test_reproduce_compares_output_files_byte_for_byte(troubled_lab):
     from service.intake import load_run
-    from service.jobs import import_string
+    from service.queue.jobs import import_string
 
     lab = troubled_lab
     client = lab.client()

@@ -4,12 +4,12 @@ import numpy as np
 import pytest
 
 from analysis.cbt import tunnelling
+from analysis.cbt.choice import choose_shape
 from analysis.cbt.fit import FitSettings
 from analysis.cbt.models import higher_order_shape
 from analysis.constants import BOLTZMANN, ELEMENTARY_CHARGE
+from service.calibrations.cbt import fit_file
 from service.intake import parse_csv
-from analysis.cbt.choice import choose_shape
-from service.thermometry import fit_file
 
 
 def exact_sweep_file(n, T, u, points=161, noise=1e-4, seed=3):

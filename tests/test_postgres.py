@@ -16,7 +16,7 @@ from sqlalchemy import text
 
 from service import storage as st
 from service.archive import Archive, LabKey
-from service.jobs import claim, enqueue
+from service.queue.jobs import claim, enqueue
 from service.storage import Storage, utc_now
 
 URL = os.environ.get("COLDCERT_TEST_DATABASE_URL", "")

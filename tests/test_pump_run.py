@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 
 from analysis.pump import simulate
-from service.certify import certify_run
-from service.cli import main
+from service.calibrations.certify import certify_run
+from service.cli.main import main
 from service.intake import IntakeError, load_run
 
 EXAMPLE = Path(__file__).resolve().parent.parent / "example_runs" / "pump-quillfen"

@@ -1,4 +1,4 @@
-"""The sensor-calibration job (service/sensor_run.py): intake pieces, records, CLI end to end."""
+"""The sensor-calibration job (service/calibrations/sensor.py): intake pieces, records, CLI end to end."""
 
 import json
 import math
@@ -9,8 +9,8 @@ import numpy as np
 import pytest
 
 from analysis import scales, sensors
-from service import sensor_run as sr
-from service.cli import main
+from service.calibrations import sensor as sr
+from service.cli.main import main
 from service.intake import IntakeError, parse_csv
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "example_runs"
@@ -318,7 +318,7 @@ def test_certify_minimal_sensor_run_and_convert_log(tmp_path, capsys):
 
 
 def _fake_cbt(truth: dict[str, float]):
-    from service.thermometry import JobOutcome
+    from service.calibrations.outcome import CalibrationOutcome
 
     def analyse(run, seed, progress=None, fast=False):
         results = []
@@ -345,7 +345,7 @@ def _fake_cbt(truth: dict[str, float]):
                     },
                 }
             )
-        return JobOutcome(results=results, method={"description": "stand-in"})
+        return CalibrationOutcome(results=results, method={"description": "stand-in"})
 
     return analyse
 
@@ -439,8 +439,8 @@ def test_global_fit_correlation_carried_into_points():
 
 
 def test_job_refuses_curve_that_cannot_follow_the_points(monkeypatch):
+    from service.calibrations.outcome import CertificationRefused
     from service.intake import load_files
-    from service.thermometry import CertificationRefused
 
     # Six points over two decades allow degree 2 at most; with 0.2 % references the curvature of
     # this sensor leaves chi2 far beyond its degrees of freedom: refuse, do not inflate.
@@ -460,15 +460,13 @@ def test_job_refuses_curve_that_cannot_follow_the_points(monkeypatch):
         sr.analyse(load_files(named), seed=1)
 
 
-def test_example_certificate_renders_a_valid_dcc():
+def test_example_certificate_renders_a_valid_dcc(dcc_schema_path):
     # The sensor certificate (its table points are results too) must go through the DCC
-    # rendering and validate against the published DCC 3.3.0 schema (PTB), kept in ../shared.
+    # rendering and validate against the published DCC 3.3.0 schema (PTB), whose path comes
+    # from COLDCERT_DCC_SCHEMA (see tests/conftest.py).
     etree = pytest.importorskip("lxml.etree")
-    schema_path = Path(__file__).resolve().parents[1] / ".." / "shared" / "schemas"
-    schema_path = schema_path / "dcc-3.3.0" / "dcc.xsd"
-    if not schema_path.exists():
-        pytest.skip("DCC schema not available beside the project")
-    from service.dcc import render_dcc
+    schema_path = dcc_schema_path
+    from service.render.dcc import render_dcc
 
     record = json.loads((EXAMPLES / "sensor-larkspur-certificate" / "certificate.json").read_text())
     record["dates"]["issued"] = "2026-12-01"  # only an issued certificate is written as a DCC

@@ -20,13 +20,14 @@ from dataclasses import dataclass
 
 from analysis.cbt.fit import (
     FitSettings,
+    ModelEdgeError,
     SweepData,
     SweepFit,
     fit_sweep,
     initial_guess,
     least_squares_fit,
 )
-from analysis.cbt.full_model import FullModelRangeError, FullTunnellingShape
+from analysis.cbt.full_model import FullModelRangeError, FullTunnellingShape, shared_shape
 from analysis.cbt.models import DipShape, higher_order_shape
 from analysis.sampling import ProgressCallback
 
@@ -44,7 +45,7 @@ class ModelChoice:
 def full_model_for(n_junctions: int, c0_ratio: float = 0.0) -> FullTunnellingShape | None:
     """The full tunnelling model for this array, or None where no validated table exists (cached)."""
     try:
-        return FullTunnellingShape(int(n_junctions), float(c0_ratio))
+        return shared_shape(int(n_junctions), float(c0_ratio))
     except FullModelRangeError:
         return None
 
@@ -73,7 +74,15 @@ def fit_sweep_chosen(
     start = initial_guess(data)
     u0 = float(least_squares_fit(higher_order_shape, data, start)["theta"][1])
     choice = choose_shape(max(u0, 0.0), data.setup.junctions_in_series, c0_ratio)
-    fit = fit_sweep(data, seed=seed, shape=choice.shape, settings=settings, progress=progress)
+    try:
+        fit = fit_sweep(data, seed=seed, shape=choice.shape, settings=settings, progress=progress)
+    except ModelEdgeError as exc:
+        # At the edge of the first model's range: another model may hold the sweep inside its own.
+        refined = choose_shape(max(exc.u_estimate, 0.0), data.setup.junctions_in_series, c0_ratio)
+        if refined.shape == choice.shape:
+            raise
+        choice = refined
+        fit = fit_sweep(data, seed=seed, shape=choice.shape, settings=settings, progress=progress)
     refined = choose_shape(fit.u, data.setup.junctions_in_series, c0_ratio)
     if refined.shape != choice.shape:  # the start was on the wrong side of a boundary
         choice = refined

@@ -19,10 +19,10 @@ the swept range. ΔE/k_B = u T is reported from the same samples.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
-from scipy import optimize
+from scipy import linalg, optimize
 
 from analysis.cbt.models import (
     HALF_WIDTH_FACTOR,
@@ -34,6 +34,19 @@ from analysis.cbt.models import (
     higher_order_shape,
     invert_depth_series,
     numerical_fwhm,
+)
+from analysis.cbt.robust import (
+    MAX_OUTLIER_FRACTION,
+    ResidualDiagnosis,
+    choose_noise_model,
+    difference_noise_scale,
+    flag_outliers,
+    hac_inflation,
+    isolated_bias_points,
+    lag1_correlation,
+    newey_west_lag,
+    outlier_threshold,
+    template_tests,
 )
 from analysis.constants import BOLTZMANN, ELEMENTARY_CHARGE
 from analysis.sampling import PosteriorResult, ProgressCallback, sample_posterior
@@ -52,13 +65,33 @@ class SweepError(ValueError):
 
 @dataclass(frozen=True)
 class SweepData:
-    """One sweep: bias (V) and conductance (S) arrays, optional per-point standard uncertainty."""
+    """One sweep: bias (V) and conductance (S) arrays, optional per-point standard uncertainty.
+
+    Any bias order is accepted (the noise model works in bias order). ``excluded`` lists the
+    points (indices into the arrays) left out of the likelihood, e.g. by :func:`screen_outliers`;
+    ``noise_correlation`` is the AR(1) coefficient ρ of the noise between neighbouring points in
+    bias order (0: white noise).
+    """
 
     bias: np.ndarray
     conductance: np.ndarray
     setup: SweepSetup
     conductance_uncertainty: np.ndarray | None = None
     background: bool = False
+    excluded: tuple[int, ...] = ()
+    noise_correlation: float = 0.0
+    #: Lower Cholesky factor of the noise correlation of the used points in bias order (a general
+    #: stationary noise model, analysis.cbt.robust.NoiseModel); None for white or AR(1) noise.
+    noise_factor: np.ndarray | None = field(default=None, repr=False, compare=False)
+
+    def used_order(self) -> np.ndarray:
+        """Indices of the points in the likelihood, sorted by bias."""
+        order = np.argsort(self.bias, kind="stable")
+        if self.excluded:
+            keep = np.ones(self.bias.size, dtype=bool)
+            keep[list(self.excluded)] = False
+            order = order[keep[order]]
+        return order
 
 
 @dataclass(frozen=True)
@@ -66,10 +99,14 @@ class FitSettings:
     """Sampler settings. Defaults give certificate-grade chains; tests may use lighter ones."""
 
     walkers: int = 12
-    block: int = 100
+    block: int = 50
     max_steps: int = 20_000
     min_tau_multiple: float = 50.0
     tau_tolerance: float = 0.05
+    #: analysis.sampling.MOVE_SETS; the independence proposal from the least-squares covariance
+    #: has τ ≈ 2 steps on these posteriors against ≈ 13 for differential evolution
+    #: (benchmarks/bench_cbt_sampler.py).
+    moves: str = "independence"
 
 
 @dataclass(frozen=True)
@@ -103,10 +140,14 @@ class SweepFit:
     #: With a heating model: T above is the phonon (bath) temperature; these give the electrons'.
     electron_temperature_zero_bias: float | None = None
     heating_at_half_width: float = 0.0  # (T_e(V_1/2/2) − T_p)/T_p
+    #: The data exactly as the posterior used them (outliers excluded, noise model, background).
+    fitted_data: SweepData | None = None
+    #: Residual checks (analysis.cbt.diagnosis.ResidualDiagnosis); None if not run.
+    diagnosis: object | None = None
 
 
 # --------------------------------------------------------------------------------------------
-# Linear amplitude parameters
+# Linear amplitude parameters and the noise model
 
 
 def _design(shape: DipShape, data: SweepData, theta: np.ndarray) -> np.ndarray:
@@ -124,11 +165,35 @@ def _weights(data: SweepData) -> np.ndarray:
     return 1.0 / np.asarray(data.conductance_uncertainty, dtype=float)
 
 
+def whiten(data: SweepData, values: np.ndarray, axis: int = -1) -> np.ndarray:
+    """Weighted values at the used points, in bias order, with the AR(1) noise decorrelated.
+
+    For AR(1) noise ε_i = ρ ε_(i−1) + η_i (η white) the Prais–Winsten transform z_1 = √(1 − ρ²) y_1,
+    z_i = y_i − ρ y_(i−1) turns generalised least squares into ordinary least squares (Prais &
+    Winsten, Cowles Commission Discussion Paper 383 (1954); the exact AR(1) GLS transform).
+    ``values`` has the data's points along ``axis``.
+    """
+    order = data.used_order()
+    y = np.moveaxis(np.asarray(values, dtype=float), axis, -1)
+    y = y[..., order] * _weights(data)[order]
+    rho = data.noise_correlation
+    if rho != 0.0:
+        z = np.empty_like(y)
+        z[..., 0] = math.sqrt(1.0 - rho * rho) * y[..., 0]
+        z[..., 1:] = y[..., 1:] - rho * y[..., :-1]
+        y = z
+    if data.noise_factor is not None:
+        # General stationary noise with correlation L Lᵀ: z = L⁻¹ y is white (GLS by Cholesky).
+        m = y.shape[-1]
+        flat = y.reshape(-1, m).T
+        y = linalg.solve_triangular(data.noise_factor, flat, lower=True, check_finite=False).T.reshape(y.shape)
+    return np.moveaxis(y, -1, axis)
+
+
 def _profile(shape: DipShape, data: SweepData, theta: np.ndarray):
-    """Least-squares linear parameters, RSS and log|AᵀA| for each row of theta."""
-    w = _weights(data)
-    a = _design(shape, data, theta) * w[None, :, None]
-    y = data.conductance * w
+    """Least-squares linear parameters, RSS and log|AᵀA| for each row of theta (whitened space)."""
+    a = whiten(data, _design(shape, data, theta), axis=-2)
+    y = whiten(data, data.conductance)
     ata = np.einsum("bni,bnj->bij", a, a)
     aty = np.einsum("bni,n->bi", a, y)
     coef = np.linalg.solve(ata, aty[..., None])[..., 0]
@@ -138,25 +203,58 @@ def _profile(shape: DipShape, data: SweepData, theta: np.ndarray):
     return coef, rss, logdet, ata
 
 
-def make_log_posterior(shape: DipShape, data: SweepData, bias_window: tuple[float, float]):
-    """Vectorised log posterior of (T, ΔE/k_B, V₀) with the amplitudes marginalised (module doc)."""
-    n = data.conductance.size
+def log_marginal_likelihood(shape: DipShape, data: SweepData, theta: np.ndarray) -> np.ndarray:
+    """log p(data | T, u, V₀) up to a constant, amplitudes and noise level integrated out.
+
+    −½ log|AᵀA| − ½ (m − k) log RSS over the m used points in the whitened space (module doc).
+    """
+    m = data.used_order().size
     k = 2 if data.background else 1
-    lo, hi = bias_window
-    # A model with a hard validity range (tables) bounds the prior on u to it.
-    u_lo = getattr(shape, "min_u", 0.0)
-    u_hi = min(MAX_U_PRIOR, shape.max_u) if hasattr(shape, "min_u") else MAX_U_PRIOR
+    _, rss, logdet, _ = _profile(shape, data, theta)
+    return -0.5 * logdet - 0.5 * (m - k) * np.log(rss)
+
+
+def prior_bounds(shape: DipShape, data: SweepData) -> dict[str, tuple[float, float]]:
+    """The box the posterior lives in: T in (0, 100 K], u in the model's validated range (or
+    [0, 5] for the series), V₀ within the central half of the swept bias range."""
+    u_lo = float(getattr(shape, "min_u", 0.0))
+    u_hi = min(MAX_U_PRIOR, float(shape.max_u)) if hasattr(shape, "min_u") else MAX_U_PRIOR
+    # A hard range is kept by a relative 1e-9 so that u = ΔE/(k_B T), recomputed from ΔE = u T in
+    # the forward model, cannot step over it by rounding.
+    u_lo, u_hi = u_lo + 1e-9 * (u_hi - u_lo), u_hi - 1e-9 * (u_hi - u_lo)
+    span = float(data.bias.max() - data.bias.min())
+    return {
+        "temperature_K": (0.0, 100.0),
+        "u": (u_lo, u_hi),
+        "bias_offset_V": (float(data.bias.min()) + 0.25 * span, float(data.bias.max()) - 0.25 * span),
+    }
+
+
+def make_log_posterior(shape: DipShape, data: SweepData, bias_window: tuple[float, float] | None = None,
+                       log_temperature: bool = False):
+    """Vectorised log posterior of (T, u, V₀) with the amplitudes marginalised (module doc).
+
+    With ``log_temperature`` the first coordinate is ln T and the Jacobian T is included, so the
+    prior stays uniform in T (ln T decorrelates the width from the depth in the sampler's metric).
+    """
+    bounds = prior_bounds(shape, data)
+    lo, hi = bias_window if bias_window is not None else bounds["bias_offset_V"]
+    u_lo, u_hi = bounds["u"]
 
     def log_prob(theta: np.ndarray) -> np.ndarray:
-        theta = np.atleast_2d(theta)
+        theta = np.array(np.atleast_2d(theta), dtype=float)
+        jac = np.zeros(theta.shape[0])
+        if log_temperature:
+            with np.errstate(over="ignore"):
+                jac = theta[:, 0].copy()
+                theta[:, 0] = np.exp(theta[:, 0])
         T, u, v0 = theta[:, 0], theta[:, 1], theta[:, 2]
         ok = (T > 0) & (T <= 100.0) & (u >= u_lo) & (u <= u_hi)
         ok &= (v0 >= lo) & (v0 <= hi)
         out = np.full(theta.shape[0], -np.inf)
         if not ok.any():
             return out
-        _, rss, logdet, _ = _profile(shape, data, theta[ok])
-        out[ok] = -0.5 * logdet - 0.5 * (n - k) * np.log(rss)
+        out[ok] = log_marginal_likelihood(shape, data, theta[ok]) + jac[ok]
         return out
 
     return log_prob
@@ -201,31 +299,84 @@ def initial_guess(data: SweepData) -> np.ndarray:
     return np.array([T, u, 0.5 * (v_left + v_right)])
 
 
-def least_squares_fit(shape: DipShape, data: SweepData, start: np.ndarray) -> dict:
-    """Profile least squares over (T, u, V₀); returns optimum, scales and linear parameters."""
+def least_squares_fit(shape: DipShape, data: SweepData, start: np.ndarray,
+                      robust_scale: float | None = None) -> dict:
+    """Profile least squares over (T, u, V₀) inside :func:`prior_bounds`; optimum, covariance, amplitudes.
+
+    Trust-region reflective least squares with the box as bounds (scipy.optimize.least_squares), so
+    a model with a hard validity range is never evaluated outside it; ``at_bound`` names the
+    parameters whose optimum lies on a bound of the box (the fit then only says "the truth is at
+    or beyond this edge", and :func:`fit_sweep` refuses it). With ``robust_scale`` (a noise level
+    in the weighted units) the amplitudes become explicit parameters and the loss is soft-L1 with
+    scale 3σ (Huber-type M-estimation, Huber, *Robust Statistics*, Wiley 1981), so a few wild
+    points cannot pull the optimum; the covariance is then still the ordinary one at that optimum.
+    """
+    bounds = prior_bounds(shape, data)
+    lo = np.array([bounds[k][0] for k in NONLINEAR])
+    hi = np.array([bounds[k][1] for k in NONLINEAR])
+    lo[0] = max(lo[0], 1e-9 * max(abs(float(start[0])), 1e-12))
+    margin = 1e-7 * (hi - lo)
+    start = np.clip(np.asarray(start, dtype=float), lo + margin, hi - margin)
     scale0 = np.array([start[0], max(start[1], 1e-3), start[0] * BOLTZMANN / ELEMENTARY_CHARGE])
+    # Residuals in units of the noise level, so that the optimiser's tolerances mean the same on any
+    # conductance scale (scipy's gradient test is absolute).
+    y_raw = whiten(data, data.conductance)
+    unit = difference_noise_scale(y_raw) or float(np.median(np.abs(y_raw))) * 1e-6 or 1.0
+    y = y_raw / unit
+    k = 2 if data.background else 1
 
-    def resid(z: np.ndarray) -> np.ndarray:
-        theta = (z * scale0)[None, :]
-        if hasattr(shape, "min_u") and not shape.min_u <= theta[0, 1] <= shape.max_u:
-            return np.full(data.conductance.size, 1e6)  # outside a tabulated model's range
-        coef, _, _, _ = _profile(shape, data, theta)
-        a = _design(shape, data, theta)[0]
-        return (data.conductance - a @ coef[0]) * _weights(data)
+    def profile_resid(z: np.ndarray) -> np.ndarray:
+        theta = np.clip(z * scale0, lo, hi)[None, :]
+        a = whiten(data, _design(shape, data, theta), axis=-2)[0] / unit
+        coef = np.linalg.lstsq(a, y, rcond=None)[0]
+        return y - a @ coef
 
-    sol = optimize.least_squares(resid, start / scale0, method="lm", x_scale="jac")
-    theta = sol.x * scale0
-    coef, rss, _, ata = _profile(shape, data, theta[None, :])
-    n, k = data.conductance.size, coef.shape[1]
-    dof = n - 3 - k
+    if robust_scale is not None and robust_scale > 0:
+        theta0 = start[None, :]
+        a0 = whiten(data, _design(shape, data, theta0), axis=-2)[0] / unit
+        amp0 = np.linalg.lstsq(a0, y, rcond=None)[0]
+        amp_scale = np.full(k, abs(amp0[0]) if amp0[0] != 0 else 1.0)
+        if k == 2:
+            amp_scale[1] = amp_scale[0] / max(float(np.ptp(data.bias)), 1e-30)
+
+        def full_resid(z: np.ndarray) -> np.ndarray:
+            theta = np.clip(z[:3] * scale0, lo, hi)[None, :]
+            a = whiten(data, _design(shape, data, theta), axis=-2)[0] / unit
+            return y - a @ (z[3:] * amp_scale)
+
+        z0 = np.concatenate([start / scale0, amp0 / amp_scale])
+        zl = np.concatenate([lo / scale0, np.full(k, -np.inf)])
+        zh = np.concatenate([hi / scale0, np.full(k, np.inf)])
+        sol = optimize.least_squares(full_resid, z0, bounds=(zl, zh), method="trf", x_scale="jac",
+                                     loss="soft_l1", f_scale=3.0 * robust_scale / unit)
+        z_opt = sol.x[:3]
+        active = sol.active_mask[:3]
+    else:
+        sol = optimize.least_squares(profile_resid, start / scale0, bounds=(lo / scale0, hi / scale0),
+                                     method="trf", x_scale="jac")
+        z_opt = sol.x
+        active = sol.active_mask
+    theta = np.clip(z_opt * scale0, lo, hi)
+    coef, rss, _, _ = _profile(shape, data, theta[None, :])
+    m = data.used_order().size
+    dof = m - 3 - k
     s2 = float(rss[0]) / dof
-    jac = sol.jac / scale0
+    # Jacobian of the profiled residual at the optimum (central differences, steps inside the box).
+    step = 1e-5 * np.maximum(np.abs(z_opt), 1e-3)
+    jac = np.empty((y.size, 3))
+    for i in range(3):
+        e = np.zeros(3)
+        e[i] = step[i]
+        jac[:, i] = (profile_resid(z_opt + e) - profile_resid(z_opt - e)) / (2 * step[i])
+    jac = jac * unit / scale0
     try:
         cov = np.linalg.inv(jac.T @ jac) * s2
         se = np.sqrt(np.abs(np.diag(cov)))
     except np.linalg.LinAlgError:
         se = np.abs(theta) * 1e-2
         cov = np.diag(se**2)
+    near = np.minimum(theta - lo, hi - theta) <= np.maximum(1e-6 * (hi - lo), 1e-3 * se)
+    at_bound = tuple(name for name, a, nb in zip(NONLINEAR, active, near, strict=True) if a != 0 or nb)
     return {
         "theta": theta,
         "standard_errors": se,
@@ -234,6 +385,8 @@ def least_squares_fit(shape: DipShape, data: SweepData, start: np.ndarray) -> di
         "rss": float(rss[0]),
         "degrees_of_freedom": dof,
         "success": bool(sol.success),
+        "at_bound": at_bound,
+        "bounds": (lo, hi),
     }
 
 
@@ -249,6 +402,226 @@ def fwhm_volts(shape: DipShape, setup: SweepSetup, temperature: float, u: float)
     return numerical_fwhm(v, g)[1]
 
 
+class ModelEdgeError(SweepError):
+    """The optimum or the posterior touches a bound of the model's validated range (or the prior box).
+
+    The data then say only that the truth lies at or beyond that edge, so no temperature may be
+    certified from this model; ``parameter`` names the bound, ``u_estimate`` the u seen there.
+    """
+
+    def __init__(self, message: str, parameter: str, u_estimate: float):
+        super().__init__(message, field="conductance_S")
+        self.parameter = parameter
+        self.u_estimate = u_estimate
+
+
+class PointError(SweepError):
+    """One or more data points cannot be used as they are; ``points`` are their indices."""
+
+    def __init__(self, message: str, field: str, points: tuple[int, ...]):
+        super().__init__(message, field=field)
+        self.points = points
+
+
+#: A posterior "touches" a bound when its 0.1 % (99.9 %) quantile lies within this many posterior
+#: standard deviations of that bound: the likelihood is then visibly cut by the prior box.
+EDGE_SD_MARGIN = 0.25
+
+_EDGE_WORDS = {
+    "u": "u = ΔE/k_BT",
+    "temperature_K": "the temperature",
+    "bias_offset_V": "the bias offset V₀ (the dip is not in the central half of the sweep)",
+}
+
+
+def _edge_message(shape: DipShape, name: str, side: str, bound: float, value: float, where: str) -> str:
+    if name == "u":
+        if side == "upper":
+            why = (f"the sweep is at or beyond the largest u this model is validated for ({bound:g}); "
+                   "no temperature is certified from the edge of a model: measure warmer, or use a "
+                   "model validated to larger u")
+        else:
+            why = (f"the dip is not resolved above u = {bound:g} (too shallow for the noise); "
+                   "measure colder or average longer")
+        return f"{where} of {_EDGE_WORDS[name]} reaches the {side} bound u = {bound:g} of the {shape.name} model ({value:.4g}): {why}"
+    return f"{where} of {_EDGE_WORDS[name]} reaches its {side} bound {bound:.4g} ({value:.4g}); the sweep does not fix it"
+
+
+def edge_of_least_squares(shape: DipShape, ls: dict) -> ModelEdgeError | None:
+    """A :class:`ModelEdgeError` if the least-squares optimum lies on a bound of the box, else None."""
+    if not ls.get("at_bound"):
+        return None
+    name = ls["at_bound"][0]
+    i = NONLINEAR.index(name)
+    lo, hi = ls["bounds"]
+    value = float(ls["theta"][i])
+    side = "upper" if hi[i] - value < value - lo[i] else "lower"
+    bound = float(hi[i] if side == "upper" else lo[i])
+    return ModelEdgeError(_edge_message(shape, name, side, bound, value, "the least-squares optimum"),
+                          name, float(ls["theta"][1]))
+
+
+def edge_of_posterior(shape: DipShape, samples: np.ndarray, bounds: dict) -> ModelEdgeError | None:
+    """A :class:`ModelEdgeError` if the posterior touches a bound (see :data:`EDGE_SD_MARGIN`)."""
+    for i, name in enumerate(NONLINEAR):
+        lo, hi = bounds[name]
+        col = samples[:, i]
+        q_lo, q_hi = np.percentile(col, [0.1, 99.9])
+        sd = float(col.std(ddof=1))
+        for side, bound, gap in (("upper", hi, hi - q_hi), ("lower", lo, q_lo - lo)):
+            if gap < EDGE_SD_MARGIN * sd:
+                q = q_hi if side == "upper" else q_lo
+                return ModelEdgeError(
+                    _edge_message(shape, name, side, float(bound), float(q),
+                                  f"the posterior's {'99.9' if side == 'upper' else '0.1'} % quantile"),
+                    name, float(samples[:, 1].mean()))
+    return None
+
+
+def _model_parts(shape: DipShape, data: SweepData, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Model curve (data order), its whitened Jacobian (T, u, V₀, amplitudes) and whitened residuals."""
+    coef, _, _, _ = _profile(shape, data, theta[None, :])
+    coef = coef[0]
+
+    def curve(th: np.ndarray) -> np.ndarray:
+        return _design(shape, data, th[None, :])[0] @ coef
+
+    c0 = curve(theta)
+    bounds = prior_bounds(shape, data)
+    cols = []
+    for i, name in enumerate(NONLINEAR):
+        h = 1e-5 * (abs(theta[i]) if i < 2 else theta[0] * BOLTZMANN / ELEMENTARY_CHARGE * 1e2)
+        lo, hi = bounds[name]
+        up, dn = theta.copy(), theta.copy()
+        up[i] = min(theta[i] + h, hi)
+        dn[i] = max(theta[i] - h, lo)
+        cols.append((curve(up) - curve(dn)) / (up[i] - dn[i]))
+    design = _design(shape, data, theta[None, :])[0]
+    jac = np.column_stack(cols + [design[:, j] for j in range(design.shape[1])])
+    return c0, whiten(data, jac, axis=0), whiten(data, data.conductance - c0)
+
+
+def _describe_points(data: SweepData, points) -> str:
+    return ", ".join(f"{data.bias[i]:.4g} V" for i in sorted(points))
+
+
+def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
+                           auto_background: bool = True) -> tuple[SweepData, dict, ResidualDiagnosis]:
+    """Robust start, outlier screen, noise model and named causes (analysis.cbt.robust).
+
+    1. Soft-L1 least squares from the ordinary optimum ``ls`` (a few spikes cannot pull it); 2. residuals screened
+    for isolated outliers, which are excluded and named (more than 5 % of the points: refused);
+    3. a noise model (white, AR(1) or 1/f + white) chosen from the residuals' periodogram by
+    Whittle's likelihood and AIC, used in the likelihood (Prais–Winsten or Cholesky whitening); 4. templates of a slope, an asymmetry and self-heating
+    tested against the whitened residuals; a significant slope adds the linear background (when
+    ``auto_background``); 5. the Newey–West inflation of u(T) for what the noise model misses.
+    Returns the data as the posterior should see them, the final least-squares fit and the findings.
+    """
+    sigma0 = difference_noise_scale(whiten(data, data.conductance))
+    ls = least_squares_fit(shape, data, ls["theta"], robust_scale=sigma0)
+    given = set(data.excluded)
+    excluded = set(given)
+    threshold, scale = 0.0, 0.0
+    for _ in range(4):
+        order = data.used_order()
+        curve = _design(shape, data, ls["theta"][None, :])[0] @ ls["amplitudes"]
+        resid = ((data.conductance - curve) * _weights(data))[order]
+        pos, scale = flag_outliers(resid)
+        threshold = outlier_threshold(resid.size)
+        new = {int(order[p]) for p in pos} - excluded
+        if not new:
+            break
+        excluded |= new
+        if len(excluded) > MAX_OUTLIER_FRACTION * data.bias.size:
+            raise PointError(
+                f"{len(excluded)} of {data.bias.size} points deviate from the fitted dip by more than "
+                f"{threshold:.1f} robust standard deviations (at {_describe_points(data, excluded)}): "
+                "this is not a clean sweep with a few spikes; check for charge jumps, drift or a "
+                "wrong column", field="conductance_S", points=tuple(sorted(excluded)))
+        data = replace(data, excluded=tuple(sorted(excluded)))
+        ls = least_squares_fit(shape, data, ls["theta"])
+    outliers = tuple(sorted(excluded - given))
+
+    # A slope is tested first, under white noise: a deterministic line would otherwise be taken
+    # for low-frequency noise. Under genuinely correlated noise this test fires more easily; the
+    # background it then adds costs a little precision and no bias.
+    background_added, slope_t = False, 0.0
+    data = replace(data, noise_correlation=0.0, noise_factor=None)
+    if not data.background:
+        ls = least_squares_fit(shape, data, ls["theta"])
+        theta = ls["theta"]
+        _, jac_w, e_w = _model_parts(shape, data, theta)
+        s_curve = _design(shape, data, theta[None, :])[0][:, 0] * ls["amplitudes"][0]
+        slope_test = template_tests(jac_w, e_w, {"slope": (whiten(data, (data.bias - theta[2]) * s_curve), "")})
+        if auto_background and slope_test and slope_test[0].significant:
+            data = replace(data, background=True)
+            background_added, slope_t = True, slope_test[0].t_statistic
+            ls = least_squares_fit(shape, data, theta)
+    order = data.used_order()
+    curve = _design(shape, data, ls["theta"][None, :])[0] @ ls["amplitudes"]
+    resid = ((data.conductance - curve) * _weights(data))[order]
+    r1 = lag1_correlation(resid)
+    noise = choose_noise_model(resid)
+    if noise.kind != "white":
+        data = replace(data, noise_correlation=noise.rho, noise_factor=noise.factor)
+        ls = least_squares_fit(shape, data, ls["theta"])
+    theta = ls["theta"]
+    _, jac_w, e_w = _model_parts(shape, data, theta)
+    s_curve = _design(shape, data, theta[None, :])[0][:, 0] * ls["amplitudes"][0]
+    centred = data.bias - theta[2]
+    v_half = fwhm_volts(shape, data.setup, theta[0], theta[1])
+    templates = {
+        "asymmetry": (whiten(data, np.sign(centred) * (ls["amplitudes"][0] - s_curve)),
+                      "the dip is asymmetric: check for a thermal gradient along the array, a drifting "
+                      "bias offset or background-charge jumps"),
+        "self-heating": (whiten(data, _heating_template(shape, data, theta, ls, v_half)),
+                         "the residuals show the bias-dependent broadening of self-heating: give the "
+                         "electron-phonon coupling (island volume and constant) to fit a heating model"),
+    }
+    if not data.background:
+        templates["slope"] = (whiten(data, centred * s_curve),
+                              "a linear slope under the dip: fit it with the linear background option "
+                              "(linear_background)")
+    tests = template_tests(jac_w, e_w, templates)
+    inflation = float(hac_inflation(jac_w, e_w)[0])
+    r1_after = lag1_correlation(e_w)
+    findings = []
+    if outliers:
+        findings.append(f"{len(outliers)} isolated outlier(s) beyond {threshold:.1f} robust standard deviations "
+                        f"left out of the fit (at {_describe_points(data, outliers)})")
+    if background_added:
+        findings.append(f"a linear slope under the dip (t = {slope_t:.1f}) was found and a linear "
+                        "background fitted; state linear_background to make this explicit")
+    if noise.kind != "white":
+        findings.append(f"the noise is not white (lag-1 correlation {r1:.2f}): a {noise.describe()} noise "
+                        "model, chosen from the residuals' periodogram, is used in the likelihood")
+    for t in tests:
+        if t.significant:
+            findings.append(f"{t.advice} (t = {t.t_statistic:.1f}; adding it would move T by "
+                            f"{t.temperature_shift:.3g} K)")
+    if inflation > 1.0 + 1e-9:
+        findings.append(f"residuals remain correlated after the noise model (lag-1 {r1_after:.2f}): u(T) is "
+                        f"inflated by {inflation:.2f} (Newey–West, lag {newey_west_lag(e_w.size)})")
+    diagnosis = ResidualDiagnosis(
+        outliers=outliers, outlier_scale=scale, outlier_threshold=threshold,
+        lag1_before_whitening=r1, noise_correlation=data.noise_correlation, noise_model=noise.describe(),
+        lag1_after_whitening=r1_after,
+        structure_inflation=inflation, hac_lag=newey_west_lag(e_w.size), templates=tuple(tests),
+        background_added=background_added, findings=tuple(findings),
+    )
+    return data, ls, diagnosis
+
+
+def _heating_template(shape: DipShape, data: SweepData, theta: np.ndarray, ls: dict, v_half: float) -> np.ndarray:
+    """∂G/∂ln T × ((V − V₀)/V_1/2)²: first-order effect of T_e(V) = T (1 + κ (V/V_1/2)²) (data order)."""
+    T = theta[0]
+    up, dn = theta.copy(), theta.copy()
+    up[0], dn[0] = T * (1 + 1e-5), T * (1 - 1e-5)
+    amp = ls["amplitudes"]
+    d = (_design(shape, data, up[None, :])[0] @ amp - _design(shape, data, dn[None, :])[0] @ amp) / 2e-5
+    return d * ((data.bias - theta[2]) / v_half) ** 2
+
+
 def fit_sweep(
     data: SweepData,
     seed: int,
@@ -256,20 +629,42 @@ def fit_sweep(
     settings: FitSettings | None = None,
     progress: ProgressCallback | None = None,
     min_range_half_widths: float = 2.5,
+    robust: bool = True,
 ) -> SweepFit:
-    """Least-squares start, range check, then the posterior of (T, ΔE, V₀) by emcee.
+    """Checks, robust least squares and noise model, then the posterior of (T, ΔE, V₀) by emcee.
 
-    Raises SweepError when the swept bias does not reach ``min_range_half_widths`` × V_1/2 on both
-    sides of the dip (the asymptote G_T is then not fixed: 6g(x) is still 0.1 % of the depth at
-    2 V_1/2; PHYSICS.md 1.4).
+    Raises :class:`PointError` for a bias value far outside the sweep (a typing slip) or a sweep
+    with too many outliers, naming the points; SweepError when the swept bias does not reach
+    ``min_range_half_widths`` × V_1/2 on both sides of the dip (the asymptote G_T is then not
+    fixed: 6g(x) is still 0.1 % of the depth at 2 V_1/2; PHYSICS.md 1.4); :class:`ModelEdgeError`
+    when the least-squares optimum or the posterior touches a bound of the model's validated
+    range or of the prior box. With ``robust`` (default) outliers are screened out, correlated
+    noise is modelled and the residuals are diagnosed (:func:`screen_and_model_noise`).
+
+    The sampler works in (ln T, u, V₀), starting from a ball shaped by the least-squares
+    covariance (analysis.sampling); results are reported in T.
     """
     settings = settings or FitSettings()
-    start = initial_guess(data)
-    ls = least_squares_fit(shape, data, start)
-    T0, u0, v00 = ls["theta"]
+    bad = isolated_bias_points(data.bias)
+    if bad:
+        i = bad[0]
+        raise PointError(
+            f"bias value {data.bias[i]:g} V lies far outside the rest of the sweep (the other values are "
+            f"spaced about {np.median(np.abs(np.diff(np.sort(data.bias)))):.3g} V apart): a typing slip in "
+            "the exponent or a wrong unit?", field="bias_V", points=tuple(bad))
+    ls = least_squares_fit(shape, data, initial_guess(data))
+    diagnosis = None
+    for attempt in range(2):
+        T0, u0, v00 = ls["theta"]
+        if not (T0 > 0 and u0 > 0 and math.isfinite(T0)):
+            raise SweepError("no Coulomb-blockade dip found: the least-squares fit gives no positive temperature and charging energy", field="conductance_S")
+        edge = edge_of_least_squares(shape, ls)
+        if edge is not None:
+            raise edge
+        if not robust or attempt:
+            break
+        data, ls, diagnosis = screen_and_model_noise(shape, data, ls)
     ec0 = u0 * T0
-    if not (T0 > 0 and u0 > 0 and math.isfinite(T0)):
-        raise SweepError("no Coulomb-blockade dip found: the least-squares fit gives no positive temperature and charging energy", field="conductance_S")
     v_half = fwhm_volts(shape, data.setup, T0, u0)
     reach = min(v00 - data.bias.min(), data.bias.max() - v00) / v_half
     if reach < min_range_half_widths:
@@ -278,18 +673,26 @@ def fit_sweep(
             f"at least ±{min_range_half_widths} V_1/2 is needed to fix the asymptotic conductance",
             field="bias_V",
         )
-    span = data.bias.max() - data.bias.min()
-    window = (data.bias.min() + 0.25 * span, data.bias.max() - 0.25 * span)
-    log_prob = make_log_posterior(shape, data, window)
+    bounds = prior_bounds(shape, data)
+    log_prob = make_log_posterior(shape, data, log_temperature=True)
+    to_log = np.diag([1.0 / T0, 1.0, 1.0])
     post = sample_posterior(
-        log_prob, ls["theta"], seed, names=NONLINEAR, scale=ls["standard_errors"],
+        log_prob, np.array([math.log(T0), u0, v00]), seed, names=("ln_temperature",) + NONLINEAR[1:],
+        covariance=to_log @ ls["covariance"] @ to_log,
         walkers=settings.walkers, block=settings.block, max_steps=settings.max_steps,
         min_tau_multiple=settings.min_tau_multiple, tau_tolerance=settings.tau_tolerance,
-        progress=progress,
+        progress=progress, moves=settings.moves,
     )
-    s = post.samples
-    coef, rss, _, ata = _profile(shape, data, s)
-    n, k = data.conductance.size, coef.shape[1]
+    s = post.samples.copy()
+    s[:, 0] = np.exp(s[:, 0])
+    post = replace(post, samples=s)
+    edge = edge_of_posterior(shape, s, bounds)
+    if edge is not None:
+        raise edge
+    # Amplitude summaries from at most 600 evenly spaced samples (plenty for a standard deviation).
+    sub = s[:: max(1, s.shape[0] // 600)]
+    coef, rss, _, ata = _profile(shape, data, sub)
+    n, k = data.used_order().size, coef.shape[1]
     # Amplitudes: law of total variance over the conditional least-squares estimates.
     sigma2 = rss / (n - k)
     cond_var = sigma2 * np.linalg.inv(ata)[:, 0, 0]
@@ -302,13 +705,13 @@ def fit_sweep(
     lo, hi = np.percentile(s[:, 0], [2.5, 97.5])
 
     best = np.array([T_mean, float(s[:, 1].mean()), float(s[:, 2].mean())])
-    coef_b, rss_b, _, _ = _profile(shape, data, best[None, :])
-    a = _design(shape, data, best[None, :])[0]
-    curve = a @ coef_b[0]
+    coef_b, _, _, _ = _profile(shape, data, best[None, :])
+    curve = _design(shape, data, best[None, :])[0] @ coef_b[0]
     resid = data.conductance - curve
-    noise = float(math.sqrt(rss_b[0] / (n - 3 - k)))
-    w = resid * _weights(data)
-    r1 = float(np.corrcoef(w[:-1][np.argsort(data.bias)[:-1]], w[np.argsort(data.bias)][1:])[0, 1]) if n > 3 else 0.0
+    order = data.used_order()
+    rw = (resid * _weights(data))[order]
+    noise = float(math.sqrt(float(rw @ rw) / (n - 3 - k)))
+    r1 = lag1_correlation(rw) if n > 3 else 0.0
     u = float(s[:, 1].mean())
     return SweepFit(
         model=shape.name,
@@ -344,6 +747,8 @@ def fit_sweep(
         electron_temperature_zero_bias=None if data.setup.heating is None else float(
             data.setup.heating.electron_temperature(0.0, T_mean, data.setup.junctions_in_series)),
         heating_at_half_width=heating_fraction(data.setup, T_mean, fwhm_volts(shape, data.setup, T_mean, u)),
+        fitted_data=data,
+        diagnosis=diagnosis,
     )
 
 
@@ -364,6 +769,8 @@ def estimate_asymptote(data: SweepData) -> float:
 
 __all__ = [
     "FitSettings",
+    "ModelEdgeError",
+    "PointError",
     "SweepData",
     "SweepError",
     "SweepFit",

@@ -32,6 +32,8 @@ from importlib import resources
 import numpy as np
 from scipy.interpolate import RectBivariateSpline
 
+from analysis.cbt.dip_grid import GridDip
+
 logger = logging.getLogger(__name__)
 
 TABLE_FILE = "short_arrays.npz"
@@ -126,6 +128,7 @@ class FullTunnellingShape:
     min_u: float = field(init=False, default=0.0)
     _spline: RectBivariateSpline = field(init=False, repr=False, compare=False)
     _correction_beyond_four: tuple[float, ...] = field(init=False, repr=False, compare=False)
+    _grid: GridDip = field(init=False, repr=False, compare=False)
 
     def __post_init__(self) -> None:
         if not isinstance(self.n_junctions, int | np.integer) or self.n_junctions < 2:
@@ -156,19 +159,49 @@ class FullTunnellingShape:
         object.__setattr__(
             self, "name", f"full orthodox tunnelling, N = {self.n_junctions} (master equation)"
         )
+        # Evaluation path: the reference above, sampled once into a cheap quintic grid over the
+        # whole tabulated u range (analysis.cbt.dip_grid); its own error is measured there.
+        u_nodes = tables["u_nodes"]
+        object.__setattr__(self, "_grid", GridDip(
+            self._reference_reduced, (float(u_nodes[0]), float(u_nodes[-1])), X_TABLE_END, TAIL_DECAY))
 
     def __call__(self, x: np.ndarray, u: np.ndarray) -> np.ndarray:
-        x_arr = np.asarray(x, dtype=float)
         u_arr = np.asarray(u, dtype=float)
-        if u_arr.size and (np.isnan(u_arr).any() or u_arr.min() < self.min_u
-                           or u_arr.max() > self.max_u):
+        self._check_u(u_arr)
+        return 1.0 - u_arr * self._grid.reduced(x, u_arr)
+
+    def __reduce__(self):
+        # Sent between processes (parallel sweep fits) by its two defining numbers, and rebuilt
+        # from a per-process cache, instead of shipping the spline and the grid (~4 MB).
+        return (shared_shape, (int(self.n_junctions), float(self.c0_ratio)))
+
+    def _check_u(self, u_arr: np.ndarray) -> None:
+        if not u_arr.size:
+            return
+        lo, hi = u_arr.min(), u_arr.max()  # NaN propagates into both and fails the test below
+        if not (lo >= self.min_u and hi <= self.max_u):
             bad = u_arr[(u_arr < self.min_u) | (u_arr > self.max_u) | np.isnan(u_arr)].ravel()[0]
             raise FullModelRangeError(
                 f"u = ΔE/k_BT = {bad!r} is outside the full model's validated range "
                 f"[{self.min_u}, {self.max_u}]; the sweep is too cold for this model (or the "
                 "parameter is unphysical)"
             )
-        xb, ub = np.broadcast_arrays(np.abs(x_arr), u_arr)
+
+    # ----------------------------------------------------------------------------------------
+    # Reference evaluation: the tables' spline and tail, evaluated point by point. Precise but
+    # costly; it is sampled once into the cheap grid above (analysis.cbt.dip_grid) and kept for
+    # checks and benchmarks.
+
+    def reference(self, x: np.ndarray, u: np.ndarray) -> np.ndarray:
+        """G/G_T from the table spline directly (the evaluation the fast grid is built from)."""
+        u_arr = np.asarray(u, dtype=float)
+        self._check_u(u_arr)
+        xb, ub = np.broadcast_arrays(np.abs(np.asarray(x, dtype=float)), u_arr)
+        return 1.0 - ub * self._reference_reduced(xb, ub)
+
+    def _reference_reduced(self, x: np.ndarray, u: np.ndarray) -> np.ndarray:
+        """Reduced dip D_N(x, u) = (1 − G/G_T)/u from the spline, for x ≥ 0 (any u of the tables)."""
+        xb, ub = np.broadcast_arrays(np.asarray(x, dtype=float), np.asarray(u, dtype=float))
         xf = xb.ravel()
         uf = ub.ravel()
         inside = xf <= X_TABLE_END
@@ -177,7 +210,7 @@ class FullTunnellingShape:
         if not inside.all():
             edge = self._spline.ev(np.full(int((~inside).sum()), X_TABLE_END), uf[~inside])
             reduced[~inside] = edge * np.exp(-TAIL_DECAY * (xf[~inside] - X_TABLE_END))
-        return (1.0 - uf * reduced).reshape(xb.shape)
+        return reduced.reshape(xb.shape)
 
     def model_error(self, u: float | np.ndarray) -> float:
         """Bound on max |ΔG/G_T| over the dip at this u (measured; see :data:`MEASURED_ERROR`).
@@ -185,7 +218,8 @@ class FullTunnellingShape:
         Interpolation error of the tables used, plus the N = 5 extrapolation residual of the
         u band scaled by :func:`extrapolation_length` and :data:`EXTRAPOLATION_SAFETY` (zero for
         the exact N = 2, 3, 4 tables); for u > :data:`NON_ALGEBRAIC_U` at least the size of the
-        correction applied beyond N = 4. Use it as a model-uncertainty row of the budget.
+        correction applied beyond N = 4; plus the measured difference of the fast evaluation grid
+        from the table spline (~1e-15 today). Use it as a model-uncertainty row of the budget.
         """
         u_max = float(np.max(u))
         if not (self.min_u <= u_max <= self.max_u):
@@ -201,7 +235,7 @@ class FullTunnellingShape:
         extrap *= extrapolation_length(n)
         if n > 4 and u_max > NON_ALGEBRAIC_U:
             extrap = max(extrap, self._correction_beyond_four[i])
-        return float(interp + extrap)
+        return float(interp + extrap + self._grid.measured_error)
 
     def relative_width_error(self, u: float) -> float:
         """Relative error of the FWHM (so of T) implied by :meth:`model_error`.
@@ -218,3 +252,9 @@ class FullTunnellingShape:
         i = int(np.argmax(g >= 1.0 - 0.5 * depth))
         slope = (g[i + 1] - g[i - 1]) / (xs[i + 1] - xs[i - 1])
         return self.model_error(u) / (abs(slope) * xs[i])
+
+
+@lru_cache(maxsize=16)
+def shared_shape(n_junctions: int, c0_ratio: float = 0.0) -> FullTunnellingShape:
+    """One FullTunnellingShape per (N, C_0/C) and process (the grid is built once)."""
+    return FullTunnellingShape(n_junctions, c0_ratio)

@@ -30,7 +30,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import optimize, special
 
-from analysis.cbt.fit import SweepData, SweepFit, _profile
+from analysis.cbt.fit import SweepData, SweepFit, log_marginal_likelihood
 from analysis.cbt.models import DipShape
 
 
@@ -119,10 +119,7 @@ def _log_like_grid(shape: DipShape, data: SweepData, v0: float, E: np.ndarray, T
     if hasattr(shape, "min_u"):  # a model with a hard validity range (tables)
         ok &= (theta[:, 1] >= shape.min_u) & (theta[:, 1] <= shape.max_u)
     if ok.any():
-        n = data.conductance.size
-        k = 2 if data.background else 1
-        _, rss, logdet, _ = _profile(shape, data, theta[ok])
-        out[ok] = -0.5 * logdet - 0.5 * (n - k) * np.log(rss)
+        out[ok] = log_marginal_likelihood(shape, data, theta[ok])
     return out.reshape(nE, nT)
 
 
@@ -147,6 +144,8 @@ def fit_global(
     if len(datas) != len(fits) or len(datas) < 2:
         raise ValueError("a global fit needs at least two sweeps, each with its independent fit")
     summaries = [f if isinstance(f, SweepSummary) else SweepSummary.from_posterior(f) for f in fits]
+    # Each sweep as its own fit used it (outliers left out, noise model, background), if recorded.
+    datas = [getattr(f, "fitted_data", None) or d for d, f in zip(datas, fits, strict=True)]
     shapes = list(shape) if isinstance(shape, Sequence) else [shape] * len(fits)
     lines = [(m.a, m.b, m.conditional_std, m.energy_mean, m.energy_std) for m in summaries]
     mE = np.array([ln[3] for ln in lines])

@@ -14,6 +14,7 @@ offset, lock-in excitation averaging and a linear background.
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -179,15 +180,20 @@ higher_order_shape = HigherOrderShape()
 # Instrument effects
 
 
+@functools.lru_cache(maxsize=32)
 def chebyshev_u_nodes(n: int) -> tuple[np.ndarray, np.ndarray]:
     """Gauss–Chebyshev nodes t_i and weights w_i of the second kind, normalised for the lock-in.
 
     Σ w_i f(t_i) = (2/π) ∫_{-1}^{1} f(t) √(1 − t²) dt, exact for polynomials of degree ≤ 2n − 1
-    (Abramowitz & Stegun 25.4.40). The weights sum to 1.
+    (Abramowitz & Stegun 25.4.40). The weights sum to 1. Cached (every likelihood call asks for
+    them); the arrays are read-only.
     """
     i = np.arange(1, n + 1)
     theta = i * np.pi / (n + 1)
-    return np.cos(theta), (2.0 / (n + 1)) * np.sin(theta) ** 2
+    nodes, weights = np.cos(theta), (2.0 / (n + 1)) * np.sin(theta) ** 2
+    nodes.flags.writeable = False
+    weights.flags.writeable = False
+    return nodes, weights
 
 
 def lockin_nodes_for(alpha_max: float) -> int:

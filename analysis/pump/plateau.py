@@ -873,17 +873,15 @@ def analyse_plateau_map(
             sample = rng.multivariate_normal(fit.parameters, cov, size=draws, method="eigh")
             sample = sample[np.sign(sample[:, 0]) == fit.direction]
             wp_best = working_point(DECAY_CASCADE, fit.parameters, n, shape.baseline)
-            wp = working_point(DECAY_CASCADE, sample, n, shape.baseline)
-            dev = MODEL[DECAY_CASCADE].deviation(
-                minimum_slope_gate(DECAY_CASCADE, sample, n, shape.baseline)[:, None], sample, n,
-                shape.baseline)[:, 0] / n
+            # Its median deviation is the slice's figure (computed once, inside working_point).
+            wp = working_point(DECAY_CASCADE, sample, n, shape.baseline, max_samples=max(draws, 1))
         except (PlateauScanError, ValueError, np.linalg.LinAlgError) as exc:
             skipped.append(f"gate2 = {v2:g} V: {exc}")
             continue
         j = n - shape.baseline
         a = fit.parameters[0]
         delta_next = float(a * (fit.parameters[1 + j] - fit.parameters[j]))
-        slices.append(MapSlice(float(v2), wp_best.gate_V, delta_next, float(np.median(dev)),
+        slices.append(MapSlice(float(v2), wp_best.gate_V, delta_next, wp.relative_deviation_median,
                                wp.relative_deviation_interval, int(sel.sum())))
     if not slices:
         raise PlateauScanError("no slice of the map shows plateau "

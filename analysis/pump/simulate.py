@@ -73,13 +73,22 @@ class RecordSettings:
     random_walk_a: float = 0.0  # per-reading step of a random-walk offset
     settling_tau_s: float = 1.0  # ammeter settling time constant after each switch
     gain_error_ppm: float = 0.0  # chain gain above nominal: indicated = true × (1 + g)
+    # Extra transients, not of the single-exponential form the analysis fits:
+    transient_on: tuple[tuple[float, float], ...] = ()  # (amplitude A, τ s) terms after switch-on
+    transient_off: tuple[tuple[float, float], ...] = ()  # the same after switch-off
+    lag_fraction: float = 0.0  # part of each step that lags behind ...
+    lag_tau_s: float = 2.5  # ... a critically damped second-order response with these poles
 
 
 def on_off_record(settings: RecordSettings, seed: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(time_s, indicated current_A, pump_on) starting and ending with an off segment.
 
     Pattern: off, on, off, on, …, off with ``cycles`` on segments. After each switch the reading
-    relaxes to the new level as 1 − exp(−t/τ) (a first-order ammeter filter).
+    relaxes to the new level as 1 − exp(−t/τ) (a first-order ammeter filter). On top of that,
+    optional transients of other shapes: sums of exponentials Σ A_i exp(−t/τ_i) after switch-on
+    and after switch-off, and a fraction c of each step Δ that follows a critically damped
+    second-order response, −c Δ (1 + t/τ_l) exp(−t/τ_l) (step response of two equal poles, any
+    control-theory text).
     """
     s = settings
     rng = np.random.default_rng(seed)
@@ -95,6 +104,17 @@ def on_off_record(settings: RecordSettings, seed: int) -> tuple[np.ndarray, np.n
     levels = ideal[::per]
     seg_prev = np.repeat(np.concatenate(([0.0], levels[:-1])), per)
     settled = ideal + (seg_prev - ideal) * np.exp(-since / s.settling_tau_s)
+    switched = np.arange(n) >= per  # the start of the record is not a switch
+    after_on = switched & (state == 1)
+    after_off = switched & (state == 0)
+    for amp, tau in s.transient_on:
+        settled = settled + np.where(after_on, amp * np.exp(-since / tau), 0.0)
+    for amp, tau in s.transient_off:
+        settled = settled + np.where(after_off, amp * np.exp(-since / tau), 0.0)
+    if s.lag_fraction:
+        step = np.where(switched, ideal - seg_prev, 0.0)
+        x = since / s.lag_tau_s
+        settled = settled - s.lag_fraction * step * (1 + x) * np.exp(-x)
     white = s.noise_a * rng.standard_normal(n)
     if s.ar1:
         # AR(1) noise with the same marginal standard deviation as the white noise.

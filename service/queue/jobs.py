@@ -1,0 +1,441 @@
+"""Background jobs: fits run in worker processes, never inside a web request.
+
+The queue is the ``jobs`` table. A worker claims the oldest queued job with one atomic UPDATE
+(so any number of worker processes, on this machine or others sharing a PostgreSQL database,
+never take the same job), reports progress (fraction done and the current step) into the row,
+and finishes by writing the draft certificate and the job's final status in a single transaction:
+a crash leaves the job either fully done or still marked running, never half-written.
+
+A running job carries a heartbeat. When the service starts, and periodically while it runs, jobs
+whose worker is gone (its process no longer exists on this host, or its heartbeat is stale) are
+marked as interrupted in the event log and queued again; after ``MAX_ATTEMPTS`` interruptions a
+job is failed with the reason, so a run that kills its worker cannot loop for ever.
+"""
+
+from __future__ import annotations
+
+import importlib
+import json
+import logging
+import multiprocessing
+import os
+import socket
+import tempfile
+import threading
+import time
+import traceback
+import uuid
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from datetime import UTC, datetime, timedelta
+from pathlib import Path
+from typing import Any
+
+from sqlalchemy import Connection, and_, select
+
+from service import storage as st
+from service.archive import Archive, LabKey, analysis_output, log_event, software_versions
+from service.storage import Storage, utc_now
+
+logger = logging.getLogger(__name__)
+
+MAX_ATTEMPTS = 3
+HEARTBEAT_SECONDS = 2.0
+STALE_AFTER_SECONDS = 60.0
+PROGRESS_MIN_INTERVAL = 0.25
+
+
+def import_string(path: str) -> Callable[..., Any]:
+    """``"package.module:attribute"`` → the attribute (so workers can be told what to run)."""
+    module, _, attribute = path.partition(":")
+    return getattr(importlib.import_module(module), attribute)
+
+
+def new_id(prefix: str) -> str:
+    return f"{prefix}-{uuid.uuid4().hex[:12]}"
+
+
+def enqueue(
+    conn: Connection,
+    *,
+    purpose: str,
+    run_id: str,
+    requested_by: Mapping[str, Any],
+    certificate_id: str | None = None,
+) -> str:
+    job_id = new_id("job")
+    conn.execute(
+        st.jobs.insert().values(
+            id=job_id,
+            purpose=purpose,
+            run_id=run_id,
+            certificate_id=certificate_id,
+            requested_by=requested_by["id"],
+            status="queued",
+            fraction=0.0,
+            step="waiting for a worker",
+            attempts=0,
+            created_at=utc_now(),
+        )
+    )
+    log_event(conn, requested_by["username"], "job.queued", job_id, {"purpose": purpose})
+    return job_id
+
+
+def job_status(storage: Storage, job_id: str) -> dict[str, Any] | None:
+    with storage.read() as conn:
+        row = conn.execute(select(st.jobs).where(st.jobs.c.id == job_id)).first()
+    if row is None:
+        return None
+    info = dict(row._mapping)
+    info["result"] = json.loads(info.pop("result_json") or "null")
+    info.pop("claimed_by", None)
+    return info
+
+
+def _host_id() -> str:
+    return socket.gethostname()
+
+
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def recover_interrupted(storage: Storage, stale_after: float = STALE_AFTER_SECONDS) -> list[str]:
+    """Re-queue jobs whose worker died; fail those interrupted too often. Returns job ids."""
+    cutoff = (datetime.now(UTC) - timedelta(seconds=stale_after)).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+    host = _host_id()
+    recovered = []
+    with storage.write() as conn:
+        rows = conn.execute(select(st.jobs).where(st.jobs.c.status == "running")).all()
+        for row in rows:
+            owner_host, _, rest = (row.claimed_by or "").partition(":")
+            pid_text = rest.split(":", 1)[0]
+            dead_here = owner_host == host and pid_text.isdigit() and not _pid_alive(int(pid_text))
+            stale = (row.heartbeat_at or row.started_at or "") < cutoff
+            if not (dead_here or stale):
+                continue
+            if row.attempts >= MAX_ATTEMPTS:
+                values = {
+                    "status": "failed",
+                    "error": f"interrupted {row.attempts} times (worker died each time); "
+                    "giving up — check the run's size and the service log",
+                    "finished_at": utc_now(),
+                }
+            else:
+                values = {
+                    "status": "queued",
+                    "claimed_by": None,
+                    "fraction": 0.0,
+                    "step": f"interrupted at '{row.step}'; queued again",
+                }
+            conn.execute(
+                st.jobs.update()
+                .where(and_(st.jobs.c.id == row.id, st.jobs.c.status == "running"))
+                .values(**values)
+            )
+            log_event(
+                conn,
+                "service",
+                "job.interrupted",
+                row.id,
+                {"step": row.step, "attempts": row.attempts, "now": values["status"]},
+            )
+            recovered.append(row.id)
+    return recovered
+
+
+def claim(storage: Storage, worker: str) -> dict[str, Any] | None:
+    """Atomically take the oldest queued job for ``worker``; None if there is none."""
+    with storage.write() as conn:
+        row = conn.execute(
+            select(st.jobs.c.id, st.jobs.c.attempts)
+            .where(st.jobs.c.status == "queued")
+            .order_by(st.jobs.c.created_at)
+            .limit(1)
+            .with_for_update(skip_locked=True)
+        ).first()
+        if row is None:
+            return None
+        now = utc_now()
+        result = conn.execute(
+            st.jobs.update()
+            .where(and_(st.jobs.c.id == row.id, st.jobs.c.status == "queued"))
+            .values(
+                status="running",
+                claimed_by=worker,
+                started_at=now,
+                heartbeat_at=now,
+                attempts=row.attempts + 1,
+                step="starting",
+            )
+        )
+        if result.rowcount != 1:
+            return None
+        job = conn.execute(select(st.jobs).where(st.jobs.c.id == row.id)).one()
+        return dict(job._mapping)
+
+
+class ProgressReporter:
+    """Writes progress into the job row, at most every ``PROGRESS_MIN_INTERVAL`` seconds."""
+
+    def __init__(self, storage: Storage, job_id: str, worker: str) -> None:
+        self.storage, self.job_id, self.worker = storage, job_id, worker
+        self._last = 0.0
+        self._lock = threading.Lock()
+        self.latest: tuple[float, str] = (0.0, "starting")
+
+    def __call__(self, fraction: float, step: str = "") -> None:
+        fraction = min(max(float(fraction), 0.0), 1.0)
+        self.latest = (fraction, str(step))
+        now = time.monotonic()
+        if now - self._last < PROGRESS_MIN_INTERVAL and fraction < 1.0:
+            return
+        self._last = now
+        self.write()
+
+    def write(self) -> None:
+        with self._lock:
+            fraction, step = self.latest
+            try:
+                with self.storage.write() as conn:
+                    conn.execute(
+                        st.jobs.update()
+                        .where(
+                            and_(st.jobs.c.id == self.job_id, st.jobs.c.claimed_by == self.worker)
+                        )
+                        .values(fraction=fraction, step=step[:500], heartbeat_at=utc_now())
+                    )
+            except Exception:  # progress is advisory; never let it kill a fit
+                logger.exception("could not record progress of %s", self.job_id)
+
+
+@dataclass
+class WorkerSettings:
+    database_url: str
+    blob_root: str
+    key_dir: str
+    certify: str = "service.calibrations.certify:certify_run"
+    load_run: str = "service.intake:load_run"
+    number_prefix: str = "CC"
+    poll_seconds: float = 0.2
+    #: Keyword options for the analysis (e.g. {"fast": True}); recorded with each certificate.
+    options: dict[str, Any] = field(default_factory=dict)
+
+
+def execute(
+    storage: Storage,
+    archive: Archive,
+    job: Mapping[str, Any],
+    worker: str,
+    certify: Callable[..., Any],
+    load_run: Callable[[Path], Any],
+    options: Mapping[str, Any] | None = None,
+) -> None:
+    """Run one claimed job to the end, recording success or the reason for failure."""
+    options = dict(options or {})
+    progress = ProgressReporter(storage, job["id"], worker)
+    beat_stop = threading.Event()
+
+    def heartbeat() -> None:
+        while not beat_stop.wait(HEARTBEAT_SECONDS):
+            progress.write()
+
+    beater = threading.Thread(target=heartbeat, daemon=True)
+    beater.start()
+    try:
+        with storage.read() as conn:
+            run = conn.execute(select(st.runs).where(st.runs.c.id == job["run_id"])).one()
+            files = archive.run_files(conn, run.id)
+            requester = conn.execute(
+                select(st.users).where(st.users.c.id == job["requested_by"])
+            ).one()
+        if job["purpose"] == "certify":
+            progress(0.0, "loading the archived raw files")
+            with tempfile.TemporaryDirectory(prefix="coldcert-job-") as tmp:
+                folder = archive.materialise_run(files, Path(tmp) / "run")
+                loaded = load_run(folder)
+                output = analysis_output(certify(loaded, run.seed, progress, **options))
+            progress(1.0, "writing the draft certificate")
+            with storage.write() as conn:
+                cert_id = archive.create_draft(
+                    conn,
+                    run_id=run.id,
+                    record=output.record,
+                    seed=run.seed,
+                    software=software_versions(),
+                    submitter=dict(requester._mapping),
+                    replaces=run.replaces,
+                    amendment_reason=run.amendment_reason,
+                    options=options,
+                    plots=output.plots,
+                    extra_files=output.extra_files,
+                    html_sections=output.html_sections,
+                )
+                _finish(conn, job["id"], worker, {"certificate_id": cert_id}, cert_id)
+        elif job["purpose"] == "reproduce":
+            report = archive.reproduce(job["certificate_id"], certify, load_run, progress)
+            with storage.write() as conn:
+                _finish(conn, job["id"], worker, report.as_dict(), job["certificate_id"])
+                log_event(
+                    conn,
+                    requester.username,
+                    "certificate.reproduced",
+                    job["certificate_id"],
+                    {"identical": report.identical, "mismatches": len(report.mismatches)},
+                )
+        else:
+            raise ValueError(f"unknown job purpose {job['purpose']!r}")
+    except Exception as exc:
+        logger.warning("job %s failed: %s", job["id"], exc)
+        reason = _failure_reason(exc)
+        with storage.write() as conn:
+            conn.execute(
+                st.jobs.update()
+                .where(and_(st.jobs.c.id == job["id"], st.jobs.c.claimed_by == worker))
+                .values(
+                    status="failed",
+                    error=reason,
+                    finished_at=utc_now(),
+                    step=f"failed during: {progress.latest[1]}",
+                )
+            )
+            log_event(conn, "service", "job.failed", job["id"], {"error": reason})
+    finally:
+        beat_stop.set()
+        beater.join(timeout=5)
+
+
+def _failure_reason(exc: BaseException) -> str:
+    parts = [f"{type(exc).__name__}: {exc}"]
+    for attr in ("file", "line", "field"):
+        value = getattr(exc, attr, None)
+        if value is not None:
+            parts.append(f"{attr} {value}")
+    where = traceback.extract_tb(exc.__traceback__)[-1:] if exc.__traceback__ else []
+    if where:
+        parts.append(f"(at {Path(where[0].filename).name}:{where[0].lineno})")
+    return "; ".join(parts)[:2000]
+
+
+def _finish(
+    conn: Connection, job_id: str, worker: str, result: Mapping, certificate_id: str | None
+) -> None:
+    updated = conn.execute(
+        st.jobs.update()
+        .where(and_(st.jobs.c.id == job_id, st.jobs.c.claimed_by == worker))
+        .values(
+            status="done",
+            fraction=1.0,
+            step="done",
+            finished_at=utc_now(),
+            result_json=json.dumps(result, sort_keys=True),
+            certificate_id=certificate_id,
+        )
+    )
+    if updated.rowcount != 1:
+        # Our claim was taken away (we were presumed dead); roll back rather than double-write.
+        raise RuntimeError(f"job {job_id} is no longer held by this worker")
+    log_event(conn, "service", "job.done", job_id, {"certificate_id": certificate_id})
+
+
+def worker_main(settings: WorkerSettings, stop: Any) -> None:
+    """Entry point of a worker process: claim and run jobs until ``stop`` is set."""
+    logging.basicConfig(level=logging.INFO)
+    storage = Storage(settings.database_url, settings.blob_root)
+    archive = Archive(
+        storage, LabKey.load_or_create(settings.key_dir), number_prefix=settings.number_prefix
+    )
+    certify = import_string(settings.certify)
+    load_run = import_string(settings.load_run)
+    worker = f"{_host_id()}:{os.getpid()}:{uuid.uuid4().hex[:8]}"
+    # A worker whose service was killed outright (no chance to set ``stop``) must not linger.
+    parent = multiprocessing.parent_process()
+    last_recovery = 0.0
+    try:
+        while not stop.is_set() and (parent is None or parent.is_alive()):
+            job = claim(storage, worker)
+            if job is None:
+                if time.monotonic() - last_recovery > STALE_AFTER_SECONDS / 4:
+                    recover_interrupted(storage)
+                    last_recovery = time.monotonic()
+                stop.wait(settings.poll_seconds)
+                continue
+            execute(storage, archive, job, worker, certify, load_run, settings.options)
+    finally:
+        storage.dispose()
+
+
+class WorkerPool:
+    """Worker processes of the embedded service, restarted if one dies."""
+
+    def __init__(self, settings: WorkerSettings, processes: int = 2) -> None:
+        self.settings = settings
+        self.count = max(1, int(processes))
+        # "spawn": a fresh interpreter per worker; forking a process that runs Flask threads and
+        # holds database connections is unsafe.
+        self._ctx = multiprocessing.get_context("spawn")
+        self._stop = self._ctx.Event()
+        self._procs: list[multiprocessing.process.BaseProcess] = []
+        self._watch: threading.Thread | None = None
+        self._watch_stop = threading.Event()
+
+    def _spawn(self):
+        proc = self._ctx.Process(
+            target=worker_main,
+            args=(self.settings, self._stop),
+            daemon=True,
+            name="coldcert-worker",
+        )
+        proc.start()
+        return proc
+
+    def start(self) -> None:
+        storage = Storage(self.settings.database_url, self.settings.blob_root)
+        try:
+            requeued = recover_interrupted(storage, stale_after=STALE_AFTER_SECONDS)
+        finally:
+            storage.dispose()
+        if requeued:
+            logger.warning("re-queued %d interrupted job(s): %s", len(requeued), requeued)
+        self._procs = [self._spawn() for _ in range(self.count)]
+        self._watch = threading.Thread(target=self._supervise, daemon=True)
+        self._watch.start()
+
+    def _supervise(self) -> None:
+        delay = 1.0
+        while not self._watch_stop.wait(delay):
+            died = False
+            for index, proc in enumerate(self._procs):
+                if not proc.is_alive() and not self._stop.is_set():
+                    died = True
+                    logger.error("worker %s died (exit %s); restarting", proc.pid, proc.exitcode)
+                    storage = Storage(self.settings.database_url, self.settings.blob_root)
+                    try:
+                        recover_interrupted(storage, stale_after=STALE_AFTER_SECONDS)
+                    finally:
+                        storage.dispose()
+                    self._procs[index] = self._spawn()
+            # Back off if workers keep dying at start (e.g. a broken installation).
+            delay = min(delay * 2, 60.0) if died else 1.0
+
+    @property
+    def pids(self) -> list[int | None]:
+        return [p.pid for p in self._procs]
+
+    def stop(self, timeout: float = 10.0) -> None:
+        self._watch_stop.set()
+        self._stop.set()
+        deadline = time.monotonic() + timeout
+        for proc in self._procs:
+            proc.join(max(0.1, deadline - time.monotonic()))
+            if proc.is_alive():
+                proc.terminate()
+                proc.join(2)
+        self._procs = []

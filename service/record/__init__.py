@@ -1,0 +1,1 @@
+"""The canonical certificate record: built from a run, an outcome and a seed; the same bytes every time."""

@@ -1,0 +1,1 @@
+"""Renderings of the record: HTML, PDF, DCC XML, and the plots they embed."""

@@ -1,0 +1,1 @@
+"""The Flask web service: app factory, JSON API, pages, authentication, OpenAPI, uploads."""
