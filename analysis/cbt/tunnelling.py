@@ -245,6 +245,14 @@ def _ellipsoid_count_estimate(form: np.ndarray, radius_sq: float) -> float:
     return unit_ball * radius_sq ** (m / 2) / math.sqrt(float(np.linalg.det(form)))
 
 
+def estimated_window_states(array: ArrayDescription, x: float, u: float, sigmas: float) -> float:
+    """About how many charge states the window of :func:`solve_master_equation` holds here."""
+    c = charging_parameter(u, array.n_junctions)
+    window = _choose_window(array, c, x, sigmas, np.zeros(array.n_islands))
+    form = (c / window.noise_temperature) * array.inverse_capacitance()
+    return _ellipsoid_count_estimate(form, sigmas**2)
+
+
 def _enumerate_states(array: ArrayDescription, c: float, window: ChargeWindow) -> np.ndarray:
     """Integer charge configurations inside the window's energy ellipsoid.
 
