@@ -56,6 +56,8 @@ U_NODES = np.round(np.arange(0.0, 5.21, 0.1), 10)
 LENGTHS = (2, 3, 4)
 X4_MAX = 12.0
 X4_MAX_STRONG = 20.0  # the tail is slower in stronger blockade: solve further out for u >= 1
+X4_MAX_STRONGEST = 40.0  # and to the table end for u >= 3 (the continuation erred by 1.6e-5
+#                          in G/G_T at u = 5, x = 25, measured)
 U4_MIN = 0.5
 SIGMAS = 7.0
 
@@ -69,7 +71,9 @@ logger = logging.getLogger(__name__)
 LONG_TABLE_PATH = Path(__file__).with_name("long_arrays.npz")
 HELD_OUT_PATH = Path(__file__).with_name("held_out.npz")
 LONG_LENGTHS = (5, 6)
-LONG_X_NODES = np.array([0.0, 0.5, 1.0, 1.5, 2.0, 2.5, 3.0, 3.5, 4.0, 5.0, 6.0, 7.0, 8.0, 10.0, 12.0])
+# Quarter steps below x = 4: with half steps the bicubic interpolation of the N = 5, 6
+# difference erred by up to 3e-4 in G/G_T near x = 0.75 at u = 4.75 (measured at BOUND_POINTS).
+LONG_X_NODES = np.concatenate((np.arange(0.0, 4.0, 0.25), [4.0, 5.0, 6.0, 7.0, 8.0, 10.0, 12.0]))
 LONG_U_NODES = np.array([1.5, 2.0, 2.5, 3.0, 3.5, 4.0, 4.5, 5.0])
 #: Window of the N = 5, 6 solves: changing 6 -> 7 sigmas moves G/G_T by <= 7e-7, 7 -> 8.5 by
 #: <= 3e-9 (N = 5, u = 2-3, x = 0-12, measured); 6.5 sits between, and every row re-checks it.
@@ -103,6 +107,8 @@ def _solve_row(task: tuple[int, float, np.ndarray]) -> tuple[int, float, np.ndar
 
 def n4_x_limit(u: float) -> float:
     """Largest x at which the N = 4 table is solved exactly at this u."""
+    if u >= 3.0 - 1e-9:
+        return X4_MAX_STRONGEST
     return X4_MAX_STRONG if u >= 1.0 - 1e-9 else X4_MAX
 
 
@@ -216,15 +222,21 @@ def build_long_tables(resume: bool = False) -> dict[str, np.ndarray]:
     out: dict[str, np.ndarray] = {"x_nodes": LONG_X_NODES, "u_nodes": LONG_U_NODES,
                                   "lengths": np.array(LONG_LENGTHS),
                                   "window_sigmas": np.array(LONG_SIGMAS),
-                                  "max_states": np.array(LONG_MAX_STATES)}
+                                  "max_states": np.array(sorted(LONG_MAX_STATES.items()))}
     for n in LONG_LENGTHS:
         for key in ("conductance", "edge_probability", "n_states"):
             out[f"{key}_{n}"] = np.full(shape, np.nan)
         out[f"done_{n}"] = np.zeros(LONG_U_NODES.size, dtype=bool)
     out["window_check"] = np.zeros((0, 4))
+    previous: dict[str, np.ndarray] = {}
     if resume and LONG_PARTIAL_PATH.exists():
         with np.load(LONG_PARTIAL_PATH) as old:
             out.update({key: np.array(old[key]) for key in old.files})
+    elif resume and LONG_TABLE_PATH.exists():
+        # A finished table on other x nodes: keep the nodes it solved (same u nodes and window).
+        with np.load(LONG_TABLE_PATH) as old:
+            previous = {key: np.array(old[key]) for key in old.files}
+        out["window_check"] = previous["window_check"]
     for n in LONG_LENGTHS:
         for j, u in enumerate(LONG_U_NODES):
             if out[f"done_{n}"][j]:
@@ -234,12 +246,26 @@ def build_long_tables(resume: bool = False) -> dict[str, np.ndarray]:
             budget = LONG_MAX_STATES[n]
             xs = [x for x in LONG_X_NODES
                   if estimated_window_states(array, float(x), float(u), LONG_SIGMAS) <= budget]
-            row = solve_bias_sweep(array, np.array(xs), float(u), sigmas=LONG_SIGMAS)
-            out[f"conductance_{n}"][: len(xs), j] = [sol.conductance for sol in row]
-            out[f"edge_probability_{n}"][: len(xs), j] = [sol.boundary_probability for sol in row]
-            out[f"n_states_{n}"][: len(xs), j] = [sol.n_states for sol in row]
+            known = {}
+            if previous:
+                for i, x in enumerate(previous["x_nodes"]):
+                    if np.isfinite(previous[f"conductance_{n}"][i, j]):
+                        known[float(x)] = tuple(previous[f"{key}_{n}"][i, j] for key in
+                                                ("conductance", "edge_probability", "n_states"))
+            todo = [x for x in xs if float(x) not in known]
+            solved = dict(zip(todo, solve_bias_sweep(array, np.array(todo), float(u),
+                                                     sigmas=LONG_SIGMAS), strict=True))
+            for i, x in enumerate(xs):
+                if float(x) in known:
+                    g, e, k = known[float(x)]
+                else:
+                    sol = solved[x]
+                    g, e, k = sol.conductance, sol.boundary_probability, sol.n_states
+                out[f"conductance_{n}"][i, j] = g
+                out[f"edge_probability_{n}"][i, j] = e
+                out[f"n_states_{n}"][i, j] = k
             checks = []
-            for x in WINDOW_CHECK_X[n]:
+            for x in WINDOW_CHECK_X[n] if not previous else ():
                 sol = solve_master_equation(array, x, float(u), sigmas=LONG_SIGMAS,
                                             check_window=True)
                 checks.append((n, u, x, sol.window_change))
@@ -250,7 +276,7 @@ def build_long_tables(resume: bool = False) -> dict[str, np.ndarray]:
                         "%.1e, window change <= %.1e)", n, u, len(xs), xs[-1],
                         time.perf_counter() - start, np.nanmax(out[f"n_states_{n}"][:, j]),
                         np.nanmax(out[f"edge_probability_{n}"][:, j]),
-                        max(c[3] for c in checks))
+                        max((c[3] for c in checks), default=float("nan")))
     return out
 
 
@@ -260,6 +286,65 @@ def build_points(points: list[tuple[int, float, float]]) -> dict[str, np.ndarray
     arr = np.array(rows)
     return {"n": arr[:, 0].astype(int), "u": arr[:, 1], "x": arr[:, 2],
             "conductance": arr[:, 3], "edge_probability": arr[:, 4]}
+
+
+# Independent checks of the long-array continuation (--long-check): exact solutions of N = 7, 8
+# chains (nothing is built from them; they choose LONG_ARRAY_LAW and measure its residual) ...
+LONG_CHECK_PATH = Path(__file__).with_name("long_array_check.npz")
+LONG_CHECK_EXACT = ([(7, u, x) for u in (3.0, 4.0, 5.0) for x in (0.0, 2.75, 4.0)]
+                    + [(7, 2.0, 0.0), (7, 2.0, 2.75), (8, 2.0, 0.0), (8, 3.0, 0.0), (8, 4.0, 0.0),
+                       (8, 4.0, 2.75), (8, 5.0, 0.0), (8, 5.0, 2.75), (8, 5.0, 4.0)]
+                    + [(7, 1.5, 0.0), (7, 2.5, 0.0), (7, 2.5, 2.75), (8, 2.5, 0.0),
+                       (7, 2.0, 1.5), (7, 2.5, 1.5)])
+# ... and orthodox kinetic Monte Carlo currents J(x) of N = 10–30 chains.
+LONG_CHECK_MC = [(n, u, 3.0) for n in (10, 20, 30) for u in (2.0, 3.0, 4.0)]
+MC_REPLICAS = 400
+MC_EVENTS = 2500
+
+
+def build_long_check(resume: bool = False) -> dict[str, np.ndarray]:
+    """Exact N = 7, 8 points and Monte Carlo currents of long chains (one core, ~15 min).
+
+    With ``resume`` the points already in LONG_CHECK_PATH are kept and only new ones computed
+    (exact solves and seeded Monte Carlo runs are deterministic).
+    """
+    from analysis.cbt.orthodox_mc import simulate_current  # noqa: PLC0415 (only this mode)
+
+    old_exact: dict[tuple[int, float, float], tuple[float, float]] = {}
+    old_mc: dict[tuple[int, float, float], tuple[float, ...]] = {}
+    if resume and LONG_CHECK_PATH.exists():
+        with np.load(LONG_CHECK_PATH) as old:
+            for n, u, x, g, e in zip(old["exact_n"], old["exact_u"], old["exact_x"],
+                                     old["exact_conductance"], old["exact_edge_probability"],
+                                     strict=True):
+                old_exact[(int(n), float(u), float(x))] = (float(g), float(e))
+            for row in zip(old["mc_n"], old["mc_u"], old["mc_x"], old["mc_current"],
+                           old["mc_standard_error"], old["mc_seed"], strict=True):
+                old_mc[(int(row[0]), float(row[1]), float(row[2]))] = tuple(row)
+    exact_rows = [(n, u, x, *old_exact[(n, u, x)]) if (n, u, x) in old_exact
+                  else _solve_point((n, u, x), sigmas=LONG_SIGMAS) for n, u, x in LONG_CHECK_EXACT]
+    arr = np.array(exact_rows)
+    exact = {"n": arr[:, 0].astype(int), "u": arr[:, 1], "x": arr[:, 2],
+             "conductance": arr[:, 3], "edge_probability": arr[:, 4]}
+    rows = []
+    for k, (n, u, x) in enumerate(LONG_CHECK_MC):
+        if (n, u, x) in old_mc:
+            rows.append(old_mc[(n, u, x)])
+            continue
+        start = time.perf_counter()
+        mc = simulate_current(ArrayDescription(n), x, u, seed=20261202 + k,
+                              n_replicas=MC_REPLICAS, events_per_replica=MC_EVENTS,
+                              burn_in_events=max(500, 20 * n))
+        rows.append((n, u, x, mc.current, mc.standard_error, mc.seed))
+        logger.info("MC N=%d u=%.1f x=%.1f: J = %.6f ± %.1e (%.0f s)", n, u, x, mc.current,
+                    mc.standard_error, time.perf_counter() - start)
+    mc_arr = np.array(rows)
+    out = {f"exact_{key}": value for key, value in exact.items()}
+    out.update({"mc_n": mc_arr[:, 0].astype(int), "mc_u": mc_arr[:, 1], "mc_x": mc_arr[:, 2],
+                "mc_current": mc_arr[:, 3], "mc_standard_error": mc_arr[:, 4],
+                "mc_seed": mc_arr[:, 5].astype(np.int64),
+                "mc_replicas": np.array(MC_REPLICAS), "mc_events": np.array(MC_EVENTS)})
+    return out
 
 
 def main() -> None:
@@ -272,15 +357,19 @@ def main() -> None:
     parser.add_argument("--long", action="store_true",
                         help="compute the exact N = 5, 6 tables (one core, ~25 min)")
     parser.add_argument("--resume", action="store_true",
-                        help="with --long: keep the columns an interrupted run finished")
+                        help="with --long or --long-check: keep what an earlier run computed")
     parser.add_argument("--bound", action="store_true",
                         help="compute the off-grid N = 5, 6 points that set the model error")
+    parser.add_argument("--long-check", action="store_true",
+                        help="exact N = 7, 8 points and Monte Carlo of N = 10-30 (~15 min)")
     parser.add_argument("--held-out", action="store_true",
                         help="compute the held-out N = 5, 6 points that only the tests use")
     args = parser.parse_args()
     logging.basicConfig(level=logging.INFO, format="%(asctime)s %(message)s")
     if args.long:
         out, data = LONG_TABLE_PATH, build_long_tables(args.resume)
+    elif args.long_check:
+        out, data = LONG_CHECK_PATH, build_long_check(args.resume)
     elif args.bound:
         out, data = BOUND_PATH, build_points(BOUND_POINTS)
     elif args.held_out:
