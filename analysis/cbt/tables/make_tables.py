@@ -1,10 +1,16 @@
 """Generate the exact short-array conductance tables behind analysis.cbt.full_model.
 
-Run from the repository root (the tables take ~15 min on two cores, the validation points
-about as long):
+Run from the repository root, one command per file (times on one core of the shared machine):
 
-    .venv/bin/python -m analysis.cbt.tables.make_tables
-    .venv/bin/python -m analysis.cbt.tables.make_tables --validate
+    .venv/bin/python -m analysis.cbt.tables.make_tables              # short_arrays.npz, ~30 min
+    .venv/bin/python -m analysis.cbt.tables.make_tables --validate   # validation.npz
+    .venv/bin/python -m analysis.cbt.tables.make_tables --long       # long_arrays.npz, ~20 min
+    .venv/bin/python -m analysis.cbt.tables.make_tables --bound      # bound_points.npz, ~2 min
+    .venv/bin/python -m analysis.cbt.tables.make_tables --held-out   # held_out.npz, ~2 min
+    .venv/bin/python -m analysis.cbt.tables.make_tables --long-check # long_array_check.npz, ~10 min
+
+(``--workers 1`` keeps the short tables on one core; ``--reuse FILE`` / ``--resume`` keep what
+an earlier run on the same settings computed.)
 
 For each chain length N = 2, 3, 4 (uniform junctions, C_0 = 0, no offset charge) it solves the
 orthodox master equation (analysis.cbt.tunnelling, PHYSICS.md 1.3) on a grid of reduced bias x
@@ -13,9 +19,14 @@ first-order dip function g(x) of Pekola et al., PRL 73, 2903 (1994) as u → 0 (
 row). The N = 4 solve is costly where the charge window is wide (small u, large x); there it is
 done only for x <= X4_MAX (X4_MAX_STRONG for u >= 1) and u >= U4_MIN, and outside that region D_4 − D_3 is continued from
 the region's edge (scaled by (u/U4_MIN)^2 below it, by D_3(x)/D_3(x_last) beyond the last solved x). Both
-continuations act on a difference that is itself below 1e-6 in G/G_T there (measured by the
-validation in tests/test_full_model.py and benchmarks/bench_full_model.py); the mask of exactly
-solved nodes is stored with the table.
+continuations act on a difference that is below 1e-6 in G/G_T there for u <= 3 (measured by the
+validation in tests/test_full_model.py and benchmarks/bench_full_model.py); beyond x = 20 at
+u = 4-5 the continuation errs by up to 1.6e-5 (u = 5, x = 25, measured), carried in the model
+error. The mask of exactly solved nodes is stored with the table.
+
+The exact N = 5, 6 tables, the points that bound their error, the held-out points and the
+independent long-chain checks (exact N = 7, 8; orthodox Monte Carlo of N = 10-30) are described
+at their constants below.
 """
 
 from __future__ import annotations
@@ -56,8 +67,6 @@ U_NODES = np.round(np.arange(0.0, 5.21, 0.1), 10)
 LENGTHS = (2, 3, 4)
 X4_MAX = 12.0
 X4_MAX_STRONG = 20.0  # the tail is slower in stronger blockade: solve further out for u >= 1
-X4_MAX_STRONGEST = 40.0  # and to the table end for u >= 3 (the continuation erred by 1.6e-5
-#                          in G/G_T at u = 5, x = 25, measured)
 U4_MIN = 0.5
 SIGMAS = 7.0
 
@@ -107,8 +116,6 @@ def _solve_row(task: tuple[int, float, np.ndarray]) -> tuple[int, float, np.ndar
 
 def n4_x_limit(u: float) -> float:
     """Largest x at which the N = 4 table is solved exactly at this u."""
-    if u >= 3.0 - 1e-9:
-        return X4_MAX_STRONGEST
     return X4_MAX_STRONG if u >= 1.0 - 1e-9 else X4_MAX
 
 
@@ -269,7 +276,8 @@ def build_long_tables(resume: bool = False) -> dict[str, np.ndarray]:
                 sol = solve_master_equation(array, x, float(u), sigmas=LONG_SIGMAS,
                                             check_window=True)
                 checks.append((n, u, x, sol.window_change))
-            out["window_check"] = np.concatenate((out["window_check"], np.array(checks)))
+            if checks:
+                out["window_check"] = np.concatenate((out["window_check"], np.array(checks)))
             out[f"done_{n}"][j] = True
             np.savez_compressed(LONG_PARTIAL_PATH, **out)
             logger.info("N=%d u=%.2f: %d points to x = %g in %.0f s (max %d states, edge <= "
