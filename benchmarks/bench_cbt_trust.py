@@ -56,6 +56,30 @@ STATED_ZERO = TypeBInputs(bias_scale_relative_u=0.0, bias_scale_stated=True, exc
                           resistance_spread=0.0, resistance_spread_stated=True, series_resistance_stated=True)
 
 
+def load_curves(us, cache: Path) -> None:
+    """Exact master-equation curves for every u, solved once and kept as npz files in ``cache``.
+
+    The cached values are the solver's own output (x, G/G_T); the spline is rebuilt from them, so
+    a cached run and a fresh one generate identical sweeps.
+    """
+    from scipy import interpolate  # noqa: PLC0415
+
+    cache.mkdir(parents=True, exist_ok=True)
+    for u in us:
+        path = cache / f"exact_N{N_JUNCTIONS}_u{u:.4f}.npz"
+        if path.exists():
+            with np.load(path) as f:
+                spline = interpolate.CubicSpline(f["x"], f["g"], bc_type=((1, 0.0), (1, 0.0)))
+            _CURVES[u] = spline
+            continue
+        spline = exact_dip_curve(N_JUNCTIONS, u)
+        np.savez(path, x=spline.x, g=spline(spline.x))
+        _CURVES[u] = spline
+
+
+_CURVES: dict[float, object] = {}
+
+
 def one_over_f(n: int, alpha: float, rng: np.random.Generator) -> np.ndarray:
     """Unit-rms noise with power spectrum ∝ 1/f^α (random phases; spectral synthesis)."""
     f = np.fft.rfftfreq(n)
@@ -77,7 +101,7 @@ def make_case(family: str, index: int, base_seed: int) -> dict:
     reach = rng.uniform(4.5, 6.0)
     bias = v0 + np.linspace(-reach * vh, reach * vh, 401)
     x = np.abs(ELEMENTARY_CHARGE * (bias - v0) / (N_JUNCTIONS * BOLTZMANN * T))
-    curve = exact_dip_curve(N_JUNCTIONS, u)
+    curve = _CURVES[u] if u in _CURVES else exact_dip_curve(N_JUNCTIONS, u)
     g = gt * np.where(x <= 40.0, curve(np.minimum(x, 40.0)), 1.0)
     g = g + sigma * rng.standard_normal(g.size)
     if family == "outliers":
@@ -123,13 +147,14 @@ def main() -> None:
     ap.add_argument("--jobs", type=int, default=1, help="worker processes (the machine is shared)")
     ap.add_argument("--seed", type=int, default=20261202)
     ap.add_argument("--verbose", action="store_true")
+    ap.add_argument("--cache", default=str(Path(os.environ.get("TMPDIR", "/tmp")) / "coldcert-exact-curves"),
+                    help="directory for the exact curves (minutes to solve; reused when present)")
     args = ap.parse_args()
     n = args.cases or (30 if args.quick else 60)
     families = [f for f in args.families.split(",") if f]
     t0 = time.perf_counter()
     us = sorted({u for f in families for u in (EDGE_U if f == "edge" else BULK_U)})
-    for u in us:  # exact master-equation curves, once per u (the slow part of set-up)
-        exact_dip_curve(N_JUNCTIONS, u)
+    load_curves(us, Path(args.cache))
     print(f"exact N = {N_JUNCTIONS} curves for {len(us)} values of u: {time.perf_counter() - t0:.0f} s")
     cases = [make_case(f, i, args.seed) for f in families for i in range(n)]
     if args.jobs > 1:

@@ -17,7 +17,7 @@ and a wandering (random-walk) offset, and a true deviation of +0.8 ppm. Records 
 hours by default: long enough for tens of cycles (so the Type A and the jackknife have degrees of
 freedom), short enough that the campaign runs in minutes; the transient's bias relative to u does
 not shrink with length, it grows (u falls as 1/√T, the bias does not), so a longer record is a
-harder case, which ``--hours 8`` checks.
+harder case: ``--hours 8`` runs it (about four times longer).
 
 For each shape and segment length the table gives the mean of (D − truth)/u with its standard
 error, the fraction of 95 % intervals that contain the truth, the number of records refused,

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import io
 import json
+import os
 import threading
 import time
 import urllib.error
@@ -15,10 +16,11 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from werkzeug.serving import make_server
+import pytest
 
 from service.web.app import create_app
 from service.web.auth import create_token, create_user
+from service.web.server import production_server
 
 EXAMPLE = Path(__file__).resolve().parents[1] / "example_runs" / "cbt-hollowmere"
 PASSWORD = "correct horse battery"
@@ -101,19 +103,20 @@ def make_lab(tmp_path: Path, **config: Any) -> Lab:
 
 
 class LiveServer:
-    """The real app served by werkzeug on 127.0.0.1 (a free port) in a thread."""
+    """The real app on the production server (waitress, as `coldcert serve` runs it) on
+    127.0.0.1, a free port, in a thread."""
 
     def __init__(self, app) -> None:
-        self.server = make_server("127.0.0.1", 0, app, threaded=True)
-        self.url = f"http://127.0.0.1:{self.server.server_port}"
-        self.thread = threading.Thread(target=self.server.serve_forever, daemon=True)
+        self.server = production_server(app, "127.0.0.1", 0, threads=8)
+        self.url = f"http://127.0.0.1:{self.server.effective_port}"
+        self.thread = threading.Thread(target=self.server.run, daemon=True)
 
     def __enter__(self) -> LiveServer:
         self.thread.start()
         return self
 
     def __exit__(self, *exc) -> None:
-        self.server.shutdown()
+        self.server.close()
         self.thread.join(10)
 
     def request(
@@ -156,3 +159,58 @@ class LiveServer:
                 return reply.status, dict(reply.headers), reply.read()
         except urllib.error.HTTPError as reply:
             return reply.code, dict(reply.headers), reply.read()
+
+
+def server_url(variable: str, scheme: str, purpose: str) -> str:
+    """The URL of a test server named by ``variable``, or skip (fail under CI=true) without one.
+
+    `.ci/run` starts throw-away PostgreSQL and Redis servers on loopback and exports their URLs;
+    on a plain clone these tests skip with the reason.
+    """
+    url = os.environ.get(variable, "")
+    if url.startswith(scheme):
+        return url
+    reason = f"set {variable} to a {scheme} URL to {purpose} (.ci/run starts one)"
+    if os.environ.get("CI") == "true":
+        pytest.fail(reason + "; CI must supply it")
+    pytest.skip(reason)
+
+
+def reset_server_database(url: str) -> None:
+    """Empty a test database server's schema (every table and the migration version), so the
+    next ``create_schema`` builds it from the first migration."""
+    from sqlalchemy import text
+
+    from service import storage as st
+    from service.storage import Storage
+
+    storage = Storage(url, None)
+    with storage.engine.begin() as conn:
+        st.metadata.drop_all(conn)
+        conn.execute(text("DROP TABLE IF EXISTS alembic_version"))
+    storage.dispose()
+
+
+def complete_record(value: float, u: float, **result: Any) -> dict[str, Any]:
+    """A stand-in certificate record that states everything ISO/IEC 17025 7.8.2.1 asks for (so
+    it can be issued), with one temperature result ``value`` ± ``u`` (k = 2)."""
+    return {
+        "title": "Calibration certificate",
+        "laboratory": {"name": "Archive Test Lab", "address": "1 Test Road"},
+        "customer": {"name": "Cryolab North", "address": "North Road"},
+        "item": {"description": "test thermometer", "identifier": "T-1"},
+        "dates": {"measured": "2026-11-24"},
+        "method": {"description": "stand-in analysis for archive tests"},
+        "results": [
+            {
+                "name": "electron temperature",
+                **result,
+                "value": value,
+                "unit": "K",
+                "standard_uncertainty": u,
+                "expanded_uncertainty": 2 * u,
+                "coverage_factor": 2.0,
+                "coverage_probability": 0.95,
+            }
+        ],
+    }

@@ -4,6 +4,7 @@ job failures, crashes and restarts; amendments; search; and the OpenAPI document
 
 from __future__ import annotations
 
+import hashlib
 import io
 import json
 import re
@@ -489,11 +490,15 @@ def test_every_documented_route_answers_as_documented(lab, issued):
         ("PATCH", "/api/users/{username}"): {"roles": "operator"},
         ("POST", "/api/certificates/{certificate_id}/withdraw"): {"reason": "route check"},
         ("POST", "/api/certificates/{certificate_id}/amend"): {"reason": "route check"},
+        ("POST", "/api/impact/reproduce"): {"certificate_ids": [cert]},
+        ("POST", "/api/certificates/{certificate_id}/corrections"): {
+            "corrections": {"customer": {"name": "Route Check"}}
+        },
     }
     person = {"operator": "olga", "approver": "bea", "auditor": "aude", "admin": "adam"}
     # Issue and withdraw act on a fresh draft, the rest on a fresh issued certificate, so that
     # every call can succeed whatever other tests did to the shared one.
-    first, second = (lab.upload(client).get_json()["job_id"] for _ in range(2))
+    first, second, third = (lab.upload(client).get_json()["job_id"] for _ in range(3))
     draft = lab.wait(client, first)["certificate_id"]
     cert = lab.wait(client, second)["certificate_id"]
     assert (
@@ -501,6 +506,22 @@ def test_every_documented_route_answers_as_documented(lab, issued):
         == 200
     )
     fill["certificate_id"] = cert
+    fill["item"] = lab.services.archive.get(cert)["item"]
+    pdf = client.get(f"/api/certificates/{cert}/pdf", headers=lab.headers("olga")).data
+    # The public check answers a number and a file's SHA-256 (or the file), whatever the method.
+    queries = {
+        "/api/public/check": f"?id={cert}&sha256={hashlib.sha256(pdf).hexdigest()}",
+    }
+    # A token to revoke, and a failed job to retry (as if interrupted by restarts).
+    fill["token_id"] = str(
+        client.post("/api/users/olga/tokens", json={"label": "route check"},
+                    headers=lab.headers("adam")).get_json()["token_id"]
+    )
+    failed_job = lab.upload(client).get_json()["job_id"]
+    lab.wait(client, failed_job)
+    with lab.services.storage.write() as conn:
+        conn.execute(st.jobs.update().where(st.jobs.c.id == failed_job).values(
+            status="failed", error="interrupted 3 times (route check)"))
     called = 0
     for path, operations in openapi_document()["paths"].items():
         for method, op in operations.items():
@@ -510,6 +531,10 @@ def test_every_documented_route_answers_as_documented(lab, issued):
                 concrete = concrete.replace("{" + name + "}", value)
             if path.endswith(("/issue", "/withdraw")):
                 concrete = concrete.replace(cert, draft)
+            if path.endswith("/retry"):
+                concrete = concrete.replace(fill["job_id"], failed_job)
+            if path.endswith("/corrections"):  # a draft of its own (the other is withdrawn)
+                concrete = concrete.replace(cert, lab.wait(client, third)["certificate_id"])
             roles = op["x-roles"]
             headers = lab.headers(person[roles[0]]) if roles else {}
             kwargs = {"json": bodies.get(key, {})} if method != "get" else {}
@@ -527,6 +552,7 @@ def test_every_documented_route_answers_as_documented(lab, issued):
                     assert reply.status_code == 200, (fmt, reply.data[:200])
                     called += 1
                 continue
+            concrete += queries.get(path, "")
             reply = client.open(concrete, method=method.upper(), headers=headers, **kwargs)
             if "{name}" in path and "/files/" in path:
                 # Thermometry keeps no output files; the 200 case is in tests/test_jobs.py.
@@ -686,3 +712,14 @@ def test_an_incomplete_draft_is_not_issued_until_corrected(lab):
     assert issued.status_code == 200, issued.get_json()
     record = client.get(f"/api/certificates/{cert}/json", headers=lab.headers("olga")).get_json()
     assert record["customer"]["name"] == "A Customer" and "customer" in record["corrected_fields"]
+
+
+def test_issued_renderings_carry_the_signature_details(lab, issued):
+    # The auditor's check of authorisation: approver and role, key id, chain entry and its hash,
+    # and where the public key is published, in the HTML the archive serves.
+    client, cert = lab.client(), issued["certificate_id"]
+    info = client.get(f"/api/certificates/{cert}", headers=lab.headers("olga")).get_json()
+    html = client.get(f"/api/certificates/{cert}/html", headers=lab.headers("olga")).data.decode()
+    assert "signed electronically" in html and "(approver" in html
+    assert info["sha256"] in html and info["key_id"] in html
+    assert f"entry {info['sequence']}" in html and "/api/public-key" in html

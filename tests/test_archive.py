@@ -26,6 +26,7 @@ from service.archive import (
     verify_signed_document,
 )
 from service.storage import Storage, default_database_url, sha256_hex
+from tests.service_support import complete_record
 
 # ---- published test vectors -----------------------------------------------------------------
 
@@ -108,28 +109,13 @@ def _fake_certify(run: Path, seed: int, progress=None) -> dict:
     if progress:
         progress(1.0, "done")
     u = float(draws.std(ddof=1))
-    return {
-        # Everything ISO/IEC 17025 7.8.2.1 asks a certificate to state, so that it can be issued.
-        "title": "Calibration certificate",
-        "laboratory": {"name": "Archive Test Lab", "address": "1 Test Road"},
-        "customer": {"name": "Cryolab North", "address": "North Road"},
-        "item": {"description": "test thermometer", "identifier": "T-1"},
-        "dates": {"measured": "2026-11-24"},
-        "method": {"description": "stand-in analysis for archive tests"},
-        "results": [
-            {
-                "name": "electron temperature",
-                "sweep": "sweep.csv",
-                "value": float(draws.mean()),
-                "unit": "K",
-                "standard_uncertainty": u,
-                "expanded_uncertainty": 2 * u,
-                "coverage_factor": 2.0,
-                "coverage_probability": 0.95,
-                "budget": {"effective_degrees_of_freedom": None},
-            }
-        ],
-    }
+    # Everything ISO/IEC 17025 7.8.2.1 asks a certificate to state, so that it can be issued.
+    return complete_record(
+        float(draws.mean()),
+        u,
+        sweep="sweep.csv",
+        budget={"effective_degrees_of_freedom": None},
+    )
 
 
 class Lab:
@@ -346,8 +332,13 @@ def test_one_changed_byte_in_an_issued_record_is_found(lab, tmp_path):
     problems = " | ".join(report["problems"])
     assert "chain entry 2" in problems and "altered after it was signed" in problems
     assert "signature does not verify" in problems
-    # Earlier records stay valid; later ones fail because their chain passes through entry 2.
-    assert lab.archive.verify(first).valid
+    # Later records fail because their chain passes through entry 2. An earlier record's own
+    # entry still checks out, but a damaged later entry could hide its withdrawal or amendment,
+    # so it is not reported valid either; the report says why.
+    earlier = lab.archive.verify(first).as_dict()
+    assert not earlier["valid"]
+    assert all("chain entry 1 " not in p for p in earlier["problems"])
+    assert any("chain entry 2" in p and "could be hidden" in p for p in earlier["problems"])
     assert not lab.archive.verify(third).valid
     ok, problems = lab.archive.verify_all()
     assert not ok and any("chain entry 2" in c.detail for c in problems)

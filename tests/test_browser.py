@@ -89,6 +89,12 @@ def _wait_for(predicate, timeout: float = 120.0, what: str = "condition"):
     raise AssertionError(f"timed out waiting for {what}")
 
 
+def _flash_text(driver) -> str:
+    from selenium.webdriver.common.by import By
+
+    return " ".join(e.text for e in driver.find_elements(By.CSS_SELECTOR, ".flash"))
+
+
 def _sign_in(driver, url: str, username: str) -> None:
     from selenium.webdriver.common.by import By
 
@@ -105,9 +111,9 @@ def test_upload_to_issued_journey(browser, served, tmp_path):
     lab, server = served
     driver = browser
 
-    # The operator uploads a run and watches it being analysed.
+    # The operator uploads a run without its manifest and watches it being analysed.
     _sign_in(driver, server.url, "olga")
-    paths = [str(EXAMPLE / "run.toml"), str(EXAMPLE / "sweep_03_60mK.csv")]
+    paths = [str(EXAMPLE / "sweep_03_60mK.csv")]
     driver.find_element(By.ID, "files").send_keys("\n".join(paths))
     driver.find_element(By.ID, "submit-run").click()
     _wait_for(lambda: "/runs/" in driver.current_url, 30, "the run page")
@@ -129,6 +135,20 @@ def test_upload_to_issued_journey(browser, served, tmp_path):
     assert driver.find_element(By.ID, "certificate-state").text == "draft"
     # An operator has no issue button.
     assert not driver.find_elements(By.ID, "issue")
+    # Without a manifest the draft lacks what ISO/IEC 17025 7.8.2.1 asks for: the page says what
+    # and takes it (the date of measurement came from the sweep's sweep_started line).
+    missing = driver.find_element(By.ID, "missing").text
+    assert "customer's name" in missing and "date of the measurement" not in missing
+    fill = {
+        "laboratory-name": "Browser Test Laboratory", "laboratory-address": "3 Test Lane",
+        "customer-name": "A Customer", "customer-address": "4 Client Street",
+        "item-description": "CBT chip", "item-identifier": "CBT-B1",
+    }
+    for field, value in fill.items():
+        driver.find_element(By.ID, f"fill-{field}").send_keys(value)
+    driver.find_element(By.ID, "correct").click()
+    _wait_for(lambda: "can be issued" in _flash_text(driver), 30, "the corrected draft")
+    assert not driver.find_elements(By.ID, "missing")
     driver.find_element(By.ID, "sign-out").click()
 
     # The approver reviews the draft (its document with plots) and issues it.
@@ -139,6 +159,11 @@ def test_upload_to_issued_journey(browser, served, tmp_path):
     _wait_for(lambda: driver.find_elements(By.TAG_NAME, "svg"), 30, "the plots")
     assert certificate_id in driver.page_source
     driver.switch_to.default_content()
+    # Signing cannot be undone: the button does nothing until the approver confirms.
+    driver.find_element(By.ID, "issue").click()
+    time.sleep(1.0)
+    assert driver.find_element(By.ID, "certificate-state").text == "draft"
+    driver.find_element(By.ID, "issue-confirm").click()
     driver.find_element(By.ID, "issue").click()
     _wait_for(lambda: driver.find_element(By.ID, "certificate-state").text == "issued", 30, "issue")
     assert "issued and signed" in driver.find_element(By.CSS_SELECTOR, ".flash").text
@@ -166,3 +191,20 @@ def test_upload_to_issued_journey(browser, served, tmp_path):
     verdict = _wait_for(lambda: driver.find_elements(By.ID, "verdict"), 30, "the verdict")[0]
     assert verdict.text.startswith("Valid")
     Path(tmp_path / "verify.png").write_bytes(driver.get_screenshot_as_png())
+    driver.find_element(By.ID, "sign-out").click()
+
+    # The administrator gives themself the operator role and disables an account on People.
+    _sign_in(driver, server.url, "adam")
+    driver.get(f"{server.url}/users")
+    row = driver.find_element(By.ID, "update-adam")
+    row.find_element(By.CSS_SELECTOR, 'input[value="operator"]').click()
+    driver.find_element(By.ID, "save-adam").click()
+    _wait_for(lambda: "adam updated" in _flash_text(driver), 30, "the saved roles")
+    row = driver.find_element(By.ID, "update-aude")
+    row.find_element(By.CSS_SELECTOR, 'input[name="active"]').click()
+    driver.find_element(By.ID, "save-aude").click()
+    _wait_for(lambda: "aude updated" in _flash_text(driver), 30, "the disabled account")
+    from service.web.auth import get_user
+
+    assert "operator" in get_user(lab.services.storage, "adam")["roles"]
+    assert not get_user(lab.services.storage, "aude")["active"]

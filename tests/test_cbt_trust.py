@@ -240,3 +240,44 @@ def test_slope_is_named_and_the_background_added():
     assert fit.diagnosis.background_added
     assert any("linear background" in f for f in fit.diagnosis.findings)
     assert abs(fit.temperature - T_TRUE) < 3 * fit.temperature_std
+
+
+def _sweep_file(bias, g, name="sweep.csv"):
+    from service.intake import parse_csv
+
+    text = "# junctions_in_series: 3\nbias_V,conductance_S\n" + "".join(
+        f"{float(v)!r},{float(c)!r}\n" for v, c in zip(bias, g, strict=True))
+    return parse_csv(name, text.encode())
+
+
+def test_service_names_file_and_line_of_a_mistyped_bias():
+    from service.calibrations.cbt import fit_file
+    from service.intake import IntakeError
+
+    bias, g, _ = noisy_exact(1.0, seed=5)
+    bias = bias[::-1].copy()  # recorded downwards, as some set-ups do
+    bias[2] *= 1e3
+    f = _sweep_file(bias, g)
+    with pytest.raises(IntakeError) as exc:
+        fit_file(f, 1, QUICK, FullTunnellingShape(3))
+    assert exc.value.file == "sweep.csv" and exc.value.line == f.line_of_row(2) and exc.value.field == "bias_V"
+
+
+def test_service_refuses_the_edge_of_a_model_without_a_traceback():
+    from service.calibrations.cbt import fit_file
+    from service.calibrations.outcome import CertificationRefused
+
+    bias, g, _ = noisy_exact(1.0, seed=8, range_half_widths=8.0)
+    keep = bias >= -0.2 * bias.max()
+    with pytest.raises(CertificationRefused, match="sweep.csv: .*bound"):
+        fit_file(_sweep_file(bias[keep], g[keep]), 1, QUICK, FullTunnellingShape(3))
+
+
+def test_service_warns_with_the_outlier_lines():
+    from service.calibrations.cbt import fit_file
+
+    bias, g, _ = noisy_exact(1.0, seed=4)
+    g[137] *= 1.25
+    f = _sweep_file(bias, g)
+    work = fit_file(f, 1, QUICK, FullTunnellingShape(3))
+    assert any(f"line {f.line_of_row(137)}" in w for w in work.warnings)

@@ -82,9 +82,14 @@ def test_typo_key():
     assert "excitation_rms_V" in err.message
 
 
-def test_unrelated_unknown_key_kept_as_text():
-    run = load_files({"s.csv": sweep_text(meta="# junctions_in_series: 33\n# cryostat: Blue fridge 2\n")})
-    assert run.files[0].free_text["cryostat"] == "Blue fridge 2"
+def test_unrelated_unknown_key_is_refused():
+    # Intake's table holds every kind's keys; a key none knows is a mistake, not free text.
+    # Remarks go in '# note:'.
+    err = refuse(sweep_text(meta="# junctions_in_series: 33\n# cryostat: Blue fridge 2\n"),
+                 field="cryostat", line=2)
+    assert "note" in err.message
+    run = load_files({"s.csv": sweep_text(meta="# junctions_in_series: 33\n# note: Blue fridge 2\n")})
+    assert run.files[0].metadata["note"] == "Blue fridge 2"
 
 
 def test_empty_and_binary_files():

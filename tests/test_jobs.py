@@ -4,6 +4,8 @@ failed with the reason. The analysis here misbehaves on purpose (tests/fake_anal
 
 from __future__ import annotations
 
+import io
+import os
 import socket
 
 import pytest
@@ -11,7 +13,7 @@ from sqlalchemy import func, select
 
 from service import storage as st
 from service.queue.jobs import recover_interrupted
-from service.storage import utc_now
+from service.storage import Storage, default_database_url, utc_now
 from tests.service_support import EXAMPLE, make_lab
 
 RUN_TOML = (EXAMPLE / "run.toml").read_bytes()
@@ -164,7 +166,7 @@ def test_output_files_are_kept_signed_verified_and_reproduced(troubled_lab):
     ]["results"][0]["value"]
     assert reply.data == f"temperature_K\n{value!r}\n".encode()
     html = client.get(f"/api/certificates/{cert}/html", headers=lab.headers("olga")).data
-    assert b'<section id="job-extra">' in html  # the job's own section survives re-rendering
+    assert f"Certificate {cert}".encode() in html and b"end of document" in html  # re-rendered from the record
     missing = client.get(f"/api/certificates/{cert}/files/other.csv", headers=lab.headers("olga"))
     assert missing.status_code == 404 and "table.csv" in missing.get_json()["error"]
     issued = client.post(f"/api/certificates/{cert}/issue", headers=lab.headers("arno"))
@@ -195,3 +197,116 @@ def test_reproduce_compares_output_files_byte_for_byte(troubled_lab):
     report = lab.services.archive.reproduce(job["certificate_id"], certify, load_run)
     assert not report.identical
     assert [m.path for m in report.mismatches] == ["file table.csv"]
+
+
+def _running(storage, job_id: str, claimed_by: str, attempts: int) -> None:
+    with storage.write() as conn:
+        conn.execute(
+            st.jobs.update()
+            .where(st.jobs.c.id == job_id)
+            .values(
+                status="running",
+                claimed_by=claimed_by,
+                attempts=attempts,
+                started_at=utc_now(),
+                heartbeat_at=utc_now(),
+                step="sampling",
+            )
+        )
+
+
+def test_take_runs_a_job_once_however_often_its_message_arrives(troubled_lab):
+    """The distributed queue delivers at least once; take() makes the job run at most once at a
+    time and resumes it only when its holder is gone."""
+    from service.queue.jobs import take
+
+    lab = troubled_lab
+    storage = lab.services.storage
+    job_id = lab.upload(lab.client()).get_json()["job_id"]
+    me = f"{socket.gethostname()}:{os.getpid()}:first"
+    taken = take(storage, job_id, me)
+    assert taken["status"] == "running" and taken["attempts"] == 1
+    # A second delivery while the holder (this live process) works on it: nothing happens.
+    assert take(storage, job_id, f"{socket.gethostname()}:{os.getpid()}:second") is None
+    # Its holder's process is gone: the next delivery takes the job again, as attempt 2.
+    _running(storage, job_id, f"{socket.gethostname()}:999999999:gone", attempts=1)
+    again = take(storage, job_id, me)
+    assert again["attempts"] == 2 and again["claimed_by"] == me
+    events = lab.services.archive.events(subject=job_id)
+    assert "job.interrupted" in [e["action"] for e in events]
+    # Interrupted MAX_ATTEMPTS times: failed with the reason, not taken.
+    _running(storage, job_id, f"{socket.gethostname()}:999999999:gone", attempts=3)
+    assert take(storage, job_id, me) is None
+    status = lab.client().get(f"/api/jobs/{job_id}", headers=lab.headers("olga")).get_json()
+    assert status["status"] == "failed" and "interrupted 3 times" in status["error"]
+    assert take(storage, job_id, me) is None  # failed stays failed
+    assert take(storage, "job-nosuchjob", me) is None
+
+
+def test_the_database_refuses_a_second_draft_from_one_job(troubled_lab):
+    from sqlalchemy.exc import IntegrityError
+
+    lab = troubled_lab
+    upload = lab.upload(lab.client()).get_json()
+    olga = {"id": 1, "username": "olga"}
+    with lab.services.storage.read() as conn:
+        olga["id"] = conn.execute(
+            select(st.users.c.id).where(st.users.c.username == "olga")
+        ).scalar()
+    draft = {
+        "run_id": upload["run_id"],
+        "record": {"results": [{"value": 0.05, "unit": "K"}]},
+        "seed": 1,
+        "software": {},
+        "submitter": olga,
+        "job_id": upload["job_id"],
+    }
+    with lab.services.storage.write() as conn:
+        lab.services.archive.create_draft(conn, **draft)
+    with pytest.raises(IntegrityError), lab.services.storage.write() as conn:
+        lab.services.archive.create_draft(conn, **draft)
+
+
+def test_an_archive_without_the_key_drafts_but_cannot_sign(troubled_lab):
+    from service.archive import Archive, ArchiveError
+
+    lab = troubled_lab
+    client = lab.client()
+    upload = lab.upload(client).get_json()
+    lab.services.start_workers(1)  # worker processes open their archive without the key
+    job = lab.wait(client, upload["job_id"])
+    assert job["status"] == "done", job["error"]
+    keyless = Archive(lab.services.storage, None)
+    approver = {"id": 2, "username": "arno", "display_name": "Arno"}
+    with pytest.raises(ArchiveError, match="no signing key"):
+        keyless.issue(job["certificate_id"], approver)
+    assert keyless.get(job["certificate_id"])["state"] == "draft"
+
+
+def test_health_reports_the_embedded_queue(troubled_lab):
+    lab = troubled_lab
+    lab.upload(lab.client())
+    health = lab.client().get("/api/health").get_json()
+    assert health["status"] == "ok"
+    assert health["queue"]["mode"] == "embedded" and health["queue"]["workers_seen"] == 0
+    assert health["queue"]["jobs"]["queued"] == 1
+    lab.services.start_workers(1)
+    health = lab.client().get("/api/health").get_json()
+    assert health["queue"]["workers_seen"] == 1
+
+
+def test_progress_never_moves_backwards(tmp_path):
+    # Sweeps fitted side by side report out of order; the job's progress must only grow.
+    from service.cli.run_commands import ProgressBar
+    from service.queue.jobs import ProgressReporter
+
+    storage = Storage(default_database_url(tmp_path), tmp_path / "blobs")
+    reporter = ProgressReporter(storage, "job-x", "worker-x")
+    for fraction in (0.2, 0.6, 0.4, 0.5, 0.9):
+        reporter(fraction, "fitting")
+    assert reporter.latest[0] == 0.9
+    bar = ProgressBar(io.StringIO())
+    for fraction in (0.3, 0.1):
+        bar(fraction, "x")
+    assert bar.last == 0.3
+    storage.dispose()

@@ -47,18 +47,23 @@ def test_cold_sweep_switches_to_the_full_model_and_recovers_T():
     assert work.fit.u == pytest.approx(u, rel=0.02)
 
 
-@pytest.mark.parametrize("u, bias", [(0.2, 0.018), (0.5, 0.045)])
-def test_first_order_formula_is_biased_as_published(u, bias):
-    # PHYSICS.md 1.2 (derived): fitting the first-order formula (Pekola et al. 1994) to exact N = 2
-    # data biases T by +1.8 % at u = 0.2 and +4.5 % at u = 0.5. Exact data from the master equation.
+@pytest.mark.parametrize("u", [0.2, 0.5])
+def test_first_order_formula_bias_on_exact_data(u):
+    # Exact N = 2 data from the master equation (PHYSICS.md 1.3). PHYSICS.md 1.2 quotes +1.8 % and
+    # +4.5 % for this bias but not the swept range it was derived over, and the bias grows with the
+    # range, so those figures cannot serve as a reference at their quoted digits. Two independent
+    # checks instead: the first-order fit must read T high by more than the width correction
+    # 0.3921 ΔG/G_T that it lacks (Farhangfar et al., J. Low Temp. Phys. 108, 191 (1997)), and the
+    # bound the budget states for it (FirstOrderShape.relative_width_error, measured on N = 3 and
+    # N = 33 against the full model) must cover the bias on this N = 2 exact sweep.
     from analysis.cbt.fit import SweepData, initial_guess, least_squares_fit
-    from analysis.cbt.models import SweepSetup, first_order_shape
+    from analysis.cbt.models import SweepSetup, depth_series, first_order_shape
 
     n, T = 2, 0.02
     x = np.linspace(-28, 28, 281)
     g = tunnelling.conductance(x, u, tunnelling.ArrayDescription(n))
     data = SweepData(x * n * BOLTZMANN * T / ELEMENTARY_CHARGE, 2e-6 * g, SweepSetup(n))
     t_fit = least_squares_fit(first_order_shape, data, initial_guess(data))["theta"][0]
-    # The bias grows slowly with the swept range (PHYSICS.md does not state its range); over
-    # ±5 V_1/2 we find +2.1 % and +5.1 %, hence the tolerance.
-    assert t_fit / T - 1 == pytest.approx(bias, abs=0.007)
+    bias = t_fit / T - 1
+    assert bias > 0.3921 * float(depth_series(u))
+    assert bias < first_order_shape.relative_width_error(u)

@@ -222,7 +222,12 @@ def test_ideal_chain_budget_is_type_a_only_and_says_so():
     t, i, on = simulate.on_off_record(settings, seed=2)
     res = R.analyse_record(t, i, on, 1.0e9, 1, seed=4, monte_carlo_draws=20_000)
     b = res.precision.budget
-    assert b.combined_standard_uncertainty == pytest.approx(b.rows[0].contribution)
+    # Only the Type A row and the measured settling transient's row carry uncertainty.
+    settling = [r for r in b.rows if r.quantity.startswith("settling transient")]
+    assert len(settling) == 1
+    assert all(r.standard_uncertainty == 0 for r in b.rows[1:] if r not in settling)
+    assert b.combined_standard_uncertainty == pytest.approx(
+        math.hypot(b.rows[0].contribution, settling[0].contribution))
     assert any("ideal ammeter" in n for n in b.notes)
     assert abs(b.estimate - 2.0) < 4 * b.combined_standard_uncertainty
 
@@ -289,3 +294,18 @@ def test_numerical_deviation_of_an_interval_end_matches_repeated_runs():
         ends.append(mc.symmetric_interval[0])
     predicted = R.interval_end_numerical_u(mc)
     assert np.std(ends, ddof=1) == pytest.approx(predicted, rel=0.15)
+
+
+def test_cumulative_sum_route_gives_the_same_cycles():
+    # The settling analysis tries many discards through per-segment cumulative sums; they must
+    # give exactly what the direct route gives, irregular timing and jittered clocks included.
+    t, on = _square_record(30, [50, 20, 35], cycles=9)
+    t = t + np.random.default_rng(2).uniform(0, 0.3, t.size)
+    i = I0 * on + 5e-12 + 3e-15 * t + 1e-14 * np.random.default_rng(3).standard_normal(t.size)
+    fast = R._SegmentSums(t, i, on)
+    for d in (0.0, 2.5, 7.0, 15.0):
+        a = R.cycle_differences(t, i, on, R.SettlingRule(seconds=d))
+        b = fast.cycles(d)
+        assert np.allclose(b.differences, a.differences, rtol=0, atol=1e-24)
+        assert np.allclose(b.segment_weights, a.segment_weights)
+        assert b.readings_used == a.readings_used

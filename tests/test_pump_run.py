@@ -158,6 +158,20 @@ def test_unknown_ammeter_key_and_bad_kind(tmp_path):
     assert err.field == "ammeter.kind"
 
 
+def test_transient_the_segments_cannot_outlast_is_refused_not_certified(tmp_path):
+    # 16 s segments with a 6 s transient after each switch-on: too slow for the segments, so the
+    # record analysis refuses, and the job says which file (analysis.pump.settling).
+    from service.calibrations.outcome import CertificationRefused
+
+    settings = simulate.RecordSettings(cycles=30, readings_per_segment=16, noise_a=100e-15,
+                                       settling_tau_s=0.2, transient_on=((200e-15, 6.0),))
+    t, i, on = simulate.on_off_record(settings, seed=0)
+    lines = ["# frequency_Hz: 1.0e9", "time_s,current_A,pump_on"]
+    lines += [f"{float(a):g},{float(b)!r},{int(c)}" for a, b, c in zip(t, i, on, strict=True)]
+    with pytest.raises(CertificationRefused, match="slow.csv: .*settling transient.*longer segments"):
+        certify_run(load_run(_run(tmp_path, {"slow.csv": lines})), seed=1, fast=True)
+
+
 def test_cli_refusal_is_one_line_and_writes_nothing(tmp_path, capsys):
     run = _run(tmp_path, {"rec.csv": _record_lines(header=())})
     out = tmp_path / "out"
@@ -191,10 +205,17 @@ def test_certify_example_pump_run(tmp_path, capsys):
     assert scans["scan_exit_gate.csv"]["model_comparison"]["preferred"] == "decay_cascade"
     assert scans["map_exit_entrance.csv"]["best"]["gate2_V"] == pytest.approx(-0.25)
     assert record["sections"]["error_counting"]["errors"] == 2
-    assert html.count("<svg") >= 4
-    for words in ("What was verified", "Allan deviation", "not an accreditation", "Electrical standards"):
+    assert html.count("<svg") >= 5
+    for words in ("What was verified", "Allan deviation", "not an accreditation", "Electrical standards",
+                  "Settling transient, measured from the record"):
         assert words in html
     assert record["item"]["identifier"] == "LQ-P12"
+    # The settling transient is measured: the stated 20 s is only the floor of the discard, and
+    # what the fits predict in the kept readings has its own budget row.
+    st = r["record"]["settling_transient"]
+    assert st["discard_s"] >= 20.0 and st["minimum_discard_s"] == 20.0
+    assert st["components"][0]["resolved"]
+    assert "settling transient left after the discard" in quantities
 
 
 def test_same_pump_run_same_bytes(tmp_path):

@@ -81,7 +81,8 @@ def test_noise_free_exponential_transient_and_drift_are_recovered():
         return np.where(state == 1, -80e-15, 35e-15) * np.exp(-since / 3.0)
 
     t, i, on = _record(50, 16, transient=transient, drift=3e-17)
-    fit = S._fit(S._window_sums(_stacked(t, i, on), 1.0), S._tau_grid(_stacked(t, i, on)), None, 1.0)
+    fit = S._fit(S._window_sums(_stacked(t, i, on), 1.0), S._tau_grid(_stacked(t, i, on), 1.0),
+                 None, 1.0)
     assert fit.tau_s == pytest.approx(3.0, rel=1e-4)
     # Amplitudes are referred to the start of the fitted window, here 1 s after the switch.
     assert fit.amplitude_on_a == pytest.approx(-80e-15 * math.exp(-1 / 3.0), rel=1e-4)
@@ -154,11 +155,13 @@ def test_transient_as_slow_as_the_segments_allow_is_refused():
 
 
 def test_unresolved_transient_that_dominates_the_uncertainty_is_refused():
-    # A switch-on transient (100 fA, τ = 3 s) in 10 s segments under 100 fA of noise per
-    # reading: not resolved, and the bias it could leave outweighs the scatter of the result.
+    # A switch-on transient (100 fA, τ = 1.5 s) in 8 s segments under 100 fA of noise per
+    # reading. With this noise draw the fit does not resolve it, and the bias it could leave
+    # outweighs the scatter of the result (other draws of this setting resolve it, or find it too
+    # slow for the segments: refused either way, see the test above).
     def slow(since, state):
-        return np.where(state == 1, 100e-15, 0.0) * np.exp(-since / 3.0)
+        return np.where(state == 1, 100e-15, 0.0) * np.exp(-since / 1.5)
 
-    t, i, on = _record(10, 30, transient=slow, noise=100e-15, seed=1)
+    t, i, on = _record(8, 30, transient=slow, noise=100e-15, seed=2)
     with pytest.raises(R.RecordError, match="cannot be resolved.*record longer segments or more"):
         R.analyse_record(t, i, on, 1.0e9, 1, seed=1, monte_carlo_draws=20_000)

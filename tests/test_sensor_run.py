@@ -392,7 +392,7 @@ def test_job_with_resistance_and_pressure_logs(monkeypatch):
     assert all(abs(c["relative_difference"]) < 1e-6 for c in cross)
     assert cross[0]["pressure_standard_uncertainty_Pa"] == 25
     table = outcome.extra_files["calibration_table.csv"].decode().splitlines()
-    assert table[0] == sr.TABLE_HEADER and len(table) == 10
+    assert table[0] == sr.CALIBRATION_TABLE_HEADER and len(table) == 10
     assert any("bridge resistance-scale" in d for d in outcome.deviations)
     assert "<svg" in outcome.plots["sensor calibration curve and deviations of the points"]
 

@@ -415,6 +415,21 @@ class ModelEdgeError(SweepError):
         self.u_estimate = u_estimate
 
 
+class ResidualStructureError(SweepError):
+    """The residuals are smooth structure, not noise: the model does not describe the sweep."""
+
+    def __init__(self, message: str):
+        super().__init__(message, field="conductance_S")
+
+
+#: A noise model this close to a deterministic curve (AR(1) ρ at its 0.95 clip, or a 1/f^α
+#: spectrum steeper than α = 2.3, i.e. beyond a random walk's 1/f²) is structure, not noise; the
+#: fit is refused. (The 1/f share of the variance is no guide: with small α the power law alone
+#: also fits white-ish noise.)
+STRUCTURE_RHO = 0.94
+STRUCTURE_ALPHA = 2.3
+
+
 class PointError(SweepError):
     """One or more data points cannot be used as they are; ``points`` are their indices."""
 
@@ -562,27 +577,13 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
     resid = ((data.conductance - curve) * _weights(data))[order]
     r1 = lag1_correlation(resid)
     noise = choose_noise_model(resid)
+    if (noise.kind == "AR(1)" and abs(noise.rho) >= STRUCTURE_RHO) or (
+            noise.kind == "1/f + white" and noise.alpha >= STRUCTURE_ALPHA):
+        raise ResidualStructureError(_structure_message(shape, data, ls, noise, r1))
     if noise.kind != "white":
         data = replace(data, noise_correlation=noise.rho, noise_factor=noise.factor)
         ls = least_squares_fit(shape, data, ls["theta"])
-    theta = ls["theta"]
-    _, jac_w, e_w = _model_parts(shape, data, theta)
-    s_curve = _design(shape, data, theta[None, :])[0][:, 0] * ls["amplitudes"][0]
-    centred = data.bias - theta[2]
-    v_half = fwhm_volts(shape, data.setup, theta[0], theta[1])
-    templates = {
-        "asymmetry": (whiten(data, np.sign(centred) * (ls["amplitudes"][0] - s_curve)),
-                      "the dip is asymmetric: check for a thermal gradient along the array, a drifting "
-                      "bias offset or background-charge jumps"),
-        "self-heating": (whiten(data, _heating_template(shape, data, theta, ls, v_half)),
-                         "the residuals show the bias-dependent broadening of self-heating: give the "
-                         "electron-phonon coupling (island volume and constant) to fit a heating model"),
-    }
-    if not data.background:
-        templates["slope"] = (whiten(data, centred * s_curve),
-                              "a linear slope under the dip: fit it with the linear background option "
-                              "(linear_background)")
-    tests = template_tests(jac_w, e_w, templates)
+    tests, jac_w, e_w = _cause_tests(shape, data, ls)
     inflation = float(hac_inflation(jac_w, e_w)[0])
     r1_after = lag1_correlation(e_w)
     findings = []
@@ -610,6 +611,40 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
         background_added=background_added, findings=tuple(findings),
     )
     return data, ls, diagnosis
+
+
+def _cause_tests(shape: DipShape, data: SweepData, ls: dict):
+    """Named-cause templates (asymmetry, self-heating, slope) tested against the residuals at the
+    least-squares optimum ``ls`` in the data's noise model; also returns the whitened Jacobian and
+    residuals they were tested against."""
+    theta = ls["theta"]
+    _, jac_w, e_w = _model_parts(shape, data, theta)
+    s_curve = _design(shape, data, theta[None, :])[0][:, 0] * ls["amplitudes"][0]
+    centred = data.bias - theta[2]
+    v_half = fwhm_volts(shape, data.setup, theta[0], theta[1])
+    templates = {
+        "asymmetry": (whiten(data, np.sign(centred) * (ls["amplitudes"][0] - s_curve)),
+                      "the dip is asymmetric: check for a thermal gradient along the array, a drifting "
+                      "bias offset or background-charge jumps"),
+        "self-heating": (whiten(data, _heating_template(shape, data, theta, ls, v_half)),
+                         "the residuals show the bias-dependent broadening of self-heating: give the "
+                         "electron-phonon coupling (island volume and constant) to fit a heating model"),
+    }
+    if not data.background:
+        templates["slope"] = (whiten(data, centred * s_curve),
+                              "a linear slope under the dip: fit it with the linear background option "
+                              "(linear_background)")
+    return template_tests(jac_w, e_w, templates), jac_w, e_w
+
+
+def _structure_message(shape: DipShape, data: SweepData, ls: dict, noise, r1: float) -> str:
+    """Why a sweep whose residuals are structure is refused, with the likeliest named cause."""
+    tests = sorted(_cause_tests(shape, data, ls)[0], key=lambda t: -abs(t.t_statistic))
+    cause = (f"likely cause ({tests[0].cause}, t = {tests[0].t_statistic:.1f} under white noise): {tests[0].advice}"
+             if tests and tests[0].significant else "no named cause fits; check the model choice and the set-up")
+    return (f"the residuals are smooth structure, not noise (lag-1 correlation {r1:.2f}; as noise they would "
+            f"need a {noise.describe()} spectrum): the {shape.name} model does not describe this sweep, "
+            f"so no temperature is certified from it; {cause}")
 
 
 def _heating_template(shape: DipShape, data: SweepData, theta: np.ndarray, ls: dict, v_half: float) -> np.ndarray:
@@ -771,6 +806,7 @@ __all__ = [
     "FitSettings",
     "ModelEdgeError",
     "PointError",
+    "ResidualStructureError",
     "SweepData",
     "SweepError",
     "SweepFit",

@@ -1,6 +1,6 @@
 """Fast full-tunnelling dip shape for long CBT arrays (N = 10–100), usable inside an MCMC.
 
-The exact orthodox master equation (analysis.cbt.tunnelling, PHYSICS.md 1.3) is exact at any u
+The exact orthodox master equation (analysis.cbt.tunnelling, docs/physics.md §1.3) is exact at any u
 but affordable only for short chains, while sensors have 10–100 junctions. This module bridges
 the gap in three steps, all precomputed by the committed script
 ``analysis/cbt/tables/make_tables.py`` (docs/models.md gives the commands):
@@ -126,7 +126,7 @@ def extrapolation_weights(n_junctions: int) -> tuple[float, float, float]:
     """Weights (w_2, w_3, w_4) of the exact tables D_2, D_3, D_4 of the 1/N² continuation C_N.
 
     N ≤ 4: the exact table itself. N > 4: C_N = D_4 + (D_4 − D_3)(1/16 − 1/N²)/(1/9 − 1/16), the
-    continuation in 1/N² through N = 3 and 4 (PHYSICS.md 1.3: the N-dependence of the exact
+    continuation in 1/N² through N = 3 and 4 (docs/physics.md §1.3: the N-dependence of the exact
     depth and width at u = 1 falls off close to 1/N²). For N = 5, 6 and longer chains the exact
     N = 5, 6 tables correct it (:func:`long_array_weights`).
     """
@@ -260,9 +260,11 @@ class FullTunnellingShape:
     """Full orthodox-tunnelling dip shape G/G_T(x, u) of a uniform chain of N junctions.
 
     A dip shape in the sense of analysis.cbt.models: ``shape(x, u)`` with x = eV/(N k_B T) and
-    u = ΔE/(k_B T), ΔE = ((N − 1)/N) e²/C, broadcasting x against u; vectorised (measured
-    3.3–3.8e6 points per second on a shared 2-core machine, benchmarks/bench_full_model.py).
-    Source: the orthodox master equation of PHYSICS.md 1.3 (Melsen et al., PRB 55, 10638 (1997)
+    u = ΔE/(k_B T), ΔE = ((N − 1)/N) e²/C, broadcasting x against u; evaluated through a grid
+    built once from the table spline (analysis.cbt.dip_grid; 1.3–1.5e7 points per second for
+    16–64 walkers on a shared 2-core machine, about 5x the spline's own rate,
+    benchmarks/bench_full_model.py).
+    Source: the orthodox master equation of docs/physics.md §1.3 (Melsen et al., PRB 55, 10638 (1997)
     for arrays), solved exactly for N = 2–6 and continued to longer chains (module docstring).
 
     Validated for 0 ≤ u ≤ :data:`MAX_U` (= ``max_u``; refused outside with
@@ -287,7 +289,7 @@ class FullTunnellingShape:
         if self.c0_ratio != 0.0:
             raise FullModelRangeError(
                 f"c0_ratio = {self.c0_ratio!r}: the full-model tables are for C_0 = 0 only; fit an "
-                "effective ΔE (PHYSICS.md 1.4) or solve short chains with "
+                "effective ΔE (docs/physics.md §1.4) or solve short chains with "
                 "analysis.cbt.tunnelling.ArrayDescription(c0_ratio=...)"
             )
         tables = _load_tables()

@@ -44,6 +44,10 @@ DETREND_WINDOW = 7
 MAX_OUTLIER_FRACTION = 0.05
 #: |t| of a residual template at and above which its cause is named.
 TEMPLATE_T_LIMIT = 4.0
+#: On white residuals the Newey–West variance ratio scatters by about √(2(2L/3 + 1)/n) ≈ 0.15
+#: (n = 401, L = 5; Newey & West 1987 for the Bartlett kernel's variance, from memory), so an
+#: inflation below 1.15 on a white noise model is noise, not structure.
+HAC_SIGNIFICANT = 1.15
 #: A bias value further than this many median spacings from every other point is refused.
 ISOLATED_BIAS_SPACINGS = 25.0
 
@@ -214,7 +218,9 @@ class ResidualDiagnosis:
 
     @property
     def noise_is_white(self) -> bool:
-        return self.noise_model == "white" and self.structure_inflation <= 1.0
+        """White noise model and no HAC inflation beyond its own sampling noise (see
+        :data:`HAC_SIGNIFICANT`)."""
+        return self.noise_model == "white" and self.structure_inflation <= HAC_SIGNIFICANT
 
     def template(self, cause: str) -> TemplateTest | None:
         return next((t for t in self.templates if t.cause == cause), None)

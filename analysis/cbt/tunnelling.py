@@ -2,7 +2,7 @@
 
 The analytic dip formulas (first order, Pekola et al. 1994; higher order, Farhangfar et al. 1997)
 are expansions in u = ΔE/(k_B T). This module solves the problem they approximate without any
-expansion: the stationary master equation of orthodox sequential tunnelling (PHYSICS.md 1.3;
+expansion: the stationary master equation of orthodox sequential tunnelling (docs/physics.md §1.3;
 Melsen, Hanke, Müller & Chao, PRB 55, 10638 (1997) for arrays) over the island-charge
 configurations n = (n_1 … n_{N-1}) of a chain of N junctions. It is exact for short chains
 (N ≲ 5, limited by the (2K+1)^(N-1) growth of the charge window) and is the reference that the
@@ -12,7 +12,7 @@ Everything is in reduced units, so the results plug straight into the team's dip
 
 * x = eV/(N k_B T), the bias per junction in units of k_B T/e (bias applied symmetrically,
   +V/2 on the left lead, −V/2 on the right one);
-* u = ΔE/(k_B T) with ΔE = ((N − 1)/N) e²/C, C the junction capacitance (PHYSICS.md 1.1), so the
+* u = ΔE/(k_B T) with ΔE = ((N − 1)/N) e²/C, C the junction capacitance (docs/physics.md §1.1), so the
   charging parameter of a junction is c = e²/(C k_B T) = u N/(N − 1);
 * conductance as G/G_T with G_T = 1/Σ_k R_k the high-bias conductance of the chain; currents as
   J = I Σ_k R_k e/(N k_B T), which tends to x at high bias.
@@ -55,7 +55,7 @@ class TunnellingModelError(ValueError):
 
 @dataclass(frozen=True)
 class ArrayDescription:
-    """A series chain of N tunnel junctions in the reduced description of PHYSICS.md 1.3.
+    """A series chain of N tunnel junctions in the reduced description of docs/physics.md §1.3.
 
     ``resistance_ratios`` are R_k / mean(R) (normalised here to mean 1; default all 1),
     ``c0_ratio`` is the island-to-ground capacitance C_0 over the junction capacitance C, and
@@ -114,7 +114,7 @@ class ArrayDescription:
         m = self.n_islands
         drive = np.zeros(m)
         # Island 1 couples to the left lead (+v/2) and island N−1 to the right lead (−v/2)
-        # through one junction capacitance each: φ = K (q + C_c V_lead), PHYSICS.md 1.3.
+        # through one junction capacitance each: φ = K (q + C_c V_lead), docs/physics.md §1.3.
         drive[0] += 0.5
         drive[-1] -= 0.5
         return self.inverse_capacitance() @ drive
@@ -122,7 +122,7 @@ class ArrayDescription:
     def junction_charging(self) -> np.ndarray:
         """(1/2)(K̃_aa + K̃_bb − 2 K̃_ab) for each junction (units of e²/C), leads contributing 0.
 
-        PHYSICS.md 1.3: for a uniform chain with C_0 = 0 every entry is (N − 1)/(2N).
+        docs/physics.md §1.3: for a uniform chain with C_0 = 0 every entry is (N − 1)/(2N).
         """
         k = self.inverse_capacitance()
         m = self.n_islands
@@ -141,7 +141,7 @@ def orthodox_rate_factor(y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """φ(y) = y/(e^y − 1) and its derivative φ'(y), y = ΔF/(k_B T).
 
     Orthodox theory: Γ = (k_B T/(e² R)) φ(ΔF/k_B T) for a tunnelling event that changes the free
-    energy by ΔF (PHYSICS.md 1.3; Melsen et al., PRB 55, 10638 (1997)). Near y = 0 both are taken
+    energy by ΔF (docs/physics.md §1.3; Melsen et al., PRB 55, 10638 (1997)). Near y = 0 both are taken
     from their Bernoulli series (φ = Σ B_n yⁿ/n!) to avoid cancellation; elsewhere from expm1, in a
     form that neither overflows for large positive y nor loses precision for large negative y.
     """
@@ -257,7 +257,7 @@ def _enumerate_states(array: ArrayDescription, c: float, window: ChargeWindow) -
     """Integer charge configurations inside the window's energy ellipsoid.
 
     The window is {q : (c / 2T) q·K̃q ≤ sigmas²/2} around ``window.centre`` (an energy bound of
-    sigmas²/2 k_B T_eff in the charging energy, PHYSICS.md 1.3). It is enumerated directly,
+    sigmas²/2 k_B T_eff in the charging energy, docs/physics.md §1.3). It is enumerated directly,
     one island at a time from the last, with the remaining budget of the quadratic form after
     the coordinates already fixed (the lattice enumeration of Fincke & Pohst, Math. Comp. 44,
     463 (1985)), so the cost is proportional to the states kept, not to a bounding box.
@@ -431,7 +431,7 @@ def _solve_on_window(
     boundary = np.zeros(n_states, dtype=bool)
     for k in range(1, n + 1):
         # "Forward" = one electron from node k to node k−1 (conventional current left to right
-        # for positive bias). ΔF = ψ_k − ψ_{k−1} + e²(K_aa + K_bb − 2K_ab)/2, PHYSICS.md 1.3.
+        # for positive bias). ΔF = ψ_k − ψ_{k−1} + e²(K_aa + K_bb − 2K_ab)/2, docs/physics.md §1.3.
         delta = np.zeros(m, dtype=np.int32)
         if k <= m:
             delta[k - 1] -= 1
@@ -533,7 +533,7 @@ def solve_master_equation(
 ) -> MasterEquationSolution:
     """Stationary orthodox master equation of a 1D array at reduced bias x and u = ΔE/(k_B T).
 
-    Orthodox sequential tunnelling, PHYSICS.md 1.3 (rates Γ = ΔF/(e²R[exp(ΔF/k_BT) − 1]),
+    Orthodox sequential tunnelling, docs/physics.md §1.3 (rates Γ = ΔF/(e²R[exp(ΔF/k_BT) − 1]),
     free-energy change ΔF = e(φ_a − φ_b) + (e²/2)(K_aa + K_bb − 2K_ab)); Melsen et al., PRB 55,
     10638 (1997) for arrays. Returns G/G_T (by the analytic derivative of the stationary
     solution, see module docstring) and the current.
@@ -595,7 +595,7 @@ def solve_bias_sweep(
 ) -> list[MasterEquationSolution]:
     """The master equation at each bias of ``xs`` in turn, each solve warm-started from the last.
 
-    Same physics and window rule as :func:`solve_master_equation` (PHYSICS.md 1.3); order the
+    Same physics and window rule as :func:`solve_master_equation` (docs/physics.md §1.3); order the
     biases so that neighbours are close (e.g. increasing) for the warm start to help. Every
     solution carries its own window-convergence indicators.
     """
@@ -610,7 +610,7 @@ def solve_bias_sweep(
 def conductance(
     x: np.ndarray | float, u: float, array: ArrayDescription, *, sigmas: float = DEFAULT_WINDOW_SIGMAS
 ) -> np.ndarray:
-    """G/G_T of the array at each reduced bias in ``x`` (exact master equation, PHYSICS.md 1.3)."""
+    """G/G_T of the array at each reduced bias in ``x`` (exact master equation, docs/physics.md §1.3)."""
     xs = np.atleast_1d(np.asarray(x, dtype=float))
     out = np.array([solve_master_equation(array, float(xi), u, sigmas=sigmas).conductance
                     for xi in xs.ravel()])
@@ -618,7 +618,7 @@ def conductance(
 
 
 def dip_depth(u: float, array: ArrayDescription, *, sigmas: float = DEFAULT_WINDOW_SIGMAS) -> float:
-    """ΔG/G_T = 1 − G(0)/G_T from the exact master equation (PHYSICS.md 1.3)."""
+    """ΔG/G_T = 1 − G(0)/G_T from the exact master equation (docs/physics.md §1.3)."""
     return 1.0 - solve_master_equation(array, 0.0, u, sigmas=sigmas).conductance
 
 
@@ -628,7 +628,7 @@ def full_width_half_depth(
     """FWHM of the dip in units of N k_B T/e (twice the x where G/G_T = 1 − depth/2).
 
     The half-depth point is bracketed between 0.5 and 3 times the first-order root x = 2.71958
-    (Pekola et al. 1994, PHYSICS.md 1.1) and found by Brent's method on the exact conductance.
+    (Pekola et al. 1994, docs/physics.md §1.1) and found by Brent's method on the exact conductance.
     Assumes a dip symmetric in bias (no offset charges or asymmetric resistances that break the
     x → −x symmetry); otherwise measures the positive-bias half only and doubles it.
     """

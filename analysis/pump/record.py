@@ -11,7 +11,9 @@ time of the on readings, ΔI_j = Ī_on,j − [(1 − w_j) Ī_off,j + w_j Ī_off,
 symmetric timing w_j = 1/2 and this is the expression above, and for any timing a linear drift
 cancels exactly.
 
-Readings just after each switch are dropped while the ammeter settles (:class:`SettlingRule`).
+Readings just after each switch are dropped while the ammeter settles (:class:`SettlingRule`);
+how many is decided by the transient measured in the record itself (:mod:`analysis.pump.settling`,
+:func:`measure_settling`), which also corrects for the tail left in the kept readings.
 
 Neighbouring ΔI_j share an off segment, so they are correlated even for white reading noise
 (lag-1 correlation Var(Ī_off)/4 over Var(ΔI), about +1/6 for equal segments; lags ≥ 2 are
@@ -102,11 +104,8 @@ def _segments(state: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return starts, stops
 
 
-def cycle_differences(
-    time_s: np.ndarray, current_a: np.ndarray, pump_on: np.ndarray,
-    settling: SettlingRule = SettlingRule(),
-) -> CycleDifferences:
-    """ΔI_j for every on segment that has an off segment before and after it (module docstring)."""
+def _checked(time_s: np.ndarray, current_a: np.ndarray, pump_on: np.ndarray):
+    """Validated arrays and the segment layout (start, stop, state of each run of equal state)."""
     t = np.asarray(time_s, dtype=float)
     i = np.asarray(current_a, dtype=float)
     on = np.asarray(pump_on)
@@ -127,7 +126,15 @@ def cycle_differences(
         raise RecordError("the record has no pump-off segment, so the ammeter offset is unknown")
     if not np.any(states == 1):
         raise RecordError("the record has no pump-on segment")
+    return t, i, on, starts, stops, states
 
+
+def cycle_differences(
+    time_s: np.ndarray, current_a: np.ndarray, pump_on: np.ndarray,
+    settling: SettlingRule = SettlingRule(),
+) -> CycleDifferences:
+    """ΔI_j for every on segment that has an off segment before and after it (module docstring)."""
+    t, i, on, starts, stops, states = _checked(time_s, current_a, pump_on)
     # Time since the segment began (the first reading of a segment is the switch).
     seg_index = np.repeat(np.arange(starts.size), stops - starts)
     since = t - t[starts][seg_index]
@@ -141,6 +148,39 @@ def cycle_differences(
     counts = np.bincount(seg_index, weights=keep, minlength=starts.size)
     sums = np.bincount(seg_index, weights=np.where(keep, i, 0.0), minlength=starts.size)
     tsum = np.bincount(seg_index, weights=np.where(keep, t, 0.0), minlength=starts.size)
+    return _from_segment_sums(t, starts, states, counts, sums, tsum, settling)
+
+
+class _SegmentSums:
+    """Per-segment sums of the readings kept by any settling time, from cumulative sums: each
+    threshold costs a search per segment instead of a pass over the record (used when the
+    settling analysis tries many discards on a long record)."""
+
+    def __init__(self, time_s: np.ndarray, current_a: np.ndarray, pump_on: np.ndarray) -> None:
+        t, i, _, starts, stops, states = _checked(time_s, current_a, pump_on)
+        self.t, self.starts, self.stops, self.states = t, starts, stops, states
+        seg_index = np.repeat(np.arange(starts.size), stops - starts)
+        self.since = t - t[starts][seg_index]
+        # One sorted key for the whole record: segment number, then time since its switch.
+        self.span = 2.0 * (float(self.since.max()) + 1.0)
+        self.key = seg_index * self.span + self.since
+        self.ci = np.concatenate(([0.0], np.cumsum(i)))
+        self.ct = np.concatenate(([0.0], np.cumsum(t)))
+
+    def cycles(self, seconds: float) -> CycleDifferences:
+        """The same as :func:`cycle_differences` with SettlingRule(seconds=seconds)."""
+        # Within a segment `since` increases, so the first kept reading is found by bisection.
+        first = np.searchsorted(self.key, np.arange(self.starts.size) * self.span + seconds)
+        counts = (self.stops - first).astype(float)
+        sums = self.ci[self.stops] - self.ci[first]
+        tsum = self.ct[self.stops] - self.ct[first]
+        return _from_segment_sums(self.t, self.starts, self.states, counts, sums, tsum,
+                                  SettlingRule(seconds=seconds))
+
+
+def _from_segment_sums(t: np.ndarray, starts: np.ndarray, states: np.ndarray, counts: np.ndarray,
+                       sums: np.ndarray, tsum: np.ndarray, settling: SettlingRule
+                       ) -> CycleDifferences:
     with np.errstate(invalid="ignore", divide="ignore"):
         means = sums / counts
         tmeans = tsum / counts
@@ -676,16 +716,17 @@ def measure_settling(
 ) -> S.SettlingAnalysis:
     """The settling transient of the record and the discard it calls for
     (:mod:`analysis.pump.settling`). ``other_u_a`` is the rest of the result's standard
-    uncertainty (the chain's), in amperes of indicated current, so that the bias target is a tenth
-    of the whole standard uncertainty; ``floor`` the smallest discard allowed (a fraction rule
+    uncertainty (the chain's), in amperes of indicated current, so that the discard minimises the
+    whole standard uncertainty; ``floor`` the smallest discard allowed (a fraction rule
     counts as that fraction of the median segment)."""
     t = np.asarray(time_s, dtype=float)
     i = np.asarray(current_a, dtype=float)
     on = np.asarray(pump_on).astype(np.int8)
     starts, stops = _segments(on)
+    fast = _SegmentSums(t, i, on)
 
     def weights_and_u(d: float) -> tuple[np.ndarray, float]:
-        cyc = cycle_differences(t, i, on, SettlingRule(seconds=d))
+        cyc = fast.cycles(d)
         ta = type_a_autocorrelated(cyc.differences, first_uncorrelated_lag=2)
         return cyc.segment_weights, math.hypot(ta.standard_uncertainty, other_u_a)
 

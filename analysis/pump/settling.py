@@ -38,15 +38,25 @@ and the delete-a-group jackknife variance u² = (G − 1)/G Σ_g (θ_(g) − θ�
 An Introduction to the Bootstrap (1993), ch. 11, eq. 11.5 for G = n) of every fitted quantity,
 including the residual bias b(d), uses the record's own noise, whatever its colour.
 
-Choice of the discard. The discard d is the smallest one (never less than the operator's stated
-settling time) for which the bound |b̂(d)| + t_{0.975,G−1} u(b̂(d)) is at most a tenth of the
-standard uncertainty of the result; the bound enters the budget as a rectangular allowance.
-Because the fitted shape is only an approximation of the real transient (two time constants, a
-filter response, an overshoot), the fit is repeated over the readings from d/2 onwards until the
-discard no longer grows: what decides the residual bias is the tail near and beyond d, and a fit
-over that window follows the slowest component present there rather than the fast bulk of the
-transient. If no discard leaving at least a fifth of each segment meets the bound — a transient
-that cannot be resolved, or segments too short to outlast it — the record is refused.
+Peeling. The fitted shape only approximates a real transient (two time constants, a filter
+response, an overshoot). When a fit is resolved, the next fit starts where that one's transient
+has fallen to the noise of one stacked position and looks for a slower component the faster one
+hid (the method of residuals for sums of exponentials; common practice, no source); peeling stops
+at the first fit that is not resolved. What decides the residual bias is the tail near and beyond
+the discard, and a late window follows the slowest component there.
+
+Correction and choice of the discard (the correction variant of "fit the asymptotic levels with
+the shared transient"). At a discard d — never less than the operator's stated settling time, nor
+than the start of the last fit's window — each resolved fit predicts b̂(d) with a jackknife
+uncertainty; an unresolved fit predicts nothing (τ is not fixed) and contributes an allowance of
+estimate zero whose standard uncertainty is the largest fixed-τ jackknife u(b̂_τ(d)) over its τ
+range. The fit allowing the largest |b̂| + t_{0.975,G−1} u sets the correction and its budget row;
+d is the candidate that minimises the combined u(d)² + u(b̂(d))².
+
+Refusals: a resolved fit whose τ reaches the top of its range (a quarter of the segment, at most
+half the window): the transient may be slower still and the segments cannot outlast it; or an
+unresolved fit whose allowance exceeds the rest of the uncertainty at the best discard. A
+resolved transient whose correction dominates is certified with a warning.
 """
 
 from __future__ import annotations
@@ -58,8 +68,6 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
-#: The discard must bring the residual bias bound below this fraction of the standard uncertainty.
-BIAS_FRACTION_OF_U = 0.1
 #: At least this fraction of every segment must remain after the discard.
 MIN_KEPT_FRACTION = 0.2
 #: Largest time constant searched, as a fraction of the median segment duration: a slower
@@ -248,21 +256,18 @@ def _fit(sums: list[_Sums], tau_grid: np.ndarray, leave_out: int | None, start_s
     return TransientFit(float(theta[0]), float(theta[1]), tau, float(theta[2]), start_s)
 
 
-def _tau_grid(rec: StackedRecord) -> np.ndarray:
+def _tau_grid(rec: StackedRecord, start_s: float = 0.0) -> np.ndarray:
+    """Time constants searched for a window starting ``start_s`` after the switch: up to
+    MAX_TAU_FRACTION of the segment, and no more than half the window (a slower exponential
+    cannot be told from a level and a slope there; an earlier, longer window is where it shows)."""
     lo = 0.3 * rec.reading_interval_s
-    hi = max(MAX_TAU_FRACTION * rec.segment_duration_s, 2 * lo)
+    hi = max(min(MAX_TAU_FRACTION * rec.segment_duration_s,
+                 0.5 * (rec.segment_duration_s - start_s)), 2 * lo)
     return np.geomspace(lo, hi, 48)
 
 
 # --------------------------------------------------------------------------------------------
 # Residual bias of a discard
-
-
-def _mean_decay(since: np.ndarray, d: float, tau: float, start: float) -> float:
-    """ḡ(d): mean of exp(−(t_k − w)/τ) over the positions with t_k ≥ d (eq. 2, amplitudes
-    referred to the window start w)."""
-    kept = since[since >= d]
-    return float(np.mean(np.exp(-(kept - start) / tau))) if kept.size else 0.0
 
 
 def residual_bias(rec: StackedRecord, fit: TransientFit, d: float,
@@ -272,12 +277,28 @@ def residual_bias(rec: StackedRecord, fit: TransientFit, d: float,
 
     ``segment_weight[s]`` is segment s's total weight in the mean difference (+1/J for each on
     segment, −(1 − w_j)/J and −w_j/J for the off segments of cycle j, J cycles)."""
-    total = 0.0
-    for s in rec.stacks:
-        w = float(np.sum(segment_weight[s.segments]))
-        if w:
-            a = fit.amplitude_on_a if s.direction == 1 else fit.amplitude_off_a
-            total += w * a * _mean_decay(s.since, d, fit.tau_s, fit.window_start_s)
+    return float(residual_biases(rec, [fit], d, _stack_weights(rec, segment_weight))[0])
+
+
+def _stack_weights(rec: StackedRecord, segment_weight: np.ndarray) -> np.ndarray:
+    return np.array([float(np.sum(segment_weight[s.segments])) for s in rec.stacks])
+
+
+def residual_biases(rec: StackedRecord, fits: list[TransientFit], d: float,
+                    stack_weight: np.ndarray) -> np.ndarray:
+    """:func:`residual_bias` for many fits at once (the jackknife replicates), with the
+    per-stack weights already summed."""
+    tau = np.array([f.tau_s for f in fits])
+    w0 = np.array([f.window_start_s for f in fits])
+    a_on = np.array([f.amplitude_on_a for f in fits])
+    a_off = np.array([f.amplitude_off_a for f in fits])
+    total = np.zeros(len(fits))
+    for s, w in zip(rec.stacks, stack_weight, strict=True):
+        kept = s.since[s.since >= d]
+        if w == 0 or kept.size == 0:
+            continue
+        g = np.exp(-(kept[None, :] - w0[:, None]) / tau[:, None]).mean(axis=1)
+        total += w * (a_on if s.direction == 1 else a_off) * g
     return total
 
 
@@ -325,8 +346,8 @@ class SettlingAnalysis:
     minimum_discard_s: float  # the operator's stated settling time (the floor)
     residual_bias_a: float  # b̂(d) of the component that sets the bound, not corrected for
     residual_bias_u_a: float  # its jackknife standard uncertainty
-    bias_bound_a: float  # |b̂| + t u: half-width of the rectangular budget allowance
-    target_a: float  # BIAS_FRACTION_OF_U × the standard uncertainty it was compared with
+    bias_bound_a: float  # |b̂| + t u: how large the residual bias could be (reported)
+    other_u_a: float  # standard uncertainty of the rest of the result at the chosen discard
     profile_since_s: dict[int, np.ndarray]  # stacked mean profile for the plot, by direction
     profile_values_a: dict[int, np.ndarray]  # mean of (reading − segment level)
     profile_noise_a: float  # standard error of one stacked position
@@ -342,15 +363,10 @@ class SettlingAnalysis:
         return self.components[0].resolved
 
     def describe(self) -> str:
-        parts = []
-        for c in self.components:
-            f = c.fit
-            parts.append(f"A_on = {f.amplitude_on_a * 1e15:.3g} ± {c.amplitude_on_u_a * 1e15:.2g} fA, "
-                         f"A_off = {f.amplitude_off_a * 1e15:.3g} ± {c.amplitude_off_u_a * 1e15:.2g} fA, "
-                         f"τ = {f.tau_s:.3g} ± {c.tau_u_s:.2g} s (fitted from {f.window_start_s:g} s "
-                         "after the switch, amplitudes there)")
-        return ("settling transient measured from the record: " + "; ".join(parts)
-                + f"; readings within {self.discard_s:g} s after each switch dropped")
+        f = self.fit
+        return (f"readings within {self.discard_s:g} s after each pump switch dropped, the discard "
+                f"chosen from the settling transient measured in the record (first fit: τ = "
+                f"{f.tau_s:.3g} s; {len(self.components)} fit(s) in all)")
 
     def as_dict(self) -> dict:
         return {
@@ -358,7 +374,7 @@ class SettlingAnalysis:
             "components": [c.as_dict() for c in self.components],
             "discard_s": self.discard_s, "minimum_discard_s": self.minimum_discard_s,
             "residual_bias_A": self.residual_bias_a, "residual_bias_u_A": self.residual_bias_u_a,
-            "residual_bias_bound_A": self.bias_bound_a, "bias_target_A": self.target_a,
+            "residual_bias_bound_A": self.bias_bound_a, "other_standard_uncertainty_A": self.other_u_a,
             "jackknife_blocks": self.blocks, "transient_limits_uncertainty": self.limiting,
         }
 
@@ -387,7 +403,8 @@ def _profile(rec: StackedRecord) -> tuple[dict, dict, float]:
     return since, vals, (float(np.median(noise)) if noise else 0.0)
 
 
-def _component(rec: StackedRecord, start: float, grid: np.ndarray) -> TransientComponent | None:
+def _component(rec: StackedRecord, start: float) -> TransientComponent | None:
+    grid = _tau_grid(rec, start)
     sums = _window_sums(rec, start)
     if not sums:
         return None
@@ -396,12 +413,13 @@ def _component(rec: StackedRecord, start: float, grid: np.ndarray) -> TransientC
     ua = _jackknife_u(np.array([r.amplitude_on_a for r in reps]))
     uo = _jackknife_u(np.array([r.amplitude_off_a for r in reps]))
     ut = _jackknife_u(np.array([r.tau_s for r in reps]))
-    # Resolution is judged on the transient at the window start, A exp(−w/τ): the amplitude at
-    # t = 0 of a window that starts late is an extrapolation that τ's uncertainty inflates.
+    # Resolution is judged on the transient at the window start, A_w, with τ held at τ̂: the fit
+    # is then linear and its jackknife that of a smooth statistic (with τ free, replicates that
+    # jump between optima of a weak transient inflate it).
+    held = [_fixed(sums, np.array([fit.tau_s]), b, start)[0] for b in range(rec.blocks)]
     z = 0.0
     for direction in (1, 0):
-        at = np.array([float(r.shape(start, direction)) for r in reps])
-        u = _jackknife_u(at)
+        u = _jackknife_u(np.array([float(r.shape(start, direction)) for r in held]))
         v = abs(float(fit.shape(start, direction)))
         z = max(z, v / u if u > 0 else (math.inf if v > 0 else 0.0))
     resolved = bool(z >= RESOLVED_Z)
@@ -437,8 +455,8 @@ def choose_discard(
     where that fit's transient has fallen to the noise of one stacked position, and so looks for a
     slower component the faster one hid (the method of residuals for sums of exponentials; common
     practice, no source); peeling stops at the first fit that is not resolved. The discard is
-    never shorter than the start of the last resolved fit's window, so that every kept reading
-    lies inside every window used. At each discard d the fit that allows the largest residual bias
+    never shorter than the start of the last fit's window, so that every kept reading lies
+    inside every window used. At each discard d the fit that allows the largest residual bias
     |b̂(d)| + t u(b̂(d)) (eq. 2, jackknife u) sets the correction: a fast component fitted over the
     whole segment cannot hide a slower one a later window saw, and a later window whose fit
     wandered to a short τ cannot hide the slow tail an earlier fit measured. Among the discards
@@ -446,8 +464,9 @@ def choose_discard(
     u(d)² + u(b̂(d))², u(d) the Type A (and chain) uncertainty with readings before d dropped.
     The mean difference is corrected by b̂(d).
 
-    A fit that is not resolved leaves τ open: each τ of the searched range (at fixed τ the fit is
-    linear) is then a hypothesis, and the one allowing the largest bias sets the correction.
+    A fit that is not resolved leaves τ open and is not corrected for: each τ of the searched
+    range (at fixed τ the fit is linear) is a hypothesis, and the largest jackknife u(b̂_τ) over
+    them is the standard uncertainty of its allowance (estimate zero).
 
     Refused (SettlingError) when a resolved fit's τ reaches the top of the searched range (the
     transient may be slower still), or when, at the chosen discard, the transient's uncertainty exceeds the
@@ -457,7 +476,6 @@ def choose_discard(
 
     ``weights_and_u(d)`` returns the per-segment weights of the mean cycle difference and the
     standard uncertainty (A, indicated) the result would have with discard d."""
-    grid = _tau_grid(rec)
     positions = np.unique(np.concatenate([s.since for s in rec.stacks]))
     first = positions[positions > 0.5 * rec.reading_interval_s]
     if first.size == 0:
@@ -471,7 +489,7 @@ def choose_discard(
     components: list[TransientComponent] = []
     start = float(first[0])
     while len(components) < max_components:
-        c = _component(rec, start, grid)
+        c = _component(rec, start)
         if c is None:
             break
         components.append(c)
@@ -487,9 +505,9 @@ def choose_discard(
         start = float(nxt[0])
     if not components:
         raise SettlingError("no segment is long enough to fit the settling transient")
-    # The first fit and every resolved later one; an unresolved last fit only says that nothing
-    # more can be seen (its jackknife, over a τ the data do not fix, is not a smooth statistic).
-    used = [components[0]] + [c for c in components[1:] if c.resolved]
+    # Every fit counts; an unresolved one through its fixed-τ hypotheses (its jackknife with τ
+    # free, over a τ the data do not fix, is not a smooth statistic).
+    used = components
     tq = float(stats.t.ppf(0.975, rec.blocks - 1))
     low = max(minimum_s, float(first[0]), used[-1].fit.window_start_s)
     candidates = positions[(positions >= low) & (positions <= latest)]
@@ -497,16 +515,23 @@ def choose_discard(
         candidates = np.array([low])
     def evaluate(d: float) -> tuple[float, float, float, float, float]:
         weights, u = weights_and_u(d)
+        sw = _stack_weights(rec, weights)
         # The component that allows the largest residual bias sets the correction.
         worst = None
         for c in used:
-            for fit, reps in c.hypotheses:
-                b = residual_bias(rec, fit, d, weights)
-                ub = _jackknife_u(np.array([residual_bias(rec, r, d, weights) for r in reps]))
-                if worst is None or abs(b) + tq * ub > abs(worst[0]) + tq * worst[1]:
-                    worst = (b, ub)
-        b, ub = worst
-        return (d, b, ub, u, math.hypot(u, ub))
+            if c.resolved:
+                bs = residual_biases(rec, [c.fit, *c.replicates], d, sw)
+                b, ub = float(bs[0]), _jackknife_u(bs[1:])
+            else:
+                # Not resolved: no correction, an allowance as large as the worst τ allows.
+                b = 0.0
+                ub = 0.0
+                for _, reps in c.alternatives:
+                    ub = max(ub, _jackknife_u(residual_biases(rec, list(reps), d, sw)))
+            if worst is None or abs(b) + tq * ub > abs(worst[0]) + tq * worst[1]:
+                worst = (b, ub, c)
+        b, ub, c = worst
+        return (d, b, ub, u, c, math.hypot(u, ub))
 
     # Every candidate when there are few; else every k-th, then all between the best one's
     # neighbours (the total uncertainty varies slowly with d).
@@ -517,20 +542,20 @@ def choose_discard(
         if k not in tried:
             tried[k] = evaluate(float(candidates[k]))
     best = min(tried.values(), key=lambda x: x[-1])
-    d, b, ub, u, _ = best
+    d, b, ub, u, setter, _ = best
     result = SettlingAnalysis(tuple(components), d, minimum_s, b, ub, abs(b) + tq * ub,
-                              BIAS_FRACTION_OF_U * u, since, vals, noise, rec.blocks, ub > u)
+                              u, since, vals, noise, rec.blocks, ub > u)
     slow = [c for c in used if c.resolved and c.at_limit]
     if slow:
         fit = slow[0].fit
         raise SettlingError(
             f"the settling transient after each switch is too slow for these segments: fitted "
             f"from {fit.window_start_s:g} s after the switch, its time constant reaches the "
-            f"largest the analysis accepts ({fit.tau_s:.3g} s, a quarter of the "
-            f"{rec.segment_duration_s:g} s segment), so it may be slower still and its tail in "
+            f"largest the analysis accepts ({fit.tau_s:.3g} s for the "
+            f"{rec.segment_duration_s:g} s segments), so it may be slower still and its tail in "
             "the kept readings cannot be bounded; record longer segments", result)
-    if ub > u and not used[-1].resolved:
-        c = used[-1]
+    if ub > u and not setter.resolved:
+        c = setter
         fit = c.fit
         what = ("the transient is resolved" if c.resolved else
                 "the transient cannot be resolved from the noise")

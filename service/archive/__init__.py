@@ -26,7 +26,6 @@ import logging
 import math
 import os
 import platform
-import tempfile
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import asdict, dataclass, field
 from importlib import metadata as importlib_metadata
@@ -228,6 +227,48 @@ class LabKey:
             "public_key_pem": self.public_pem(),
         }
 
+    @classmethod
+    def load_for_reading(cls, key_dir: str | os.PathLike[str]) -> LabKey | PublicLabKey:
+        """The lab key of a read-only archive copy: the private key if the copy has it, else
+        only the public key (all that verifying needs); nothing is created."""
+        key_dir = Path(key_dir)
+        private_path = key_dir / cls.PRIVATE_NAME
+        if private_path.is_file():
+            loaded = serialization.load_pem_private_key(private_path.read_bytes(), password=None)
+            if isinstance(loaded, Ed25519PrivateKey):
+                return cls(loaded)
+        public_path = key_dir / cls.PUBLIC_NAME
+        if not public_path.is_file():
+            raise ArchiveError(
+                f"{key_dir} holds neither the lab's private nor its public key "
+                f"({cls.PUBLIC_NAME}); verification needs the public key"
+            )
+        public = serialization.load_pem_public_key(public_path.read_bytes())
+        if not isinstance(public, Ed25519PublicKey):
+            raise ArchiveError(f"{public_path} does not hold an Ed25519 public key")
+        return PublicLabKey(public)
+
+
+class PublicLabKey:
+    """The lab's public key alone: verifies, never signs (a read-only archive copy)."""
+
+    def __init__(self, public: Ed25519PublicKey) -> None:
+        self._public = public
+        self.public_raw: bytes = public.public_bytes(
+            serialization.Encoding.Raw, serialization.PublicFormat.Raw
+        )
+        self.key_id: str = sha256_hex(self.public_raw)[:16]
+
+    def sign(self, data: bytes) -> str:
+        raise ArchiveError("this archive copy is open read-only and holds no signing key", 503)
+
+    def public_pem(self) -> str:
+        return self._public.public_bytes(
+            serialization.Encoding.PEM, serialization.PublicFormat.SubjectPublicKeyInfo
+        ).decode("ascii")
+
+    public_info = LabKey.public_info
+
 
 def _write_exclusive(path: Path, data: bytes, mode: int) -> None:
     fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, mode)
@@ -335,6 +376,115 @@ class ReproduceReport:
         }
 
 
+@dataclass
+class SignedFacts:
+    """What the signed chain entries say about certificates (filled while scanning the chain)."""
+
+    #: certificate id -> (sequence, body) of its issue entry
+    issues: dict[str, tuple[int, dict[str, Any]]] = field(default_factory=dict)
+    #: certificate id -> (sequence, body) of its withdrawal entry
+    withdrawals: dict[str, tuple[int, dict[str, Any]]] = field(default_factory=dict)
+    #: certificate id -> id of the issued revision that replaces it
+    successors: dict[str, str] = field(default_factory=dict)
+    #: sequences of entries that failed a check (their content cannot be trusted)
+    damaged: list[int] = field(default_factory=list)
+    checks_by_sequence: dict[int, list[Check]] = field(default_factory=dict)
+    naming: dict[str, list[int]] = field(default_factory=dict)
+    last: int = 0
+
+    def add(self, sequence: int, entry: Mapping[str, Any]) -> None:
+        body = entry.get("body")
+        if not isinstance(body, dict):
+            return
+        cid = body.get("certificate_id")
+        if not isinstance(cid, str):
+            return
+        self.naming.setdefault(cid, []).append(sequence)
+        if entry.get("entry_type") == "issue":
+            self.issues.setdefault(cid, (sequence, body))
+            replaces = body.get("replaces")
+            if isinstance(replaces, str):
+                self.successors[replaces] = cid
+                self.naming.setdefault(replaces, []).append(sequence)
+        elif entry.get("entry_type") == "withdrawal":
+            self.withdrawals.setdefault(cid, (sequence, body))
+
+    def sequences_naming(self, certificate_id: str) -> list[int]:
+        return list(self.naming.get(certificate_id, []))
+
+
+@dataclass
+class DatabaseCopies:
+    """The rows a consistency check compares with the signed entries, fetched in bulk."""
+
+    files: dict[str, list[dict[str, Any]]]
+    runs: dict[str, Any]
+    users: dict[int, str]
+
+    @classmethod
+    def load(cls, conn: Connection, run_id: str | None = None) -> DatabaseCopies:
+        file_query = select(st.run_files.c.run_id, st.run_files.c.name, st.run_files.c.sha256,
+                            st.run_files.c.size).order_by(st.run_files.c.run_id, st.run_files.c.name)
+        run_query = select(st.runs)
+        if run_id is not None:
+            file_query = file_query.where(st.run_files.c.run_id == run_id)
+            run_query = run_query.where(st.runs.c.id == run_id)
+        files: dict[str, list[dict[str, Any]]] = {}
+        for r in conn.execute(file_query):
+            files.setdefault(r.run_id, []).append({"name": r.name, "sha256": r.sha256, "size": r.size})
+        runs = {r.id: r for r in conn.execute(run_query)}
+        users = dict(conn.execute(select(st.users.c.id, st.users.c.username)).all())
+        return cls(files, runs, users)
+
+
+def _loads_or(text: str | None) -> Any:
+    """A JSON column's value, or a marker that it does not parse (so it compares unequal)."""
+    try:
+        return json.loads(text) if text is not None else None
+    except ValueError:
+        return ("unparsable", text)
+
+
+def _short(value: Any) -> str:
+    text = repr(value) if not isinstance(value, dict | list) else json.dumps(value, sort_keys=True)
+    return text if len(text) <= 80 else text[:77] + "…"
+
+
+class IntegrityError(ArchiveError):
+    """Stored data that fails its check against the signed entry when read (HTTP 409)."""
+
+    def __init__(self, message: str) -> None:
+        super().__init__(
+            message + "; nothing is shown from it — an auditor should run verify", status=409
+        )
+
+
+def _signed_view(body: Mapping[str, Any]) -> dict[str, Any]:
+    """The fields of a certificate's metadata that an issue entry signs, taken from it."""
+    run = body.get("run") or {}
+    analysis = body.get("analysis") or {}
+    view = {
+        "revision": body.get("revision"),
+        "replaces": body.get("replaces"),
+        "amendment_reason": body.get("amendment_reason"),
+        "issued_at": body.get("issued_at"),
+        "issued_by": (body.get("approved_by") or {}).get("username"),
+        "submitted_by": (body.get("submitted_by") or {}).get("username"),
+        "run_id": run.get("id"),
+        "kind": run.get("kind"),
+        "item": run.get("item"),
+        "files": [dict(f) for f in run.get("files") or []],
+        "seed": analysis.get("seed"),
+        "software": analysis.get("software"),
+        "options": analysis.get("options"),
+        "plots_sha256": body.get("plots_sha256"),
+        "extra_files": body.get("extra_files") or {},
+    }
+    if "drafted_at" in body:
+        view["created_at"] = body["drafted_at"]
+    return view
+
+
 def numeric_leaves(obj: Any, path: str = "") -> dict[str, Any]:
     """Every number (and null where a number may stand) in a JSON value, keyed by its path."""
     out: dict[str, Any] = {}
@@ -409,16 +559,18 @@ class Archive:
     def __init__(
         self,
         storage: Storage,
-        key: LabKey,
+        key: LabKey | None,
         *,
         number_prefix: str = "CC",
         trusted_public_keys: Iterable[bytes] = (),
     ) -> None:
+        """``key`` is the lab's signing key; None for an analysis worker, which drafts but never
+        signs (issuing and withdrawing stay with the process that holds the key)."""
         self.storage = storage
         self.key = key
         self.number_prefix = number_prefix
         # Keys the lab used before a key rotation still verify their old entries.
-        self.public_keys = {key.key_id: key.public_raw}
+        self.public_keys = {key.key_id: key.public_raw} if key is not None else {}
         self._public_key_objects: dict[str, Ed25519PublicKey] = {}
         for raw in trusted_public_keys:
             self.public_keys[sha256_hex(raw)[:16]] = raw
@@ -473,14 +625,14 @@ class Archive:
         exists = conn.execute(select(st.blobs.c.sha256).where(st.blobs.c.sha256 == digest)).first()
         if exists is None:
             if size is None:
-                size = self.storage.blobs.path(digest).stat().st_size
+                size = self.storage.blobs.size(digest)
             conn.execute(st.blobs.insert().values(sha256=digest, size=size, stored_at=utc_now()))
 
     def presentation(self, plots_sha256: str | None) -> tuple[dict[str, str], list[str]]:
         """(plots, extra HTML sections) kept with a certificate for its renderings."""
         if not plots_sha256:
             return {}, []
-        stored = json.loads(self.storage.blobs.get(plots_sha256))
+        stored = json.loads(self.checked_blob(plots_sha256, "the certificate's plots"))
         return dict(stored.get("plots") or {}), list(stored.get("html_sections") or [])
 
     def plots(self, plots_sha256: str | None) -> dict[str, str]:
@@ -534,11 +686,13 @@ class Archive:
         extra_files: Mapping[str, bytes] | None = None,
         html_sections: Iterable[str] = (),
         extras: Mapping[str, Mapping[str, Any]] | None = None,
+        job_id: str | None = None,
     ) -> str:
         """Store a draft certificate made from an analysis record; return its id.
 
         The service numbers certificates itself (unique, sequential per year); an identifier the
-        analysis derived from its inputs is kept as ``analysis_id``.
+        analysis derived from its inputs is kept as ``analysis_id``. ``job_id`` names the job
+        that made the draft; the database refuses a second draft for the same job.
         """
         run = conn.execute(select(st.runs).where(st.runs.c.id == run_id)).first()
         if run is None:
@@ -599,6 +753,7 @@ class Archive:
                 created_at=utc_now(),
                 replaces=replaces,
                 amendment_reason=amendment_reason,
+                job_id=job_id,
             )
         )
         log_event(
@@ -712,6 +867,8 @@ class Archive:
     def _append(
         self, conn: Connection, entry_type: str, certificate_id: str, body: Mapping[str, Any]
     ) -> tuple[int, str]:
+        if self.key is None:
+            raise ArchiveError("this process holds no signing key (an analysis worker cannot sign)", 500)
         # The counter row lock serialises appends on servers; on SQLite the write transaction
         # (BEGIN IMMEDIATE) already does.
         sequence = self.storage.next_counter(conn, "chain")
@@ -788,6 +945,7 @@ class Archive:
                 approver.get("display_name") or approver["username"]
             )
             submitter = self._user(conn, row.submitted_by)
+            run_submitter = self._user(conn, run.submitted_by)
             body = {
                 "certificate_id": certificate_id,
                 "revision": row.revision,
@@ -801,7 +959,13 @@ class Archive:
                     "kind": row.kind,
                     "item": row.item,
                     "files": self.run_files(conn, row.run_id),
+                    "manifest": json.loads(run.manifest_json),
+                    "submitted_by": user_ref(run_submitter),
+                    "submitted_at": run.submitted_at,
+                    "replaces": run.replaces,
+                    "amendment_reason": run.amendment_reason,
                 },
+                "drafted_at": row.created_at,
                 "analysis": {
                     "seed": row.seed,
                     "software": json.loads(row.software_json),
@@ -874,9 +1038,96 @@ class Archive:
         return result
 
     # ---- reading ----------------------------------------------------------------------------
+    #
+    # Everything a rendering, a download or a reproduction reads of an issued certificate comes
+    # from its signed entry, whose hash and signature are checked on every read; stored blobs are
+    # hashed on every read; the lifecycle state kept in the database is checked against the
+    # signed entries that set it. A failed check refuses the read (IntegrityError, HTTP 409)
+    # rather than show something the signature does not cover.
+
+    def checked_blob(self, digest: str, what: str) -> bytes:
+        """A stored blob's bytes, refused unless they still hash to ``digest``."""
+        try:
+            data = self.storage.blobs.get(digest)
+        except (KeyError, ValueError):
+            raise IntegrityError(f"{what} ({digest}) is missing from the blob folder") from None
+        if sha256_hex(data) != digest:
+            raise IntegrityError(f"{what} no longer matches its SHA-256 {digest}; it was altered")
+        return data
+
+    def _checked_entry(self, chain_row, certificate_id: str) -> dict[str, Any]:
+        data = chain_row.entry_json.encode("utf-8")
+        public = self._public_key(chain_row.key_id)
+        if (
+            public is None
+            or sha256_hex(data) != chain_row.sha256
+            or not _signature_ok(public, data, chain_row.signature)
+        ):
+            raise IntegrityError(
+                f"{certificate_id}: chain entry {chain_row.sequence} fails its hash or signature "
+                "check"
+            )
+        entry = parse_record(data)
+        if not isinstance(entry, dict) or not isinstance(entry.get("body"), dict):
+            raise IntegrityError(f"{certificate_id}: chain entry {chain_row.sequence} is malformed")
+        return entry
+
+    def _signed_issue(self, conn: Connection, row) -> tuple[Any, dict[str, Any]]:
+        """The issue entry of an issued certificate, checked on this read."""
+        chain_row = conn.execute(select(st.chain).where(st.chain.c.sequence == row.sequence)).first()
+        if chain_row is None:
+            raise IntegrityError(f"{row.id}: its signed entry {row.sequence} is missing")
+        entry = self._checked_entry(chain_row, row.id)
+        if (
+            entry.get("entry_type") != "issue"
+            or entry.get("sequence") != row.sequence
+            or entry["body"].get("certificate_id") != row.id
+        ):
+            raise IntegrityError(f"{row.id}: chain entry {row.sequence} is not its issue entry")
+        return chain_row, entry
+
+    def _signed_lifecycle(self, conn: Connection, row) -> dict[str, Any]:
+        """State, successor and withdrawal of an issued certificate, from its signed entries."""
+        withdrawal = None
+        for chain_row in conn.execute(
+            select(st.chain)
+            .where(st.chain.c.certificate_id == row.id)
+            .where(st.chain.c.sequence != row.sequence)
+        ):
+            entry = self._checked_entry(chain_row, row.id)
+            if entry["body"].get("certificate_id") != row.id:
+                raise IntegrityError(f"{row.id}: chain entry {chain_row.sequence} names another certificate")
+            if entry.get("entry_type") == "withdrawal":
+                withdrawal = entry["body"]
+        successor = None
+        successor_row = conn.execute(
+            select(st.certificates.c.id, st.certificates.c.sequence)
+            .where(st.certificates.c.replaces == row.id)
+            .where(st.certificates.c.sequence.is_not(None))
+        ).first()
+        if successor_row is not None:
+            _, entry = self._signed_issue(conn, successor_row)
+            if entry["body"].get("replaces") == row.id:
+                successor = successor_row.id
+        state = "withdrawn" if withdrawal else "superseded" if successor else "issued"
+        lifecycle = {
+            "state": state,
+            "superseded_by": successor,
+            "withdrawn_reason": withdrawal.get("reason") if withdrawal else None,
+            "withdrawn_at": withdrawal.get("withdrawn_at") if withdrawal else None,
+        }
+        stored = {key: getattr(row, key) for key in lifecycle}
+        if stored != lifecycle:
+            differing = ", ".join(
+                f"{key} {stored[key]!r} (signed: {lifecycle[key]!r})"
+                for key in lifecycle
+                if stored[key] != lifecycle[key]
+            )
+            raise IntegrityError(f"{row.id}: the database's lifecycle disagrees with the signed chain: {differing}")
+        return lifecycle
 
     def get(self, certificate_id: str) -> dict[str, Any]:
-        """Certificate metadata plus its record (the signed copy once issued)."""
+        """Certificate metadata plus its record; once issued, everything from the signed entry."""
         with self.storage.read() as conn:
             row = self._row(conn, certificate_id)
             info = dict(row._mapping)
@@ -884,21 +1135,28 @@ class Archive:
             info["software"] = json.loads(info.pop("software_json"))
             info["options"] = json.loads(info.pop("options_json"))
             info["extra_files"] = json.loads(info.pop("extras_json"))
-            entry = None
-            if row.sequence is not None:
-                chain_row = conn.execute(
-                    select(st.chain).where(st.chain.c.sequence == row.sequence)
-                ).one()
-                entry = json.loads(chain_row.entry_json)
-                record = entry["body"]["certificate"]
-                info["sha256"] = chain_row.sha256
-                info["previous_sha256"] = chain_row.previous_sha256
-                info["signature"] = chain_row.signature
             info["submitted_by"] = self._user(conn, row.submitted_by)["username"]
             info["issued_by"] = (
                 self._user(conn, row.issued_by)["username"] if row.issued_by else None
             )
             info["files"] = self.run_files(conn, row.run_id)
+            if row.sequence is not None:
+                chain_row, entry = self._signed_issue(conn, row)
+                body = entry["body"]
+                record = body["certificate"]
+                info.update(_signed_view(body))
+                info.update(self._signed_lifecycle(conn, row))
+                info["sha256"] = chain_row.sha256
+                info["previous_sha256"] = chain_row.previous_sha256
+                info["signature"] = chain_row.signature
+                info["key_id"] = chain_row.key_id
+            elif conn.execute(
+                select(st.chain.c.sequence).where(st.chain.c.certificate_id == certificate_id)
+            ).first() is not None:
+                raise IntegrityError(
+                    f"{certificate_id}: the database calls it a {row.state}, but the signed chain "
+                    "holds entries for it"
+                )
         # The lifecycle state may have moved on since signing (superseded, withdrawn).
         record = dict(record)
         record["state"] = info["state"]
@@ -916,11 +1174,9 @@ class Archive:
             row = self._row(conn, certificate_id)
             if row.sequence is None:
                 raise ArchiveError(f"{certificate_id} is a {row.state} and carries no signature")
-            chain_row = conn.execute(
-                select(st.chain).where(st.chain.c.sequence == row.sequence)
-            ).one()
+            chain_row, entry = self._signed_issue(conn, row)
         return {
-            "entry": json.loads(chain_row.entry_json),
+            "entry": entry,
             "sha256": chain_row.sha256,
             "signature": chain_row.signature,
             "public_key_hex": self.public_keys.get(chain_row.key_id, b"").hex(),
@@ -981,6 +1237,13 @@ class Archive:
         return [{**dict(r._mapping), "detail": json.loads(r.detail_json)} for r in rows]
 
     # ---- verify -----------------------------------------------------------------------------
+    #
+    # The signed entries are the truth; every other copy (the chain table's index columns, the
+    # certificate row's state and columns, the run's row and file list) is compared with them.
+    # The state a certificate should have is derived from the signed content alone: issued by
+    # its issue entry, withdrawn by a withdrawal entry naming it, superseded by a later issue
+    # entry that names it in "replaces". An entry whose own checks fail could hide any of those,
+    # so it makes every certificate's verification fail, with the reason.
 
     def _check_entry(
         self, row, expected_previous: str, expected_sequence: int
@@ -1001,15 +1264,13 @@ class Archive:
         )
         try:
             entry = parse_record(data)
-            canonical = _dumps(entry) == data
+            canonical = isinstance(entry, dict) and _dumps(entry) == data
         except (ValueError, TypeError):
             entry, canonical = None, False
         if not canonical:
             checks.append(Check("canonical", False, f"{label}: stored text is not canonical JSON"))
-        public = self._public_key_objects.get(row.key_id)
-        if public is None and row.key_id in self.public_keys:
-            public = Ed25519PublicKey.from_public_bytes(self.public_keys[row.key_id])
-            self._public_key_objects[row.key_id] = public
+            entry = entry if isinstance(entry, dict) else None
+        public = self._public_key(row.key_id)
         signed = public is not None and _signature_ok(public, data, row.signature)
         checks.append(
             Check(
@@ -1044,150 +1305,278 @@ class Archive:
                     f"position {expected_sequence}",
                 )
             )
+        if entry is not None:
+            # The table's columns are indexes into the signed text; each must say the same.
+            body = entry.get("body") if isinstance(entry.get("body"), dict) else {}
+            signed_columns = {
+                "entry_type": entry.get("entry_type"),
+                "certificate_id": body.get("certificate_id"),
+                "key_id": entry.get("key_id"),
+                "recorded_at": entry.get("recorded_at"),
+            }
+            for column, signed_value in signed_columns.items():
+                stored = getattr(row, column)
+                if stored != signed_value:
+                    checks.append(
+                        Check(
+                            "index",
+                            False,
+                            f"{label}: column {column} is {stored!r} but the signed entry says "
+                            f"{signed_value!r}; the index was edited",
+                        )
+                    )
         return checks, entry
 
-    def verify_chain(
-        self, upto: int | None = None, files_out: list[tuple[str, list]] | None = None
-    ) -> list[Check]:
-        """Check every chain entry from the first up to ``upto`` (all if None).
+    def _public_key(self, key_id: str) -> Ed25519PublicKey | None:
+        public = self._public_key_objects.get(key_id)
+        if public is None and key_id in self.public_keys:
+            public = Ed25519PublicKey.from_public_bytes(self.public_keys[key_id])
+            self._public_key_objects[key_id] = public
+        return public
 
-        If ``files_out`` is given, the raw-file lists of the issue entries are appended to it, so
-        that a whole-archive check parses each entry only once.
-        """
-        query = select(st.chain).order_by(st.chain.c.sequence)
-        if upto is not None:
-            query = query.where(st.chain.c.sequence <= upto)
+    def _scan_chain(self, conn: Connection) -> tuple[list[Check], SignedFacts]:
+        """Check every chain entry and gather what the signed entries say about certificates."""
         checks: list[Check] = []
-        previous = GENESIS_SHA256
-        expected = 1
-        with self.storage.read() as conn:
-            for row in conn.execute(query):
-                if row.sequence != expected:
-                    checks.append(Check("chain", False, f"chain entry {expected} is missing"))
-                entry_checks, entry = self._check_entry(row, previous, expected)
-                checks.extend(entry_checks)
-                if files_out is not None and entry is not None and row.entry_type == "issue":
-                    body = entry.get("body") or {}
-                    files = list((body.get("run") or {}).get("files") or [])
-                    files_out.append((row.certificate_id, files + _derived_files(body)))
-                previous, expected = row.sha256, row.sequence + 1
-        if upto is not None and expected <= upto:
-            checks.append(Check("chain", False, f"chain ends at {expected - 1}, before {upto}"))
-        return checks
+        facts = SignedFacts()
+        previous, expected = GENESIS_SHA256, 1
+        for row in conn.execute(select(st.chain).order_by(st.chain.c.sequence)):
+            if row.sequence != expected:
+                checks.append(Check("chain", False, f"chain entry {expected} is missing"))
+                facts.damaged.append(expected)
+            entry_checks, entry = self._check_entry(row, previous, expected)
+            checks.extend(entry_checks)
+            facts.checks_by_sequence[row.sequence] = entry_checks
+            if not all(c.ok for c in entry_checks) or entry is None:
+                facts.damaged.append(row.sequence)
+            if entry is not None:
+                facts.add(row.sequence, entry)
+            previous, expected = row.sha256, row.sequence + 1
+        facts.last = expected - 1
+        return checks, facts
 
     def _check_files(self, files: Iterable[Mapping[str, Any]], cache: dict) -> list[Check]:
         checks = []
         for entry in files:
-            digest = entry["sha256"]
-            if digest not in cache:
-                cache[digest] = self.storage.blobs.digest_on_disk(digest)
+            digest = entry.get("sha256") if isinstance(entry, Mapping) else None
+            name = entry.get("name", "?") if isinstance(entry, Mapping) else "?"
+            try:
+                if digest not in cache:
+                    cache[digest] = self.storage.blobs.digest_on_disk(digest)
+            except (ValueError, TypeError):
+                checks.append(Check("raw file", False, f"{name}: {digest!r} is not a SHA-256"))
+                continue
             found = cache[digest]
             if found is None:
-                checks.append(
-                    Check("raw file", False, f"raw file {entry['name']} ({digest}) is missing")
-                )
+                checks.append(Check("raw file", False, f"raw file {name} ({digest}) is missing"))
             elif found != digest:
                 checks.append(
                     Check(
                         "raw file",
                         False,
-                        f"raw file {entry['name']} has SHA-256 {found} but was archived as "
+                        f"raw file {name} has SHA-256 {found} but was archived as "
                         f"{digest}; the stored file was altered",
                     )
                 )
             else:
-                checks.append(Check("raw file", True, f"raw file {entry['name']} intact"))
+                checks.append(Check("raw file", True, f"raw file {name} intact"))
+        return checks
+
+    def _consistency(self, row, facts: SignedFacts, db: DatabaseCopies, blob_cache: dict) -> list[Check]:
+        """Compare a certificate's database copies with what the signed chain says."""
+        cid = row.id
+        checks: list[Check] = []
+        issue = facts.issues.get(cid)
+        withdrawal = facts.withdrawals.get(cid)
+        successor = facts.successors.get(cid)
+        files = db.files.get(row.run_id, [])
+        if issue is None:
+            never = row.sequence is None and row.state in ("draft", "withdrawn")
+            checks.append(
+                Check(
+                    "state",
+                    never and withdrawal is None,
+                    f"{cid} is a {row.state} that was never issued; nothing is signed"
+                    if never and withdrawal is None
+                    else f"{cid}: the database says '{row.state}' (sequence {row.sequence}) but "
+                    "no signed issue entry names it",
+                )
+            )
+            checks.extend(self._check_files(files, blob_cache))
+            return checks
+        sequence, body = issue
+        signed_state = "withdrawn" if withdrawal else "superseded" if successor else "issued"
+        run = body.get("run") if isinstance(body.get("run"), dict) else {}
+        analysis = body.get("analysis") if isinstance(body.get("analysis"), dict) else {}
+        users = db.users
+        expected: dict[str, tuple[Any, Any]] = {
+            "state": (row.state, signed_state),
+            "sequence": (row.sequence, sequence),
+            "revision": (row.revision, body.get("revision")),
+            "run_id": (row.run_id, run.get("id")),
+            "kind": (row.kind, run.get("kind")),
+            "item": (row.item, run.get("item")),
+            "seed": (row.seed, analysis.get("seed")),
+            "software_json": (_loads_or(row.software_json), analysis.get("software")),
+            "options_json": (_loads_or(row.options_json), analysis.get("options")),
+            "plots_sha256": (row.plots_sha256, body.get("plots_sha256")),
+            "extras_json": (_loads_or(row.extras_json), body.get("extra_files") or {}),
+            "replaces": (row.replaces, body.get("replaces")),
+            "amendment_reason": (row.amendment_reason, body.get("amendment_reason")),
+            "issued_at": (row.issued_at, body.get("issued_at")),
+            "issued_by": (users.get(row.issued_by), (body.get("approved_by") or {}).get("username")),
+            "submitted_by": (
+                users.get(row.submitted_by),
+                (body.get("submitted_by") or {}).get("username"),
+            ),
+            "number": (
+                row.id == row.number
+                if row.revision == 1
+                else row.id == f"{row.number}-R{row.revision}",
+                True,
+            ),
+            "superseded_by": (row.superseded_by, successor),
+            "withdrawn_reason": (
+                row.withdrawn_reason,
+                (withdrawal[1].get("reason") if withdrawal else None),
+            ),
+            "withdrawn_at": (
+                row.withdrawn_at,
+                (withdrawal[1].get("withdrawn_at") if withdrawal else None),
+            ),
+        }
+        if "drafted_at" in body:
+            expected["created_at"] = (row.created_at, body["drafted_at"])
+        for column, (stored, signed) in expected.items():
+            if stored != signed and column == "state":
+                checks.append(
+                    Check(
+                        "state",
+                        False,
+                        f"state '{stored}' disagrees with the signed chain entries, which make "
+                        f"{cid} {signed}"
+                        + (f" (withdrawal entry {withdrawal[0]})" if withdrawal else ""),
+                    )
+                )
+            elif stored != signed:
+                checks.append(
+                    Check(
+                        "database",
+                        False,
+                        f"{cid}: certificates.{column} is {_short(stored)} but the signed chain "
+                        f"says {_short(signed)}; the signed entries are authoritative",
+                    )
+                )
+        if not any(c.what == "state" for c in checks):
+            checks.append(Check("state", True, f"state '{row.state}' agrees with the chain"))
+        db_record = _loads_or(row.record_json)
+        same = isinstance(db_record, dict) and canonical_json(db_record) == canonical_json(
+            body.get("certificate")
+        )
+        checks.append(
+            Check(
+                "record",
+                same,
+                "database copy of the record equals the signed record"
+                if same
+                else "database copy of the record differs from the signed record "
+                "(the signed record is authoritative)",
+            )
+        )
+        signed_files = [dict(f) for f in run.get("files") or [] if isinstance(f, Mapping)]
+        if signed_files != files:
+            checks.append(
+                Check(
+                    "raw file",
+                    False,
+                    "the run's file list in the database differs from the signed record",
+                )
+            )
+        run_row = db.runs.get(row.run_id)
+        if run_row is None:
+            checks.append(Check("database", False, f"{cid}: its run {row.run_id} is missing"))
+        else:
+            run_expected = {
+                "kind": (run_row.kind, run.get("kind")),
+                "item": (run_row.item, run.get("item")),
+                "seed": (run_row.seed, analysis.get("seed")),
+            }
+            if "manifest" in run:
+                run_expected["manifest_json"] = (_loads_or(run_row.manifest_json), run["manifest"])
+            if "submitted_at" in run:
+                run_expected["submitted_at"] = (run_row.submitted_at, run["submitted_at"])
+            if "submitted_by" in run:
+                run_expected["submitted_by"] = (
+                    db.users.get(run_row.submitted_by),
+                    (run["submitted_by"] or {}).get("username"),
+                )
+            if "replaces" in run:
+                run_expected["replaces"] = (run_row.replaces, run["replaces"])
+                run_expected["amendment_reason"] = (
+                    run_row.amendment_reason,
+                    run.get("amendment_reason"),
+                )
+            for column, (stored, signed) in run_expected.items():
+                if stored != signed:
+                    checks.append(
+                        Check(
+                            "database",
+                            False,
+                            f"{cid}: runs.{column} of {row.run_id} is {_short(stored)} but the "
+                            f"signed entry says {_short(signed)}",
+                        )
+                    )
+        checks.extend(self._check_files(signed_files, blob_cache))
+        checks.extend(self._check_files(_derived_files(body), blob_cache))
+        return checks
+
+    def verify_chain(
+        self, upto: int | None = None, files_out: list[tuple[str, list]] | None = None
+    ) -> list[Check]:
+        """Check every chain entry from the first up to ``upto`` (all if None)."""
+        with self.storage.read() as conn:
+            checks, facts = self._scan_chain(conn)
+        if upto is not None:
+            checks = [c for s, cs in facts.checks_by_sequence.items() if s <= upto for c in cs]
+            if facts.last < upto:
+                checks.append(Check("chain", False, f"chain ends at {facts.last}, before {upto}"))
+        if files_out is not None:
+            for cid, (_, body) in facts.issues.items():
+                files = list((body.get("run") or {}).get("files") or [])
+                files_out.append((cid, files + _derived_files(body)))
         return checks
 
     def verify(self, certificate_id: str) -> VerifyReport:
-        """Signature, chain up to the record, stored raw files, and lifecycle consistency."""
+        """Signatures, chain, index columns, stored files and every database copy of one
+        certificate, against the signed entries."""
         with self.storage.read() as conn:
             row = self._row(conn, certificate_id)
-            files = self.run_files(conn, row.run_id)
-            entries = conn.execute(
-                select(st.chain)
-                .where(st.chain.c.certificate_id == certificate_id)
-                .order_by(st.chain.c.sequence)
-            ).all()
-            replaced_by = (
-                conn.execute(
-                    select(st.chain.c.sequence, st.chain.c.entry_json).where(
-                        st.chain.c.entry_type == "issue"
-                    )
-                ).all()
-                if row.state == "superseded"
-                else []
-            )
-        checks: list[Check] = []
-        if row.sequence is None:
-            checks.append(
-                Check(
-                    "state",
-                    row.state in ("draft", "withdrawn") and not entries,
-                    f"{certificate_id} is a {row.state} that was never issued; nothing is signed"
-                    if not entries
-                    else f"{certificate_id} has chain entries but the database says it was never "
-                    "issued",
-                )
-            )
-            checks.extend(self._check_files(files, {}))
-        else:
-            last = max([row.sequence] + [e.sequence for e in entries])
-            checks.extend(self.verify_chain(upto=last))
-            issue_rows = [e for e in entries if e.entry_type == "issue"]
-            if not issue_rows or issue_rows[0].sequence != row.sequence:
+            chain_checks, facts = self._scan_chain(conn)
+            checks: list[Check] = []
+            issue = facts.issues.get(certificate_id)
+            mine = facts.sequences_naming(certificate_id)
+            last = max(mine + [row.sequence or 0])
+            # Entries up to this certificate's last one: every check (they are what it rests on).
+            for sequence in sorted(facts.checks_by_sequence):
+                if sequence <= last:
+                    checks.extend(facts.checks_by_sequence[sequence])
+            if issue is None and row.sequence is not None and row.sequence > facts.last:
                 checks.append(
-                    Check("state", False, f"no issue entry {row.sequence} for {certificate_id}")
+                    Check("chain", False, f"chain ends at {facts.last}, before {row.sequence}")
                 )
-            else:
-                try:
-                    body = json.loads(issue_rows[0].entry_json)["body"]
-                except (ValueError, KeyError):
-                    body = {}
-                signed_files = body.get("run", {}).get("files", [])
-                if [dict(f) for f in signed_files] != files:
+            # Later entries: a damaged one could hide a withdrawal or an amendment of this one.
+            for sequence in facts.damaged:
+                if sequence > last:
                     checks.append(
                         Check(
-                            "raw file",
+                            "chain",
                             False,
-                            "the run's file list in the database differs from the signed record",
+                            f"chain entry {sequence} (after {certificate_id}) fails its checks; "
+                            f"a withdrawal or amendment of {certificate_id} recorded there could "
+                            "be hidden",
                         )
                     )
-                checks.extend(self._check_files(signed_files, {}))
-                checks.extend(self._check_files(_derived_files(body), {}))
-                db_record = json.loads(row.record_json)
-                same = canonical_json(db_record) == canonical_json(body.get("certificate"))
-                checks.append(
-                    Check(
-                        "record",
-                        same,
-                        "database copy of the record equals the signed record"
-                        if same
-                        else "database copy of the record differs from the signed record "
-                        "(the signed record is authoritative)",
-                    )
-                )
-            withdrawn = any(e.entry_type == "withdrawal" for e in entries)
-            consistent = (row.state == "withdrawn") == withdrawn and row.state in (
-                "issued",
-                "superseded",
-                "withdrawn",
-            )
-            if row.state == "superseded":
-                successor_signed = any(
-                    json.loads(e.entry_json)["body"].get("replaces") == certificate_id
-                    for e in replaced_by
-                )
-                consistent = consistent and successor_signed
-            checks.append(
-                Check(
-                    "state",
-                    consistent,
-                    f"state '{row.state}' agrees with the chain"
-                    if consistent
-                    else f"state '{row.state}' disagrees with the signed chain entries",
-                )
-            )
+            copies = DatabaseCopies.load(conn, run_id=row.run_id)
+            checks.extend(self._consistency(row, facts, copies, {}))
         return VerifyReport(
             certificate_id=certificate_id,
             state=row.state,
@@ -1197,14 +1586,32 @@ class Archive:
         )
 
     def verify_all(self) -> tuple[bool, list[Check]]:
-        """The whole chain plus every raw file it names (each blob hashed once)."""
-        named: list[tuple[str, list]] = []
-        checks = [c for c in self.verify_chain(files_out=named) if not c.ok]
-        cache: dict[str, str | None] = {}
-        for certificate_id, files in named:
-            for check in self._check_files(files, cache):
-                if not check.ok:
-                    checks.append(Check(check.what, False, f"{certificate_id}: {check.detail}"))
+        """The whole chain, every certificate's database copies and every stored file it names
+        (each blob hashed once)."""
+        with self.storage.read() as conn:
+            checks, facts = self._scan_chain(conn)
+            checks = [c for c in checks if not c.ok]
+            cache: dict[str, str | None] = {}
+            rows = conn.execute(select(st.certificates).order_by(st.certificates.c.id)).all()
+            copies = DatabaseCopies.load(conn)
+            known = set()
+            for row in rows:
+                known.add(row.id)
+                for check in self._consistency(row, facts, copies, cache):
+                    if not check.ok:
+                        detail = check.detail
+                        if not detail.startswith(row.id):
+                            detail = f"{row.id}: {detail}"
+                        checks.append(Check(check.what, False, detail))
+            for cid, (sequence, _) in facts.issues.items():
+                if cid not in known:
+                    checks.append(
+                        Check(
+                            "database",
+                            False,
+                            f"chain entry {sequence} issues {cid}, which has no certificate row",
+                        )
+                    )
         return (not checks), checks
 
     # ---- reproduce --------------------------------------------------------------------------
@@ -1219,7 +1626,7 @@ class Archive:
         """Re-run the archived analysis on the archived raw data and compare every number."""
         info = self.get(certificate_id)
         record = info["record"]
-        with tempfile.TemporaryDirectory(prefix="coldcert-reproduce-") as tmp:
+        with self.storage.blobs.scratch("reproduce") as tmp:
             folder = self.materialise_run(info["files"], Path(tmp) / "run")
             run = load_run(folder)
             output = analysis_output(certify(run, info["seed"], progress, **info["options"]))
@@ -1279,8 +1686,10 @@ def _derived_files(body: Mapping[str, Any]) -> list[dict[str, Any]]:
     files = []
     if body.get("plots_sha256"):
         files.append({"name": "plots of the certificate", "sha256": body["plots_sha256"]})
-    for name, entry in sorted((body.get("extra_files") or {}).items()):
-        files.append({"name": f"output file {name}", "sha256": entry["sha256"]})
+    extra = body.get("extra_files") if isinstance(body.get("extra_files"), Mapping) else {}
+    for name, entry in sorted(extra.items()):
+        digest = entry.get("sha256") if isinstance(entry, Mapping) else None
+        files.append({"name": f"output file {name}", "sha256": digest})
     return files
 
 

@@ -8,16 +8,17 @@ for the certificate record.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Callable
 from dataclasses import dataclass, replace
 
 from scipy import stats
 
-from analysis.budget import round_for_report
 from analysis.cbt.choice import ModelChoice, fit_sweep_chosen
 from analysis.cbt.fit import (
     FitSettings,
+    ModelEdgeError,
+    PointError,
+    ResidualStructureError,
     SweepData,
     SweepError,
     SweepFit,
@@ -32,19 +33,18 @@ from analysis.cbt.models import (
     correct_series_resistance,
     higher_order_shape,
 )
-from analysis.cbt.uncertainty import TypeBInputs, temperature_budget
+from analysis.cbt.uncertainty import TypeBInputs, defaulted_inputs, temperature_budget
 from service.calibrations.outcome import CalibrationOutcome, CertificationRefused
 from service.calibrations.parallel import run_pieces
 from service.intake import IntakeError, Run, check_cbt_sweep, is_cbt_sweep, manifest_number
+from service.record.results import result_entry
 from service.render.plots import sweep_fit_svg
 
 Progress = Callable[[float, str], None]
 
 #: Below this many bias half-widths on each side a warning goes into the diagnostics (the
-#: asymptote is then fixed only to ~1e-4 of the depth; PHYSICS.md 1.4).
+#: asymptote is then fixed only to ~1e-4 of the depth; docs/physics.md §1.4).
 WARN_RANGE_HALF_WIDTHS = 4.0
-#: Lag-1 autocorrelation of residuals above which the fit is flagged as structured.
-RESIDUAL_CORRELATION_LIMIT = 0.3
 #: Relative electron heating at the half-depth bias above which a sweep is flagged.
 HEATING_WARNING = 0.10
 
@@ -56,9 +56,9 @@ def heating_model(manifest: dict) -> tuple[HeatingModel | None, float]:
     with ``island_volume_m3`` (Ω); ``coupling_relative_u`` (default 0.3: Σ is rarely known
     better, common practice, no source) and ``heat_leak_W`` (default 0).
     """
-    coupling = manifest_number(manifest, "device.coupling_W_per_K5", None, 0.0)
-    sigma = manifest_number(manifest, "device.electron_phonon_constant_W_per_K5_m3", None, 0.0)
-    volume = manifest_number(manifest, "device.island_volume_m3", None, 0.0)
+    coupling = manifest_number(manifest, "device.coupling_W_per_K5", None)
+    sigma = manifest_number(manifest, "device.electron_phonon_constant_W_per_K5_m3", None)
+    volume = manifest_number(manifest, "device.island_volume_m3", None)
     if coupling is None and sigma is not None and volume is not None:
         coupling = sigma * volume
     if coupling is None:
@@ -68,17 +68,17 @@ def heating_model(manifest: dict) -> tuple[HeatingModel | None, float]:
         return None, 0.0
     if coupling <= 0:
         raise IntakeError("expected a positive coupling", file="run.toml", field="device.coupling_W_per_K5")
-    leak = manifest_number(manifest, "device.heat_leak_W", 0.0, 0.0)
-    rel = manifest_number(manifest, "device.coupling_relative_u", 0.3, 0.0, 1.0)
+    leak = manifest_number(manifest, "device.heat_leak_W", 0.0)
+    rel = manifest_number(manifest, "device.coupling_relative_u", 0.3)
     return HeatingModel(coupling, 0.0, leak), rel
 
 
 def type_b_inputs(manifest: dict, coverage_probability: float) -> TypeBInputs:
     """Type B inputs from run.toml's [instruments] and [device] sections (docs/formats.md)."""
-    gain = manifest_number(manifest, "instruments.bias_scale_relative_u", None, 0.0, 0.5)
-    exc = manifest_number(manifest, "instruments.excitation_relative_u", None, 0.0, 1.0)
-    spread = manifest_number(manifest, "device.resistance_spread", None, 0.0, 0.5)
-    rs_u = manifest_number(manifest, "device.series_resistance_u_ohm", 0.0)
+    gain = manifest_number(manifest, "instruments.bias_scale_relative_u", None)
+    exc = manifest_number(manifest, "instruments.excitation_relative_u", None)
+    spread = manifest_number(manifest, "device.resistance_spread", None)
+    rs_u = manifest_number(manifest, "device.series_resistance_u_ohm", None)
     return TypeBInputs(
         bias_scale_relative_u=1e-3 if gain is None else gain,
         bias_scale_stated=gain is not None,
@@ -87,7 +87,17 @@ def type_b_inputs(manifest: dict, coverage_probability: float) -> TypeBInputs:
         resistance_spread=0.02 if spread is None else spread,
         resistance_spread_stated=spread is not None,
         series_resistance_u_ohm=rs_u or 0.0,
+        series_resistance_stated=rs_u is not None,
         coverage_probability=coverage_probability,
+    )
+
+
+def sweep_inputs(inputs: TypeBInputs, metadata: dict) -> TypeBInputs:
+    """The run's Type B inputs with what one sweep's metadata states (excitation, series resistance)."""
+    return replace(
+        inputs,
+        excitation_amplitude_stated="excitation_rms_V" in metadata,
+        series_resistance_stated=inputs.series_resistance_stated or "series_resistance_ohm" in metadata,
     )
 
 
@@ -137,6 +147,12 @@ def fit_file(f, seed: int, settings: FitSettings, shape: DipShape | None = None,
             fit = fit_sweep(data, seed=seed, shape=shape, settings=settings, progress=progress)
             choice = ModelChoice(shape, "model fixed by the caller")
         shape = choice.shape
+    except (ModelEdgeError, ResidualStructureError) as exc:
+        raise CertificationRefused(f"{f.name}: {exc}") from None
+    except PointError as exc:
+        lines = ", ".join(str(f.line_of_row(i)) for i in exc.points[:20])
+        raise IntakeError(f"{exc} (line {lines})", file=f.name, line=f.line_of_row(exc.points[0]),
+                          field=exc.field) from None
     except SweepError as exc:
         raise IntakeError(str(exc), file=f.name, field=exc.field) from None
     warnings: list[str] = []
@@ -145,20 +161,16 @@ def fit_file(f, seed: int, settings: FitSettings, shape: DipShape | None = None,
         warnings.append(
             f"bias range reaches only ±{reach:.1f} V_1/2; ±{WARN_RANGE_HALF_WIDTHS:g} or more fixes G_T better"
         )
-    if abs(fit.lag1_residual_correlation) > RESIDUAL_CORRELATION_LIMIT:
-        warnings.append(
-            f"residuals are correlated (lag-1 {fit.lag1_residual_correlation:.2f}): the model or the "
-            "noise description may be incomplete"
-        )
+    if fit.diagnosis is not None:
+        # What the residual checks found, each naming its likely cause (analysis.cbt.robust).
+        warnings.extend(fit.diagnosis.findings)
+        if fit.diagnosis.outliers:
+            warnings.append("outliers left out of the fit: line "
+                            + ", ".join(str(f.line_of_row(i)) for i in fit.diagnosis.outliers))
     if fit.heating_at_half_width > HEATING_WARNING:
         warnings.append(
             f"self-heating dominates: electrons are {100 * fit.heating_at_half_width:.0f} % above the bath at the "
             "half-depth bias; the result rests on the heating model and its coupling constant"
-        )
-    if heating is None and abs(fit.lag1_residual_correlation) > RESIDUAL_CORRELATION_LIMIT:
-        warnings.append(
-            "structured residuals in a fit without a heating model: at low temperature this is the signature "
-            "of self-heating; give the island volume and coupling constant in run.toml [device]"
         )
     if not fit.posterior.converged:
         raise CertificationRefused(
@@ -174,7 +186,7 @@ def fit_file(f, seed: int, settings: FitSettings, shape: DipShape | None = None,
     return SweepWork(f, data, rs, fit, warnings, shape, choice.reason)
 
 
-def result_entry(work: SweepWork, inputs: TypeBInputs,
+def sweep_result(work: SweepWork, inputs: TypeBInputs,
                  global_note: str | None = None) -> tuple[dict, str]:
     """The certificate's result entry and fit plot for one sweep (independent or global)."""
     f, fit, data = work.file, work.fit, work.data
@@ -182,26 +194,17 @@ def result_entry(work: SweepWork, inputs: TypeBInputs,
     setup = data.setup
     if work.rs:
         inputs = replace(inputs, series_resistance_ohm=work.rs)
+    inputs = sweep_inputs(inputs, md)
     shape = work.shape
     budget, _ = temperature_budget(fit, shape, setup, inputs, posterior_note=global_note, data=data)
-    value_s, u_s = round_for_report(budget.estimate, budget.combined_standard_uncertainty)
-    _, U_s = round_for_report(budget.estimate, budget.expanded_uncertainty)
-    entry = {
-        "name": "electron temperature",
-        "sweep": f.name,
-        "quantity": "T_e",
-        "value": budget.estimate,
-        "unit": "K",
-        "standard_uncertainty": budget.combined_standard_uncertainty,
-        "expanded_uncertainty": budget.expanded_uncertainty,
-        "coverage_factor": budget.coverage_factor,
-        "coverage_probability": budget.coverage_probability,
-        "effective_degrees_of_freedom": None
-        if math.isinf(budget.effective_degrees_of_freedom) else budget.effective_degrees_of_freedom,
-        "reported": {"value": value_s, "standard_uncertainty": u_s, "expanded_uncertainty": U_s, "unit": "K"},
-        "budget": budget.as_dict(),
-        "model": shape.name,
-        "fit": {
+    entry = result_entry(
+        name="electron temperature",
+        sweep=f.name,
+        quantity="T_e",
+        unit="K",
+        budget=budget,
+        model=shape.name,
+        fit={
             "junctions_in_series": setup.junctions_in_series,
             "parallel_rows": md.get("parallel_rows", 1),
             "excitation_rms_V": setup.excitation_rms_V,
@@ -229,16 +232,20 @@ def result_entry(work: SweepWork, inputs: TypeBInputs,
                 "relative_heating_at_half_depth_bias": fit.heating_at_half_width,
             },
         },
-        "diagnostics": {
+        diagnostics={
             "posterior": fit.posterior.diagnostics(),
             "bias_reach_half_widths": fit.diagnostics["bias_reach_half_widths"],
             "lag1_residual_correlation": fit.lag1_residual_correlation,
+            "residual_checks": None if fit.diagnosis is None else {
+                **fit.diagnosis.as_dict(),
+                "outlier_lines": [f.line_of_row(i) for i in fit.diagnosis.outliers],
+            },
             "model_validated_up_to_u": shape.max_u,
             "model_choice": work.model_reason,
             "warnings": work.warnings,
         },
-    }
-    title = f"{f.name}: T = {value_s} K, u = {fit.u:.3f}"
+    )
+    title = f"{f.name}: T = {entry['reported']['value']} K, u = {fit.u:.3f}"
     svg = sweep_fit_svg(data.bias, data.conductance, fit.model_curve, title)
     return entry, svg
 
@@ -302,7 +309,7 @@ def _fit_piece(piece, report: Progress) -> SweepWork:
 def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = False) -> CalibrationOutcome:
     """Analyse every sweep of a thermometry run independently (each with its own derived seed)."""
     manifest = run.manifest
-    p = manifest_number(manifest, "run.coverage_probability", 0.95, 0.5, 0.9999)
+    p = manifest_number(manifest, "run.coverage_probability", 0.95)
     inputs = type_b_inputs(manifest, p)
     heating, coupling_u = heating_model(manifest)
     background = manifest.get("run", {}).get("linear_background", False)
@@ -345,7 +352,7 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
                 f"{w.file.name}: u = {w.fit.u:.2f} after the global fit lies beyond the validated range of "
                 f"the {w.shape.name} model (u ≤ {w.shape.max_u:g})"
             )
-        entry, svg = result_entry(w, inputs, note)
+        entry, svg = sweep_result(w, inputs, note)
         outcome.results.append(entry)
         outcome.plots[f"fit-{w.file.name}"] = svg
     outcome.diagnostics["convergence_rule"] = {
@@ -358,12 +365,11 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
         outcome.deviations.append(
             "quick-look convergence rule (chain ≥ 20 autocorrelation times) used; not for issue"
         )
-    if not inputs.bias_scale_stated:
-        outcome.deviations.append("bias-voltage scale uncertainty not stated by the lab: 0.1 % (rectangular) assumed")
-    if not inputs.resistance_spread_stated:
-        outcome.deviations.append("junction-resistance spread not stated: 2 % assumed for the non-uniformity row")
-    if any(f.metadata.get("excitation_rms_V") for f in sweeps) and not inputs.excitation_stated:
-        outcome.deviations.append("excitation amplitude uncertainty not stated: 5 % (rectangular) assumed")
+    for f in sweeps:  # every defaulted budget input, with the value assumed (analysis.cbt.uncertainty)
+        setup = SweepSetup(f.metadata["junctions_in_series"], f.metadata.get("excitation_rms_V", 0.0))
+        for text in defaulted_inputs(sweep_inputs(inputs, f.metadata), setup, heating is not None):
+            if text not in outcome.deviations:
+                outcome.deviations.append(text)
     if any("current_A" in f.columns and "conductance_S" not in f.columns for f in sweeps):
         outcome.deviations.append("conductance obtained by numerical differentiation of a DC I–V")
     outcome.method = {

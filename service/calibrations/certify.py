@@ -7,7 +7,8 @@ from dataclasses import dataclass, field
 
 from service.calibrations.registry import calibration_for
 from service.intake import Run
-from service.record.certificate import build_record, pretty_bytes, render_html
+from service.record.certificate import build_record, pretty_bytes
+from service.render.html import render_html
 
 DEFAULT_SEED = 20261201
 
@@ -20,7 +21,6 @@ class Certified:
     html: str
     plots: dict[str, str] = field(default_factory=dict)
     extra_files: dict[str, bytes] = field(default_factory=dict)
-    html_sections: list[str] = field(default_factory=list)
 
     def files(self) -> dict[str, bytes]:
         """All output files by name; certificate.json last so its presence means complete."""
@@ -42,7 +42,5 @@ def certify_run(run: Run, seed: int | None = None, progress: Callable[[float, st
     seed = run_seed(run, seed)
     outcome = calibration_for(run.kind).analyse(run, seed, progress=progress, fast=fast)
     record = build_record(run, outcome, seed, run.kind)
-    sections = list(getattr(outcome, "html_sections", None) or [])
-    html = render_html(record, outcome.plots, sections)
-    return Certified(record=record, html=html, plots=outcome.plots, extra_files=outcome.extra_files,
-                     html_sections=sections)
+    html = render_html(record, outcome.plots)
+    return Certified(record=record, html=html, plots=outcome.plots, extra_files=outcome.extra_files)

@@ -15,35 +15,34 @@ the curve stored in a certificate (``coldcert sensor-temperatures``).
 
 from __future__ import annotations
 
-import html
 import io
 import math
 from collections.abc import Callable
-from dataclasses import dataclass, field
-from datetime import UTC, datetime
+from dataclasses import dataclass
+from datetime import datetime
 from pathlib import Path
 
 import numpy as np
 from scipy import stats
 
 from analysis import scales, sensors
-from analysis.budget import round_for_report
 from service.calibrations import cbt as thermometry
 from service.calibrations.outcome import CalibrationOutcome, CertificationRefused
 from service.intake import (
     DataFile,
     IntakeError,
-    KeySpec,
     Run,
     is_cbt_sweep,
+    manifest_field,
     manifest_number,
     real_parser,
-    register_keys,
 )
+from service.intake.table import iso_datetime
+from service.record.results import result_entry
+from service.record.terms import CALIBRATION_TABLE_HEADER, CRITERION_NAMES
 
 Progress = Callable[[float, str], None]
 
-TABLE_HEADER = "resistance_ohm,temperature_K,expanded_uncertainty_K"
 DEFAULT_TABLE_POINTS = 25
 #: Defaults used when run.toml does not state them (listed on the certificate as deviations).
 DEFAULT_BRIDGE_RELATIVE_U = 2e-4
@@ -53,31 +52,7 @@ DEFAULT_MELTING_PRESSURE_U_PA = 50.0
 REFUSE_CHI2_P_VALUE = 1e-4
 
 
-def _iso_datetime(text: str) -> datetime:
-    try:
-        value = datetime.fromisoformat(text.strip().replace("Z", "+00:00"))
-    except ValueError:
-        raise ValueError(
-            f"expected an ISO 8601 date-time such as 2026-11-24T09:00:00Z, got {text!r}"
-        ) from None
-    if value.tzinfo is None:
-        value = value.replace(tzinfo=UTC)
-    return value
-
-
 _positive_real = real_parser(0.0, lo_open=True)
-
-
-register_keys(
-    {
-        "melting_pressure_Pa": KeySpec(
-            _positive_real, "³He melting pressure read during the sweep (PLTS-2000 cross-check)"
-        ),
-        "time_origin": KeySpec(
-            lambda t: _iso_datetime(t).isoformat(), "ISO 8601 date-time at which time_s = 0"
-        ),
-    }
-)
 
 
 # --------------------------------------------------------------------------------------------
@@ -115,7 +90,7 @@ def _metadata_parsed(f: DataFile, key: str, parse):
 
 
 def _metadata_time(f: DataFile, key: str) -> datetime | None:
-    return _metadata_parsed(f, key, _iso_datetime)
+    return _metadata_parsed(f, key, iso_datetime)
 
 
 def _metadata_positive(f: DataFile, key: str) -> float | None:
@@ -372,7 +347,7 @@ def curve_from_record(record: dict, source: str = "certificate.json") -> sensors
 
 def _table_bytes(resistance: np.ndarray, temperature: np.ndarray, expanded: np.ndarray) -> bytes:
     out = io.StringIO()
-    out.write(TABLE_HEADER + "\n")
+    out.write(CALIBRATION_TABLE_HEADER + "\n")
     for r, t, u in zip(resistance, temperature, expanded, strict=True):
         out.write(f"{r:.10g},{t:.10g},{u:.4g}\n")
     return out.getvalue().encode("utf-8")
@@ -468,23 +443,10 @@ def curve_svg(fit: sensors.CalibrationFit, table: sensors.CurveTable, title: str
 # The job
 
 
-@dataclass
-class SensorOutcome(CalibrationOutcome):
-    html_sections: list[str] = field(default_factory=list)
-
 
 def _manifest_text(manifest: dict, section: str) -> dict:
     body = manifest.get(section, {})
     return {k: v for k, v in body.items() if isinstance(v, str | int | float | bool)}
-
-
-def _manifest_int(manifest: dict, path: str, default: int, lo: int, hi: int) -> int:
-    value = manifest_number(manifest, path, None, lo, hi)
-    if value is None:
-        return default
-    if not float(value).is_integer():
-        raise IntakeError("expected a whole number", file="run.toml", field=path)
-    return int(value)
 
 
 def plts_cross_check(
@@ -554,25 +516,33 @@ def _global_correlation(section: dict | None, names: list[str]) -> np.ndarray | 
     return matrix[np.ix_(idx, idx)]
 
 
-def analyse(
-    run: Run, seed: int, progress: Progress | None = None, fast: bool = False
-) -> SensorOutcome:
-    """Sensor calibration: CBT temperature per sweep (thermometry job), then the curve."""
-    manifest = run.manifest
-    coverage = manifest_number(manifest, "run.coverage_probability", 0.95, 0.5, 0.9999)
-    bridge_u = manifest_number(manifest, "sensor.bridge_relative_u", None, 0.0, 0.1)
-    reading_u = manifest_number(manifest, "sensor.reading_relative_u", None, 0.0, 0.1)
-    pressure_u = manifest_number(manifest, "instruments.melting_pressure_u_Pa", None, 0.0, 1e5)
-    table_points = _manifest_int(manifest, "sensor.table_points", DEFAULT_TABLE_POINTS, 2, 10_000)
-    degree = manifest.get("sensor", {}).get("degree")
-    if degree is not None and (isinstance(degree, bool) or not isinstance(degree, int)):
-        raise IntakeError("expected a whole number", file="run.toml", field="sensor.degree")
-    criterion = manifest.get("sensor", {}).get("degree_criterion", "aicc")
-    if criterion not in ("aicc", "loo"):
-        raise IntakeError(
-            "expected 'aicc' or 'loo'", file="run.toml", field="sensor.degree_criterion"
+@dataclass(frozen=True)
+class SensorSettings:
+    """What run.toml says about the curve and the sensor side (docs/sensor_calibration.md)."""
+
+    coverage: float
+    bridge_u: float | None
+    reading_u: float | None
+    pressure_u: float | None
+    table_points: int
+    degree: int | None
+    criterion: str
+
+    @classmethod
+    def from_manifest(cls, manifest: dict) -> SensorSettings:
+        return cls(
+            coverage=manifest_number(manifest, "run.coverage_probability", 0.95),
+            bridge_u=manifest_number(manifest, "sensor.bridge_relative_u", None),
+            reading_u=manifest_number(manifest, "sensor.reading_relative_u", None),
+            pressure_u=manifest_number(manifest, "instruments.melting_pressure_u_Pa", None),
+            table_points=manifest_field(manifest, "sensor.table_points", DEFAULT_TABLE_POINTS),
+            degree=manifest_field(manifest, "sensor.degree"),
+            criterion=manifest_field(manifest, "sensor.degree_criterion", "aicc"),
         )
 
+
+def _sensor_side(run: Run, settings: SensorSettings):
+    """The sweeps, the sensor reading and melting pressure of each: checked before any CBT fit."""
     sweeps = [f for f in run.files if is_cbt_sweep(f)]
     if len(sweeps) < 4:
         raise IntakeError(
@@ -593,32 +563,20 @@ def analyse(
             f"found columns {sorted(run.file(others[0]).columns)}",
             file=others[0],
         )
-    reading_u_used = DEFAULT_READING_RELATIVE_U if reading_u is None else reading_u
-    # Validate the sensor side before spending minutes on the CBT fits.
-    readings = {f.name: sensor_reading(f, resistance_log, reading_u_used) for f in sweeps}
+    reading_u = DEFAULT_READING_RELATIVE_U if settings.reading_u is None else settings.reading_u
+    readings = {f.name: sensor_reading(f, resistance_log, reading_u) for f in sweeps}
     pressures = {}
     for f in sweeps:
         p = melting_pressure(f, pressure_log)
         if p is not None:
             pressures[f.name] = p
+    return sweeps, readings, pressures
 
-    def cbt_progress(frac: float, step: str) -> None:
-        if progress:
-            progress(0.9 * frac, step)
 
-    cbt = thermometry.analyse(run, seed, progress=cbt_progress, fast=fast)
-    entries = {e["sweep"]: e for e in cbt.results}
-    if progress:
-        progress(0.92, "fitting the calibration curve")
-    data = points_from_cbt(
-        sweeps,
-        entries,
-        readings,
-        DEFAULT_BRIDGE_RELATIVE_U if bridge_u is None else bridge_u,
-        _global_correlation(cbt.sections.get("global_fit"), [f.name for f in sweeps]),
-    )
+def _fit_curve(data, settings: SensorSettings):
+    """The calibration curve, or a refusal when it cannot follow the points."""
     try:
-        fit = sensors.fit_calibration_curve(data, degree=degree, criterion=criterion)
+        fit = sensors.fit_calibration_curve(data, degree=settings.degree, criterion=settings.criterion)
     except sensors.CalibrationFitError as exc:
         raise CertificationRefused(f"calibration curve: {exc}") from None
     if fit.degrees_of_freedom > 0:
@@ -636,174 +594,136 @@ def analyse(
                 f"{data.n_points} points at most degree {sensors.maximum_degree(data.n_points)} "
                 "is allowed: add calibration points, or check the points and their uncertainties"
             )
-    curve = fit.curve
-    lo, hi = curve.resistance_range_ohm
-    grid = np.geomspace(lo, hi, table_points)
-    grid[0], grid[-1] = lo, hi
-    table = curve.table(grid, coverage_probability=coverage)
-    t_lo, t_hi = curve.temperature_range_K
+    return fit
 
-    outcome = SensorOutcome(results=[])
-    # The reference temperatures first (with the CBT fit plots), then the table.
+
+def _results(sweeps, entries: dict, readings: dict, curve, table, coverage: float) -> list[dict]:
+    """The reference temperatures first (as the CBT gave them), then the table's points."""
+    results = []
     for f in sweeps:
         e = dict(entries[f.name])
         e["name"] = "reference temperature (CBT)"
         e["sensor_resistance_ohm"] = readings[f.name].resistance_ohm
-        outcome.results.append(e)
+        results.append(e)
     for i, r in enumerate(table.resistance_ohm):
-        b = curve.budget(float(r), coverage_probability=coverage)
-        value_s, u_s = round_for_report(b.estimate, b.combined_standard_uncertainty)
-        _, big_u_s = round_for_report(b.estimate, b.expanded_uncertainty)
-        outcome.results.append(
-            {
-                "name": "temperature from the calibration curve",
-                "sweep": f"sensor at R = {r:.6g} ohm",
-                "quantity": "T",
-                "resistance_ohm": float(r),
-                "value": b.estimate,
-                "unit": "K",
-                "standard_uncertainty": b.combined_standard_uncertainty,
-                "expanded_uncertainty": b.expanded_uncertainty,
-                "coverage_factor": b.coverage_factor,
-                "coverage_probability": b.coverage_probability,
-                "effective_degrees_of_freedom": None
-                if math.isinf(b.effective_degrees_of_freedom)
-                else b.effective_degrees_of_freedom,
-                "sensitivity_dlnR_dlnT": float(table.sensitivity_dlnR_dlnT[i]),
-                "reported": {
-                    "value": value_s,
-                    "standard_uncertainty": u_s,
-                    "expanded_uncertainty": big_u_s,
-                    "unit": "K",
-                },
-                "budget": b.as_dict(),
-            }
+        results.append(
+            result_entry(
+                name="temperature from the calibration curve",
+                sweep=f"sensor at R = {r:.6g} ohm",
+                quantity="T",
+                unit="K",
+                budget=curve.budget(float(r), coverage_probability=coverage),
+                resistance_ohm=float(r),
+                sensitivity_dlnR_dlnT=float(table.sensitivity_dlnR_dlnT[i]),
+            )
         )
-    names = [f.name for f in sweeps]
-    cross = plts_cross_check(
-        names,
-        pressures,
-        entries,
-        DEFAULT_MELTING_PRESSURE_U_PA if pressure_u is None else pressure_u,
-    )
-    hop = fit.hopping
-    section = {
-        "sensor": _manifest_text(manifest, "sensor") or {"identifier": "not stated"},
-        "valid_range": {
-            "resistance_ohm": [lo, hi],
-            "temperature_K": [t_lo, t_hi],
-            "statement": "temperatures are given only for resistances inside this range; "
-            "the curve is not extrapolated",
-        },
-        "curve": curve_record(curve),
-        "fit": {
-            "method": "generalised least squares on ln T with the full covariance of the points; "
-            "resistance uncertainty through the curve's slope, iterated to convergence "
-            "(effective variance)",
-            "degree_criterion": fit.criterion,
-            "degree": fit.degree,
-            "maximum_degree_allowed": sensors.maximum_degree(data.n_points),
-            "scores": [
-                {
-                    "degree": s.degree,
-                    "chi_squared": s.chi_squared,
-                    "degrees_of_freedom": s.degrees_of_freedom,
-                    "aicc": s.aicc,
-                    "leave_one_out": s.loo,
-                    "monotonic": s.monotonic,
-                }
-                for s in fit.scores
-            ],
-            "chi_squared": fit.chi_squared,
-            "degrees_of_freedom": fit.degrees_of_freedom,
-            "birge_ratio": fit.birge_ratio,
-            "iterations": fit.iterations,
-            "warnings": list(fit.warnings),
-        },
-        "points": [
+    return results
+
+
+def _fit_record(fit, data) -> dict:
+    return {
+        "method": "generalised least squares on ln T with the full covariance of the points; "
+        "resistance uncertainty through the curve's slope, iterated to convergence "
+        "(effective variance)",
+        "degree_criterion": fit.criterion,
+        "degree": fit.degree,
+        "maximum_degree_allowed": sensors.maximum_degree(data.n_points),
+        "scores": [
             {
-                "sweep": n,
-                "resistance_ohm": float(data.resistance_ohm[i]),
-                "resistance_relative_u": float(data.u_ln_resistance[i]),
-                "resistance_source": readings[n].source,
-                "temperature_K": float(data.temperature_K[i]),
-                "temperature_relative_u_independent": float(data.u_ln_temperature[i]),
-                "temperature_relative_u_common": {
-                    c.name: float(c.relative_uncertainties[i])
-                    for c in data.components
-                    if c.quantity == "temperature"
-                },
-                "residual_ln_T": float(fit.residuals_ln_T[i]),
-                "normalised_residual": float(fit.normalised_residuals[i]),
+                "degree": s.degree,
+                "chi_squared": s.chi_squared,
+                "degrees_of_freedom": s.degrees_of_freedom,
+                "aicc": s.aicc,
+                "leave_one_out": s.loo,
+                "monotonic": s.monotonic,
             }
-            for i, n in enumerate(names)
+            for s in fit.scores
         ],
-        "correlated_components": [
-            {"name": c.name, "quantity": c.quantity, "note": c.note} for c in data.components
-        ],
-        "table": {
-            "file": "calibration_table.csv",
-            "coverage_probability": coverage,
-            "rows": [
-                {
-                    "resistance_ohm": float(table.resistance_ohm[i]),
-                    "temperature_K": float(table.temperature_K[i]),
-                    "standard_uncertainty_K": float(table.standard_uncertainty_K[i]),
-                    "expanded_uncertainty_K": float(table.expanded_uncertainty_K[i]),
-                    "coverage_factor": float(table.coverage_factor[i]),
-                    "sensitivity_dlnR_dlnT": float(table.sensitivity_dlnR_dlnT[i]),
-                }
-                for i in range(table.resistance_ohm.size)
-            ],
-        },
-        "hopping_check": None
-        if hop is None
-        else {
-            "form": "R = R0 exp[(T0/T)^p] (variable-range hopping), a sanity check only",
-            "r0_ohm": hop.r0_ohm,
-            "t0_K": hop.t0_K,
-            "exponent_p": hop.exponent,
-            "chi_squared": hop.chi_squared,
-            "degrees_of_freedom": hop.degrees_of_freedom,
-            "max_relative_difference": hop.max_relative_difference,
-            "max_normalised_difference": hop.max_normalised_difference,
-            "at_resistance_ohm": hop.at_resistance_ohm,
-            "note": hop.note,
-        },
-        "plts2000_cross_check": cross,
+        "chi_squared": fit.chi_squared,
+        "degrees_of_freedom": fit.degrees_of_freedom,
+        "birge_ratio": fit.birge_ratio,
+        "iterations": fit.iterations,
+        "warnings": list(fit.warnings),
     }
-    section["posterior_correlation"] = (
-        "from the CBT global fit (shared charging energy)"
-        if data.ln_temperature_covariance is not None
-        else "none: independent fits"
-    )
-    outcome.sections = {**cbt.sections, "sensor_calibration": section}
-    outcome.plots = dict(cbt.plots)
-    title = (
-        f"sensor calibration: degree {fit.degree}, {data.n_points} points, "
-        f"{t_lo * 1e3:.3g}–{t_hi * 1e3:.4g} mK"
-    )
-    outcome.plots["sensor calibration curve and deviations of the points"] = curve_svg(
-        fit, table, title
-    )
-    outcome.extra_files = {"calibration_table.csv": table_csv(table)}
-    outcome.diagnostics = {**cbt.diagnostics, "curve_warnings": list(fit.warnings)}
-    outcome.deviations = list(cbt.deviations)
-    if bridge_u is None:
-        outcome.deviations.append(
+
+
+def _points_record(names: list[str], data, fit, readings: dict) -> list[dict]:
+    return [
+        {
+            "sweep": n,
+            "resistance_ohm": float(data.resistance_ohm[i]),
+            "resistance_relative_u": float(data.u_ln_resistance[i]),
+            "resistance_source": readings[n].source,
+            "temperature_K": float(data.temperature_K[i]),
+            "temperature_relative_u_independent": float(data.u_ln_temperature[i]),
+            "temperature_relative_u_common": {
+                c.name: float(c.relative_uncertainties[i])
+                for c in data.components
+                if c.quantity == "temperature"
+            },
+            "residual_ln_T": float(fit.residuals_ln_T[i]),
+            "normalised_residual": float(fit.normalised_residuals[i]),
+        }
+        for i, n in enumerate(names)
+    ]
+
+
+def _table_record(table, coverage: float) -> dict:
+    return {
+        "file": "calibration_table.csv",
+        "coverage_probability": coverage,
+        "rows": [
+            {
+                "resistance_ohm": float(table.resistance_ohm[i]),
+                "temperature_K": float(table.temperature_K[i]),
+                "standard_uncertainty_K": float(table.standard_uncertainty_K[i]),
+                "expanded_uncertainty_K": float(table.expanded_uncertainty_K[i]),
+                "coverage_factor": float(table.coverage_factor[i]),
+                "sensitivity_dlnR_dlnT": float(table.sensitivity_dlnR_dlnT[i]),
+            }
+            for i in range(table.resistance_ohm.size)
+        ],
+    }
+
+
+def _hopping_record(hop) -> dict | None:
+    if hop is None:
+        return None
+    return {
+        "form": "R = R0 exp[(T0/T)^p] (variable-range hopping), a sanity check only",
+        "r0_ohm": hop.r0_ohm,
+        "t0_K": hop.t0_K,
+        "exponent_p": hop.exponent,
+        "chi_squared": hop.chi_squared,
+        "degrees_of_freedom": hop.degrees_of_freedom,
+        "max_relative_difference": hop.max_relative_difference,
+        "max_normalised_difference": hop.max_normalised_difference,
+        "at_resistance_ohm": hop.at_resistance_ohm,
+        "note": hop.note,
+    }
+
+
+def _deviations(cbt, fit, settings: SensorSettings, pressures: dict) -> list[str]:
+    deviations = list(cbt.deviations)
+    if settings.bridge_u is None:
+        deviations.append(
             f"bridge resistance-scale uncertainty not stated: {DEFAULT_BRIDGE_RELATIVE_U:g} "
             "relative assumed (common to all points)"
         )
-    if reading_u is None:
-        outcome.deviations.append(
+    if settings.reading_u is None:
+        deviations.append(
             f"sensor reading noise not stated: {DEFAULT_READING_RELATIVE_U:g} relative assumed"
         )
-    if pressures and pressure_u is None:
-        outcome.deviations.append(
+    if pressures and settings.pressure_u is None:
+        deviations.append(
             f"melting-pressure uncertainty not stated: {DEFAULT_MELTING_PRESSURE_U_PA:g} Pa assumed"
         )
-    outcome.deviations.extend(f"calibration curve: {w}" for w in fit.warnings)
-    outcome.method = {
+    deviations.extend(f"calibration curve: {w}" for w in fit.warnings)
+    return deviations
+
+
+def _method(cbt, fit) -> dict:
+    return {
         "name": "Resistance-thermometer calibration against Coulomb-blockade primary thermometry",
         "description": (
             cbt.method.get("description", "")
@@ -818,107 +738,82 @@ def analyse(
         ),
         "models": cbt.method.get("models", []),
     }
-    outcome.conditions = {
-        **cbt.conditions,
-        "sensor": _manifest_text(manifest, "sensor"),
+
+
+def analyse(
+    run: Run, seed: int, progress: Progress | None = None, fast: bool = False
+) -> CalibrationOutcome:
+    """Sensor calibration: CBT temperature per sweep (the cbt kind), then the curve and table."""
+    manifest = run.manifest
+    settings = SensorSettings.from_manifest(manifest)
+    # The sensor side is checked before spending minutes on the CBT fits.
+    sweeps, readings, pressures = _sensor_side(run, settings)
+
+    def cbt_progress(frac: float, step: str) -> None:
+        if progress:
+            progress(0.9 * frac, step)
+
+    cbt = thermometry.analyse(run, seed, progress=cbt_progress, fast=fast)
+    entries = {e["sweep"]: e for e in cbt.results}
+    if progress:
+        progress(0.92, "fitting the calibration curve")
+    names = [f.name for f in sweeps]
+    data = points_from_cbt(
+        sweeps,
+        entries,
+        readings,
+        DEFAULT_BRIDGE_RELATIVE_U if settings.bridge_u is None else settings.bridge_u,
+        _global_correlation(cbt.sections.get("global_fit"), names),
+    )
+    fit = _fit_curve(data, settings)
+    curve = fit.curve
+    lo, hi = curve.resistance_range_ohm
+    grid = np.geomspace(lo, hi, settings.table_points)
+    grid[0], grid[-1] = lo, hi
+    table = curve.table(grid, coverage_probability=settings.coverage)
+    t_lo, t_hi = curve.temperature_range_K
+
+    outcome = CalibrationOutcome(
+        results=_results(sweeps, entries, readings, curve, table, settings.coverage))
+    pressure_u = DEFAULT_MELTING_PRESSURE_U_PA if settings.pressure_u is None else settings.pressure_u
+    section = {
+        "sensor": _manifest_text(manifest, "sensor") or {"identifier": "not stated"},
+        "valid_range": {
+            "resistance_ohm": [lo, hi],
+            "temperature_K": [t_lo, t_hi],
+            "statement": "temperatures are given only for resistances inside this range; "
+            "the curve is not extrapolated",
+        },
+        "curve": curve_record(curve),
+        "fit": _fit_record(fit, data),
+        "points": _points_record(names, data, fit, readings),
+        "correlated_components": [
+            {"name": c.name, "quantity": c.quantity, "note": c.note} for c in data.components
+        ],
+        "table": _table_record(table, settings.coverage),
+        "hopping_check": _hopping_record(fit.hopping),
+        "plts2000_cross_check": plts_cross_check(names, pressures, entries, pressure_u),
+        "posterior_correlation": "from the CBT global fit (shared charging energy)"
+        if data.ln_temperature_covariance is not None
+        else "none: independent fits",
     }
-    outcome.html_sections = [_html_section(section)]
+    outcome.sections = {**cbt.sections, "sensor_calibration": section}
+    title = (
+        f"sensor calibration: degree {fit.degree}, {data.n_points} points, "
+        f"{t_lo * 1e3:.3g}–{t_hi * 1e3:.4g} mK"
+    )
+    outcome.plots = {**cbt.plots,
+                     "sensor calibration curve and deviations of the points": curve_svg(fit, table, title)}
+    outcome.extra_files = {"calibration_table.csv": table_csv(table)}
+    outcome.diagnostics = {**cbt.diagnostics, "curve_warnings": list(fit.warnings)}
+    outcome.deviations = _deviations(cbt, fit, settings, pressures)
+    outcome.method = _method(cbt, fit)
+    outcome.conditions = {**cbt.conditions, "sensor": _manifest_text(manifest, "sensor")}
     if progress:
         progress(1.0, "done")
     return outcome
 
 
-CRITERION_NAMES = {
-    "aicc": "AICc (corrected Akaike information criterion)",
-    "loo": "leave-one-out cross-validation",
-    "fixed degree": "the run manifest (fixed degree)",
-}
-
-
-def _html_section(section: dict) -> str:
-    e = html.escape
-
-    def g(x, d: int = 6) -> str:
-        return "—" if x is None else f"{x:.{d}g}"
-
-    rng = section["valid_range"]
-    fit = section["fit"]
-    parts = [
-        "<h2>Sensor calibration</h2>",
-        "<p>Sensor: " + e(", ".join(f"{k}: {v}" for k, v in section["sensor"].items())) + "</p>",
-        f"<p><b>Valid range</b>: {g(rng['resistance_ohm'][0])}–{g(rng['resistance_ohm'][1])} Ω, "
-        f"i.e. {g(rng['temperature_K'][0] * 1e3, 4)}–{g(rng['temperature_K'][1] * 1e3, 4)} mK. "
-        f"{e(rng['statement'])}.</p>",
-        f"<p>Curve: {e(section['curve']['form'])}; degree {fit['degree']} chosen by "
-        f"{e(CRITERION_NAMES.get(fit['degree_criterion'], fit['degree_criterion']))}; "
-        f"χ² = {g(fit['chi_squared'], 4)} for "
-        f"{fit['degrees_of_freedom']} degrees of freedom (Birge ratio {g(fit['birge_ratio'], 3)}). "
-        "Coefficients: " + ", ".join(g(c, 10) for c in section["curve"]["coefficients"]) + ".</p>",
-        "<h3>Calibration points</h3><table><tr><th>sweep</th><th>R (Ω)</th><th>T (K)</th>"
-        "<th>u(T)/T independent</th><th>residual ln T</th><th>normalised residual</th></tr>",
-    ]
-    for p in section["points"]:
-        parts.append(
-            f"<tr><td>{e(p['sweep'])}</td><td class=num>{g(p['resistance_ohm'], 7)}</td>"
-            f"<td class=num>{g(p['temperature_K'], 6)}</td>"
-            f"<td class=num>{g(p['temperature_relative_u_independent'], 2)}</td>"
-            f"<td class=num>{g(p['residual_ln_T'], 3)}</td>"
-            f"<td class=num>{g(p['normalised_residual'], 3)}</td></tr>"
-        )
-    parts.append("</table>")
-    parts.append(
-        "<p class=small>Components common to all points (carried as correlated): "
-        + e("; ".join(c["name"] for c in section["correlated_components"]))
-        + ".</p>"
-    )
-    hop = section["hopping_check"]
-    if hop:
-        parts.append(
-            f"<p class=small>Sanity check: the hopping form R = R0 exp[(T0/T)^p] fits with "
-            f"p = {hop['exponent_p']:.3f}; it differs from the calibration curve by at most "
-            f"{hop['max_relative_difference'] * 100:.2g} % ({hop['max_normalised_difference']:.2g} "
-            "standard uncertainties of the curve). It is not used for the results.</p>"
-        )
-    cross = section["plts2000_cross_check"]
-    if cross:
-        parts.append(
-            "<h3>Cross-check against PLTS-2000 (³He melting curve)</h3><table><tr><th>sweep</th>"
-            "<th>p (Pa)</th><th>T PLTS-2000 (K)</th><th>T CBT (K)</th><th>difference</th>"
-            "<th>ζ</th><th>E_n</th><th>note</th></tr>"
-        )
-        for c in cross:
-            if c["status"] != "compared":
-                parts.append(
-                    f"<tr><td>{e(c['sweep'])}</td><td class=num>{g(c['pressure_Pa'], 9)}</td>"
-                    f"<td colspan=6>{e(c['status'])}</td></tr>"
-                )
-                continue
-            parts.append(
-                f"<tr><td>{e(c['sweep'])}</td><td class=num>{g(c['pressure_Pa'], 9)}</td>"
-                f"<td class=num>{g(c['plts2000_temperature_K'])}</td>"
-                f"<td class=num>{g(c['cbt_temperature_K'])}</td>"
-                f"<td class=num>{c['relative_difference'] * 100:.3g} %</td>"
-                f"<td class=num>{g(c['normalised_difference_zeta'], 3)}</td>"
-                f"<td class=num>{g(c['E_n'], 3)}</td><td class=small>{e('; '.join(c['warnings']))}"
-                "</td></tr>"
-            )
-        parts.append("</table>")
-    parts.append(
-        "<h3>Calibration table</h3><p class=small>Also written as calibration_table.csv "
-        f"({e(TABLE_HEADER)}); coverage probability {section['table']['coverage_probability']:g}."
-        "</p><table><tr><th>R (Ω)</th><th>T (K)</th><th>u (K)</th><th>U (K)</th><th>k</th>"
-        "<th>d ln R / d ln T</th></tr>"
-    )
-    for r in section["table"]["rows"]:
-        parts.append(
-            f"<tr><td class=num>{g(r['resistance_ohm'], 7)}</td><td class=num>{g(r['temperature_K'])}</td>"
-            f"<td class=num>{g(r['standard_uncertainty_K'], 2)}</td>"
-            f"<td class=num>{g(r['expanded_uncertainty_K'], 2)}</td>"
-            f"<td class=num>{g(r['coverage_factor'], 3)}</td>"
-            f"<td class=num>{g(r['sensitivity_dlnR_dlnT'], 3)}</td></tr>"
-        )
-    parts.append("</table>")
-    return "\n".join(parts)
 
 
 # --------------------------------------------------------------------------------------------

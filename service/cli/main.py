@@ -14,6 +14,7 @@ COMMAND_MODULES: tuple[str, ...] = (
     "service.cli.run_commands",
     "service.cli.sensor_commands",
     "service.cli.service_commands",
+    "service.cli.history_commands",
 )
 
 

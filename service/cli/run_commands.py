@@ -63,6 +63,9 @@ class ProgressBar:
         self.last = -1
 
     def __call__(self, fraction: float, step: str) -> None:
+        # Parallel sweeps report out of order; the bar never moves backwards.
+        fraction = max(float(fraction), self.last)
+        self.last = fraction
         if not self.tty:
             return
         width = 30

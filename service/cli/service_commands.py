@@ -33,6 +33,15 @@ def _add_instance(parser: argparse.ArgumentParser) -> None:
     )
 
 
+def _add_read_only(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "--read-only",
+        action="store_true",
+        help="open the instance for reading only (an audit copy or a backup): nothing is "
+        "written, not even the event log; chosen anyway when the folder cannot be written",
+    )
+
+
 def _app(args: argparse.Namespace, **config):
     from service.web.app import create_app
 
@@ -57,6 +66,8 @@ def _existing_app(args: argparse.Namespace, **config):
             f"no coldcert instance at {folder} (from {how}); nothing was created. Choose the "
             "archive's folder with --instance FOLDER or the COLDCERT_INSTANCE environment variable"
         )
+    if getattr(args, "read_only", False):
+        config.setdefault("READ_ONLY", True)
     return _app(args, **config)
 
 
@@ -67,7 +78,30 @@ def add_commands(subparsers: argparse._SubParsersAction) -> None:
     _add_instance(p)
     p.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1)")
     p.add_argument("--port", type=int, default=8600, help="port (default 8600)")
-    p.add_argument("--workers", type=int, default=2, help="background analysis processes")
+    p.add_argument(
+        "--workers",
+        type=int,
+        default=2,
+        help="background analysis processes of the embedded pool (0: none, e.g. when "
+        "`coldcert work` runs them, or a second web process behind a proxy); with a broker "
+        "configured the workers are `coldcert work` processes and this is ignored",
+    )
+    p.add_argument(
+        "--threads", type=int, default=8, help="request threads of the web server (default 8)"
+    )
+    p.add_argument(
+        "--proxy",
+        default=None,
+        metavar="ADDRESS",
+        help="address of a reverse proxy in front of this server whose X-Forwarded-For/-Proto/"
+        "-Host headers are to be trusted (e.g. 127.0.0.1)",
+    )
+    p.add_argument(
+        "--development-server",
+        action="store_true",
+        help="use werkzeug's development server instead of waitress (never for users)",
+    )
+    _add_read_only(p)
     p.add_argument(
         "--quick",
         action="store_true",
@@ -77,12 +111,26 @@ def add_commands(subparsers: argparse._SubParsersAction) -> None:
 
     p = subparsers.add_parser(
         "work",
-        help="run analysis worker processes only (no web server), e.g. on another machine "
-        "sharing the database and the instance folder",
+        help="run analysis workers only (no web server), e.g. on another machine: with a broker "
+        "configured, distributed-queue workers; otherwise the embedded pool's processes",
     )
     _add_instance(p)
     p.add_argument("--processes", type=int, default=1, help="worker processes (default 1)")
     p.add_argument("--quick", action="store_true", help="short MCMC settings")
+    p.add_argument(
+        "--broker",
+        default=None,
+        metavar="URL",
+        help="broker URL (e.g. redis://host:6379/0); default BROKER_URL of the instance's "
+        "config.py or $COLDCERT_BROKER_URL",
+    )
+    p.add_argument(
+        "--database",
+        default=None,
+        metavar="URL",
+        help="database URL; default DATABASE_URL of config.py, $COLDCERT_DATABASE_URL, or the "
+        "instance's SQLite file",
+    )
     p.set_defaults(handler=_work)
 
     p = subparsers.add_parser("add-admin", help="create an administrator account")
@@ -116,6 +164,7 @@ def add_commands(subparsers: argparse._SubParsersAction) -> None:
         help="the lab's published public key (PEM or hex file) for checking a file offline",
     )
     p.add_argument("--json", action="store_true", help="print the report as JSON")
+    _add_read_only(p)
     p.set_defaults(handler=_verify)
 
     p = subparsers.add_parser(
@@ -131,11 +180,24 @@ def add_commands(subparsers: argparse._SubParsersAction) -> None:
 
 def _serve(args: argparse.Namespace) -> int:
     options = {"fast": True} if args.quick else {}
-    app = _app(args, START_WORKERS=True, WORKERS=args.workers, ANALYSIS_OPTIONS=options)
+    app = _app(
+        args,
+        START_WORKERS=True,
+        WORKERS=args.workers,
+        ANALYSIS_OPTIONS=options,
+        READ_ONLY=args.read_only,
+    )
     services = app.extensions["coldcert"]
     print(f"coldcert: instance {app.instance_path}", file=sys.stderr)
     print(f"coldcert: lab public key {services.key.key_id}", file=sys.stderr)
-    print(f"coldcert: serving on http://{args.host}:{args.port}/", file=sys.stderr)
+    if services.engine is not None:
+        print("coldcert: analysis jobs go to the distributed queue", file=sys.stderr)
+    server_name = "werkzeug development server" if args.development_server else "waitress"
+    print(
+        f"coldcert: serving on http://{args.host}:{args.port}/ ({server_name})",
+        file=sys.stderr,
+        flush=True,
+    )
 
     def _terminate(_signum, _frame):
         # SIGTERM (service managers, kill) stops like Ctrl-C: workers are told to finish first.
@@ -143,16 +205,37 @@ def _serve(args: argparse.Namespace) -> int:
 
     signal.signal(signal.SIGTERM, _terminate)
     try:
-        app.run(host=args.host, port=args.port, threaded=True, use_reloader=False)
+        if args.development_server:
+            app.run(host=args.host, port=args.port, threaded=True, use_reloader=False)
+        else:
+            from service.web.server import production_server
+
+            production_server(app, args.host, args.port, args.threads, args.proxy).run()
     finally:
         services.stop_workers()
     return 0
 
 
 def _work(args: argparse.Namespace) -> int:
-    options = {"fast": True} if args.quick else {}
-    app = _app(args, ANALYSIS_OPTIONS=options)
-    services = app.extensions["coldcert"]
+    from service.web.app import load_config, worker_settings
+
+    overrides = {"ANALYSIS_OPTIONS": {"fast": True}} if args.quick else {}
+    if args.broker:
+        overrides["BROKER_URL"] = args.broker
+    if args.database:
+        overrides["DATABASE_URL"] = args.database
+    instance = Path(_instance(args)).resolve()
+    config = load_config(instance, overrides)
+    settings = worker_settings(config, instance)
+    if config["BROKER_URL"]:
+        return _work_distributed(config, settings, args.processes)
+    from service.queue.jobs import WorkerPool
+
+    storage = settings.open_storage()
+    try:
+        storage.create_schema()
+    finally:
+        storage.dispose()
     stop = threading.Event()
 
     def _terminate(_signum, _frame):
@@ -160,9 +243,10 @@ def _work(args: argparse.Namespace) -> int:
 
     signal.signal(signal.SIGTERM, _terminate)
     signal.signal(signal.SIGINT, _terminate)
-    pool = services.start_workers(args.processes)
+    pool = WorkerPool(settings, args.processes)
+    pool.start()
     print(
-        f"coldcert: {args.processes} worker process(es) {pool.pids} on {app.instance_path}",
+        f"coldcert: {args.processes} worker process(es) {pool.pids} on {instance}",
         file=sys.stderr,
         flush=True,
     )
@@ -170,7 +254,44 @@ def _work(args: argparse.Namespace) -> int:
         while not stop.wait(1.0):
             pass
     finally:
-        services.stop_workers()
+        pool.stop()
+    return 0
+
+
+def _work_distributed(config, settings, processes: int) -> int:
+    """Celery workers taking analysis jobs from the broker (no web server, no signing key)."""
+    from service.queue.engine import EngineQueue, redact, worker_argv
+    from service.queue.jobs import import_string
+    from service.web.app import engine_settings
+
+    # Import the analysis once here: the worker processes forked from this one start ready.
+    import_string(settings.certify)
+    import_string(settings.load_run)
+
+    storage = settings.open_storage()
+    storage.create_schema()
+    # Worker processes are forked from this one; they open their own connections and must not
+    # touch (or close) the ones inherited from here.
+    if hasattr(os, "register_at_fork"):  # POSIX; Windows workers do not fork
+        os.register_at_fork(after_in_child=lambda: storage.engine.dispose(close=False))
+    engine = engine_settings(config)
+    queue = EngineQueue(storage, settings, engine)
+    # This machine also re-publishes jobs whose message was lost and re-queues jobs whose
+    # worker died, so nothing waits for a web process to notice.
+    queue.start()
+    print(
+        f"coldcert: {processes} distributed worker process(es) on {redact(engine.broker_url)}, "
+        f"database {redact(settings.database_url)}",
+        file=sys.stderr,
+        flush=True,
+    )
+    try:
+        queue.celery.worker_main(worker_argv(processes))
+    except SystemExit as exc:
+        return int(exc.code or 0)
+    finally:
+        queue.stop()
+        storage.dispose()
     return 0
 
 

@@ -20,7 +20,6 @@ import logging
 import multiprocessing
 import os
 import socket
-import tempfile
 import threading
 import time
 import traceback
@@ -34,8 +33,8 @@ from typing import Any
 from sqlalchemy import Connection, and_, select
 
 from service import storage as st
-from service.archive import Archive, LabKey, analysis_output, log_event, software_versions
-from service.storage import Storage, utc_now
+from service.archive import Archive, analysis_output, log_event, software_versions
+from service.storage import Storage, pid_alive, utc_now
 
 logger = logging.getLogger(__name__)
 
@@ -82,6 +81,63 @@ def enqueue(
     return job_id
 
 
+#: How often a failed job may be queued again by hand (e.g. a valid run whose workers were
+#: killed by restarts three times); beyond it, upload the run again.
+MAX_RETRIES = 2
+
+
+class RetryRefused(Exception):
+    """A job that cannot be queued again; ``status`` is the HTTP answer (404 or 409)."""
+
+    def __init__(self, message: str, status: int = 409) -> None:
+        super().__init__(message)
+        self.status = status
+
+
+def retry(storage: Storage, job_id: str, requested_by: Mapping[str, Any]) -> dict[str, Any]:
+    """Queue a failed job again, at most ``MAX_RETRIES`` times; each retry is in the event log."""
+    with storage.write() as conn:
+        row = conn.execute(select(st.jobs).where(st.jobs.c.id == job_id)).first()
+        if row is None:
+            raise RetryRefused(f"job {job_id} not found", 404)
+        if row.status != "failed":
+            raise RetryRefused(f"job {job_id} is {row.status}; only a failed job can be retried")
+        done = conn.execute(
+            select(st.events.c.id)
+            .where(st.events.c.action == "job.retried")
+            .where(st.events.c.subject == job_id)
+        ).all()
+        if len(done) >= MAX_RETRIES:
+            raise RetryRefused(
+                f"job {job_id} was retried {len(done)} times already (the limit); its last "
+                f"error: {row.error}. Check the run and upload it again"
+            )
+        conn.execute(
+            st.jobs.update()
+            .where(and_(st.jobs.c.id == job_id, st.jobs.c.status == "failed"))
+            .values(
+                status="queued",
+                attempts=0,
+                error=None,
+                claimed_by=None,
+                fraction=0.0,
+                finished_at=None,
+                dispatched_at=None,
+                step=f"queued again by {requested_by['username']} "
+                f"(retry {len(done) + 1} of {MAX_RETRIES})",
+            )
+        )
+        log_event(
+            conn,
+            requested_by["username"],
+            "job.retried",
+            job_id,
+            {"retry": len(done) + 1, "previous_error": row.error},
+        )
+    return {"job_id": job_id, "status": "queued", "retry": len(done) + 1,
+            "retries_left": MAX_RETRIES - len(done) - 1}
+
+
 def job_status(storage: Storage, job_id: str) -> dict[str, Any] | None:
     with storage.read() as conn:
         row = conn.execute(select(st.jobs).where(st.jobs.c.id == job_id)).first()
@@ -97,57 +153,71 @@ def _host_id() -> str:
     return socket.gethostname()
 
 
-def _pid_alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
+def holder_gone(row: Any, stale_after: float = STALE_AFTER_SECONDS) -> bool:
+    """Whether a running job's worker is gone: its process no longer exists on this host, or its
+    heartbeat is older than ``stale_after`` seconds (a worker elsewhere that stopped beating)."""
+    cutoff = (datetime.now(UTC) - timedelta(seconds=stale_after)).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+    owner_host, _, rest = (row.claimed_by or "").partition(":")
+    pid_text = rest.split(":", 1)[0]
+    dead_here = owner_host == _host_id() and pid_text.isdigit() and not pid_alive(int(pid_text))
+    stale = (row.heartbeat_at or row.started_at or "") < cutoff
+    return dead_here or stale
+
+
+def interrupted_values(row: Any) -> dict[str, Any]:
+    """The job row's new values once its worker is gone: queued again, or failed for good
+    after ``MAX_ATTEMPTS`` attempts (so a run that kills its worker cannot loop for ever)."""
+    if row.attempts >= MAX_ATTEMPTS:
+        return {
+            "status": "failed",
+            "error": f"interrupted {row.attempts} times (worker died each time); "
+            "giving up — check the run's size and the service log",
+            "finished_at": utc_now(),
+        }
+    return {
+        "status": "queued",
+        "claimed_by": None,
+        "fraction": 0.0,
+        "step": f"interrupted at '{row.step}'; queued again",
+        "dispatched_at": None,
+    }
+
+
+def mark_interrupted(conn: Connection, row: Any) -> str | None:
+    """Record that ``row``'s worker is gone; returns the job's new status (None if another
+    process recorded it first)."""
+    values = interrupted_values(row)
+    result = conn.execute(
+        st.jobs.update()
+        .where(
+            and_(
+                st.jobs.c.id == row.id,
+                st.jobs.c.status == "running",
+                st.jobs.c.claimed_by == row.claimed_by,
+            )
+        )
+        .values(**values)
+    )
+    if result.rowcount != 1:
+        return None
+    log_event(
+        conn,
+        "service",
+        "job.interrupted",
+        row.id,
+        {"step": row.step, "attempts": row.attempts, "now": values["status"]},
+    )
+    return values["status"]
 
 
 def recover_interrupted(storage: Storage, stale_after: float = STALE_AFTER_SECONDS) -> list[str]:
     """Re-queue jobs whose worker died; fail those interrupted too often. Returns job ids."""
-    cutoff = (datetime.now(UTC) - timedelta(seconds=stale_after)).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
-    host = _host_id()
     recovered = []
     with storage.write() as conn:
         rows = conn.execute(select(st.jobs).where(st.jobs.c.status == "running")).all()
         for row in rows:
-            owner_host, _, rest = (row.claimed_by or "").partition(":")
-            pid_text = rest.split(":", 1)[0]
-            dead_here = owner_host == host and pid_text.isdigit() and not _pid_alive(int(pid_text))
-            stale = (row.heartbeat_at or row.started_at or "") < cutoff
-            if not (dead_here or stale):
-                continue
-            if row.attempts >= MAX_ATTEMPTS:
-                values = {
-                    "status": "failed",
-                    "error": f"interrupted {row.attempts} times (worker died each time); "
-                    "giving up — check the run's size and the service log",
-                    "finished_at": utc_now(),
-                }
-            else:
-                values = {
-                    "status": "queued",
-                    "claimed_by": None,
-                    "fraction": 0.0,
-                    "step": f"interrupted at '{row.step}'; queued again",
-                }
-            conn.execute(
-                st.jobs.update()
-                .where(and_(st.jobs.c.id == row.id, st.jobs.c.status == "running"))
-                .values(**values)
-            )
-            log_event(
-                conn,
-                "service",
-                "job.interrupted",
-                row.id,
-                {"step": row.step, "attempts": row.attempts, "now": values["status"]},
-            )
-            recovered.append(row.id)
+            if holder_gone(row, stale_after) and mark_interrupted(conn, row) is not None:
+                recovered.append(row.id)
     return recovered
 
 
@@ -182,6 +252,44 @@ def claim(storage: Storage, worker: str) -> dict[str, Any] | None:
         return dict(job._mapping)
 
 
+def take(
+    storage: Storage, job_id: str, worker: str, stale_after: float = STALE_AFTER_SECONDS
+) -> dict[str, Any] | None:
+    """Take the job a queue message names, if it still has to run; None for a duplicate.
+
+    The distributed queue's counterpart of :func:`claim`. A queued job is taken. A running job
+    whose holder is gone (see :func:`holder_gone`) was interrupted: it is taken again, or failed
+    once it has used ``MAX_ATTEMPTS``. A job that is done, failed, or held by a live worker is
+    left alone, so a message delivered twice runs the job once.
+    """
+    with storage.write() as conn:
+        row = conn.execute(
+            select(st.jobs).where(st.jobs.c.id == job_id).with_for_update()
+        ).first()
+        if row is None:
+            logger.warning("queue message for unknown job %s dropped", job_id)
+            return None
+        if row.status == "running" and holder_gone(row, stale_after):
+            if mark_interrupted(conn, row) != "queued":
+                return None
+        elif row.status != "queued":
+            return None
+        now = utc_now()
+        conn.execute(
+            st.jobs.update()
+            .where(and_(st.jobs.c.id == job_id, st.jobs.c.status == "queued"))
+            .values(
+                status="running",
+                claimed_by=worker,
+                started_at=now,
+                heartbeat_at=now,
+                attempts=st.jobs.c.attempts + 1,
+                step="starting",
+            )
+        )
+        return dict(conn.execute(select(st.jobs).where(st.jobs.c.id == job_id)).one()._mapping)
+
+
 class ProgressReporter:
     """Writes progress into the job row, at most every ``PROGRESS_MIN_INTERVAL`` seconds."""
 
@@ -192,7 +300,8 @@ class ProgressReporter:
         self.latest: tuple[float, str] = (0.0, "starting")
 
     def __call__(self, fraction: float, step: str = "") -> None:
-        fraction = min(max(float(fraction), 0.0), 1.0)
+        # Never backwards: sweeps fitted side by side report their own fractions out of order.
+        fraction = min(max(float(fraction), self.latest[0], 0.0), 1.0)
         self.latest = (fraction, str(step))
         now = time.monotonic()
         if now - self._last < PROGRESS_MIN_INTERVAL and fraction < 1.0:
@@ -220,13 +329,16 @@ class ProgressReporter:
 class WorkerSettings:
     database_url: str
     blob_root: str
-    key_dir: str
+    blob_store: str = "auto"
     certify: str = "service.calibrations.certify:certify_run"
     load_run: str = "service.intake:load_run"
     number_prefix: str = "CC"
     poll_seconds: float = 0.2
     #: Keyword options for the analysis (e.g. {"fast": True}); recorded with each certificate.
     options: dict[str, Any] = field(default_factory=dict)
+
+    def open_storage(self, read_only: bool = False) -> Storage:
+        return Storage(self.database_url, self.blob_root, self.blob_store, read_only=read_only)
 
 
 def execute(
@@ -258,7 +370,7 @@ def execute(
             ).one()
         if job["purpose"] == "certify":
             progress(0.0, "loading the archived raw files")
-            with tempfile.TemporaryDirectory(prefix="coldcert-job-") as tmp:
+            with storage.blobs.scratch("job") as tmp:
                 folder = archive.materialise_run(files, Path(tmp) / "run")
                 loaded = load_run(folder)
                 output = analysis_output(certify(loaded, run.seed, progress, **options))
@@ -277,6 +389,7 @@ def execute(
                     plots=output.plots,
                     extra_files=output.extra_files,
                     html_sections=output.html_sections,
+                    job_id=job["id"],
                 )
                 _finish(conn, job["id"], worker, {"certificate_id": cert_id}, cert_id)
         elif job["purpose"] == "reproduce":
@@ -313,6 +426,8 @@ def execute(
 
 
 def _failure_reason(exc: BaseException) -> str:
+    if type(exc).__name__ == "SoftTimeLimitExceeded":  # the distributed queue's per-job limit
+        return "the analysis ran longer than the per-job time limit and was stopped"
     parts = [f"{type(exc).__name__}: {exc}"]
     for attr in ("file", "line", "field"):
         value = getattr(exc, attr, None)
@@ -348,10 +463,9 @@ def _finish(
 def worker_main(settings: WorkerSettings, stop: Any) -> None:
     """Entry point of a worker process: claim and run jobs until ``stop`` is set."""
     logging.basicConfig(level=logging.INFO)
-    storage = Storage(settings.database_url, settings.blob_root)
-    archive = Archive(
-        storage, LabKey.load_or_create(settings.key_dir), number_prefix=settings.number_prefix
-    )
+    storage = settings.open_storage()
+    # Workers draft; they never sign, so they get no key.
+    archive = Archive(storage, None, number_prefix=settings.number_prefix)
     certify = import_string(settings.certify)
     load_run = import_string(settings.load_run)
     worker = f"{_host_id()}:{os.getpid()}:{uuid.uuid4().hex[:8]}"
@@ -397,9 +511,10 @@ class WorkerPool:
         return proc
 
     def start(self) -> None:
-        storage = Storage(self.settings.database_url, self.settings.blob_root)
+        storage = self.settings.open_storage()
         try:
             requeued = recover_interrupted(storage, stale_after=STALE_AFTER_SECONDS)
+            storage.blobs.clean_scratch()
         finally:
             storage.dispose()
         if requeued:
@@ -416,7 +531,7 @@ class WorkerPool:
                 if not proc.is_alive() and not self._stop.is_set():
                     died = True
                     logger.error("worker %s died (exit %s); restarting", proc.pid, proc.exitcode)
-                    storage = Storage(self.settings.database_url, self.settings.blob_root)
+                    storage = self.settings.open_storage()
                     try:
                         recover_interrupted(storage, stale_after=STALE_AFTER_SECONDS)
                     finally:
@@ -424,6 +539,10 @@ class WorkerPool:
                     self._procs[index] = self._spawn()
             # Back off if workers keep dying at start (e.g. a broken installation).
             delay = min(delay * 2, 60.0) if died else 1.0
+
+    def alive(self) -> int:
+        """Worker processes of this pool that are running now."""
+        return sum(1 for proc in self._procs if proc.is_alive())
 
     @property
     def pids(self) -> list[int | None]:

@@ -11,6 +11,7 @@ from __future__ import annotations
 import io
 import logging
 from collections.abc import Mapping
+from pathlib import Path
 from typing import Any
 from xml.sax.saxutils import escape
 
@@ -28,32 +29,53 @@ from reportlab.platypus import (
     TableStyle,
 )
 
+from service.render import content
+
 logger = logging.getLogger(__name__)
 
 #: Bump when the layout changes, so cached PDFs are laid out again.
-RENDERER_VERSION = 1
+RENDERER_VERSION = 3
 
+
+
+def _register_fonts() -> tuple[str, str]:
+    """DejaVu Sans (regular, bold), the TrueType fonts matplotlib ships, embedded in the PDF.
+
+    The 14 standard PDF fonts cover Latin-1 only; certificates use Greek letters, ⟨n⟩, Ω and
+    other symbols, which would print as empty boxes. Falls back to Helvetica if the files are
+    missing (the text stays extractable; some symbols then do not show).
+    """
+    try:
+        import matplotlib
+        from reportlab.pdfbase import pdfmetrics
+        from reportlab.pdfbase.ttfonts import TTFont
+
+        folder = Path(matplotlib.get_data_path()) / "fonts" / "ttf"
+        pdfmetrics.registerFont(TTFont("coldcert-sans", str(folder / "DejaVuSans.ttf")))
+        pdfmetrics.registerFont(TTFont("coldcert-sans-bold", str(folder / "DejaVuSans-Bold.ttf")))
+    except Exception:  # a missing font must not cost the certificate
+        logger.warning("DejaVu Sans not found; the PDF falls back to Helvetica")
+        return "Helvetica", "Helvetica-Bold"
+    return "coldcert-sans", "coldcert-sans-bold"
+
+
+FONT, BOLD_FONT = _register_fonts()
 _STYLES = getSampleStyleSheet()
-BODY = ParagraphStyle("body", parent=_STYLES["BodyText"], fontSize=9, leading=11.5)
+BODY = ParagraphStyle("body", parent=_STYLES["BodyText"], fontName=FONT, fontSize=9, leading=11.5)
 SMALL = ParagraphStyle("small", parent=BODY, fontSize=7.5, leading=9.5)
 CELL = ParagraphStyle("cell", parent=BODY, fontSize=7.5, leading=9)
-H1 = ParagraphStyle("h1", parent=_STYLES["Title"], fontSize=16, leading=20, alignment=0)
-H2 = ParagraphStyle("h2", parent=_STYLES["Heading2"], fontSize=11, leading=14, spaceBefore=8)
-H3 = ParagraphStyle("h3", parent=_STYLES["Heading3"], fontSize=9.5, leading=12, spaceBefore=6)
+H1 = ParagraphStyle("h1", parent=_STYLES["Title"], fontName=BOLD_FONT, fontSize=16, leading=20,
+                    alignment=0)
+H2 = ParagraphStyle("h2", parent=_STYLES["Heading2"], fontName=BOLD_FONT, fontSize=11, leading=14,
+                    spaceBefore=8)
+H3 = ParagraphStyle("h3", parent=_STYLES["Heading3"], fontName=BOLD_FONT, fontSize=9.5, leading=12,
+                    spaceBefore=6)
 WARN = ParagraphStyle("warn", parent=BODY, textColor=colors.HexColor("#8a4b00"))
 DRAFT = ParagraphStyle("draft", parent=BODY, textColor=colors.HexColor("#a3261b"), fontSize=10)
 
 
 def _p(text: Any, style: ParagraphStyle = BODY) -> Paragraph:
     return Paragraph(escape("" if text is None else str(text)), style)
-
-
-def _g(value: Any, digits: int = 6) -> str:
-    if value is None:
-        return "∞"
-    if isinstance(value, float):
-        return f"{value:.{digits}g}"
-    return str(value)
 
 
 def _grid(rows: list[list[Any]], widths: list[float] | None = None, header: bool = True) -> Table:
@@ -69,17 +91,6 @@ def _grid(rows: list[list[Any]], widths: list[float] | None = None, header: bool
         style.append(("BACKGROUND", (0, 0), (-1, 0), colors.HexColor("#eceff3")))
     table.setStyle(TableStyle(style))
     return table
-
-
-def _pairs(section: Mapping[str, Any] | None) -> Table | Paragraph:
-    rows = [
-        [k.replace("_", " "), v]
-        for k, v in (section or {}).items()
-        if not isinstance(v, dict | list) and v is not None
-    ]
-    if not rows:
-        return _p("not stated")
-    return _grid(rows, [45 * mm, 125 * mm], header=False)
 
 
 def _svg_flowable(svg: str, max_width: float):
@@ -100,8 +111,9 @@ def _svg_flowable(svg: str, max_width: float):
     return drawing
 
 
-def _numbered_canvas(certificate_id: str, state: str):
-    """A canvas class that stamps "<id> · page i of n" on every page once n is known."""
+def numbered_canvas(label: str, stamp: str = ""):
+    """A canvas class that writes ``label`` and "page i of n" at the foot of every page once n
+    is known, and ``stamp`` (in red) between them if given."""
 
     class NumberedCanvas(rl_canvas.Canvas):
         def __init__(self, *args, **kwargs) -> None:
@@ -122,196 +134,144 @@ def _numbered_canvas(certificate_id: str, state: str):
 
         def _footer(self, number: int, total: int) -> None:
             width, _height = self._pagesize
-            self.setFont("Helvetica", 8)
+            self.setFont(FONT, 8)
             self.setFillColor(colors.HexColor("#333333"))
-            self.drawString(18 * mm, 10 * mm, f"Certificate {certificate_id}")
+            self.drawString(18 * mm, 10 * mm, label)
             self.drawRightString(width - 18 * mm, 10 * mm, f"page {number} of {total}")
-            if state != "issued":
+            if stamp:
                 self.setFillColor(colors.HexColor("#a3261b"))
-                self.drawCentredString(
-                    width / 2, 10 * mm, state.upper() + (" — NOT VALID" if state == "draft" else "")
-                )
+                self.drawCentredString(width / 2, 10 * mm, stamp)
 
     return NumberedCanvas
 
 
-def render_pdf(record: Mapping[str, Any], plots: Mapping[str, str] | None = None) -> bytes:
-    """The certificate as PDF bytes (A4)."""
-    plots = dict(plots or {})
-    cid = str(record.get("certificate_id", "unnumbered"))
-    state = str(record.get("state", "draft"))
-    buffer = io.BytesIO()
-    doc = SimpleDocTemplate(
+def _numbered_canvas(certificate_id: str, state: str):
+    """Every page: "Certificate <id>", "page i of n", and the state unless issued."""
+    stamp = "" if state == "issued" else state.upper() + (" — NOT VALID" if state == "draft" else "")
+    return numbered_canvas(f"Certificate {certificate_id}", stamp)
+
+
+#: Width of the text column of an A4 page with our margins.
+TEXT_WIDTH = A4[0] - 36 * mm
+
+
+def a4_document(buffer: io.BytesIO, *, title: str, subject: str, author: str = ""):
+    """An A4 document with our margins, in reportlab's invariant mode (no creation time or
+    random id: the same content gives the same bytes)."""
+    return SimpleDocTemplate(
         buffer,
         pagesize=A4,
         leftMargin=18 * mm,
         rightMargin=18 * mm,
         topMargin=16 * mm,
         bottomMargin=18 * mm,
-        title=f"{record.get('title', 'Calibration certificate')} {cid}",
-        author=str((record.get("laboratory") or {}).get("name", "")),
-        subject=f"Certificate {cid}",
+        title=title,
+        author=author,
+        subject=subject,
         creator="coldcert",
-        invariant=1,  # no creation time or random id: the same record gives the same bytes
+        invariant=1,
     )
-    width = A4[0] - 36 * mm
-    story: list[Any] = [
-        _p(record.get("title", "Calibration certificate"), H1),
-        _p(f"Certificate {cid} · revision {record.get('revision', 1)} · state: {state}", BODY),
-    ]
-    if state == "draft":
-        story.append(_p("DRAFT — not valid until issued by an authorised approver.", DRAFT))
-    if state in ("superseded", "withdrawn"):
-        detail = record.get("superseded_by") or record.get("withdrawn_reason") or ""
-        story.append(_p(f"This certificate is {state}: {detail}", DRAFT))
-    if record.get("replaces"):
-        story.append(
-            _p(
-                f"This revision replaces certificate {record['replaces']}. Reason: "
-                f"{record.get('amendment_reason', '')}",
-                WARN,
-            )
-        )
-    for heading, key in (
-        ("Laboratory", "laboratory"),
-        ("Customer", "customer"),
-        ("Item calibrated", "item"),
-    ):
-        story += [_p(heading, H2), _pairs(record.get(key))]
-    dates = {k: v or "—" for k, v in (record.get("dates") or {}).items()}
-    story += [_p("Dates", H2), _pairs(dates)]
-    method = record.get("method") or {}
-    story += [_p("Method", H2), _p(method.get("description", method.get("name", "")))]
 
-    results = record.get("results") or []
-    story.append(_p("Results", H2))
-    rows: list[list[Any]] = [["quantity", "source", "value", "unit", "u", "U", "k", "p"]]
-    for r in results:
-        reported = r.get("reported") or {}
-        rows.append(
-            [
-                r.get("name", ""),
-                r.get("sweep", ""),
-                reported.get("value", _g(r.get("value"))),
-                r.get("unit", ""),
-                reported.get("standard_uncertainty", _g(r.get("standard_uncertainty"), 2)),
-                reported.get("expanded_uncertainty", _g(r.get("expanded_uncertainty"), 2)),
-                _g(r.get("coverage_factor"), 3),
-                f"{100 * float(r.get('coverage_probability', 0)):g} %",
-            ]
-        )
-    story.append(
-        _grid(rows, [34 * mm, 34 * mm, 20 * mm, 12 * mm, 20 * mm, 20 * mm, 14 * mm, 14 * mm])
-    )
-    story.append(
+
+def _check_flowable(check: Mapping[str, str], width: float) -> Table:
+    """Where and how a holder checks this certificate, with a QR code of the check address
+    (reportlab's own QR widget, ISO/IEC 18004)."""
+    from reportlab.graphics.barcode.qr import QrCodeWidget
+    from reportlab.graphics.shapes import Drawing
+
+    size = 26 * mm
+    widget = QrCodeWidget(check["url"], barLevel="M")
+    x0, y0, x1, y1 = widget.getBounds()
+    drawing = Drawing(size, size, transform=[size / (x1 - x0), 0, 0, size / (y1 - y0), 0, 0])
+    drawing.add(widget)
+    text = [
+        _p("Check this certificate", H3),
         _p(
-            "u: combined standard uncertainty; U = k·u, the expanded uncertainty, with k from "
-            "Student's t at the effective degrees of freedom for coverage probability p "
-            "(JCGM 100:2008).",
+            f"Certificate number {check['certificate_id']}. SHA-256 of its signed record: "
+            f"{check['signed_record_sha256']}.",
             SMALL,
-        )
-    )
-    for r in results:
-        block: list[Any] = [_p(f"Budget: {r.get('name', '')} — {r.get('sweep', '')}", H3)]
-        budget = r.get("budget")
-        if budget:
-            unit = budget.get("unit", "")
-            brows: list[list[Any]] = [
-                ["input", "estimate", "unit", "u(x)", "type", "distribution", "c", "c·u", "ν"]
-            ]
-            for row in budget.get("rows", []):
-                brows.append(
-                    [
-                        row.get("quantity", ""),
-                        _g(row.get("estimate")),
-                        row.get("unit", ""),
-                        _g(row.get("standard_uncertainty"), 3),
-                        row.get("type", ""),
-                        row.get("distribution", ""),
-                        f"{_g(row.get('sensitivity_coefficient'), 4)} "
-                        f"{row.get('sensitivity_unit', '')}",
-                        f"{_g(row.get('contribution'), 3)} {unit}",
-                        _g(row.get("degrees_of_freedom"), 3),
-                    ]
-                )
-            brows.append(
-                [
-                    "combined",
-                    "",
-                    "",
-                    f"{_g(budget.get('combined_standard_uncertainty'), 3)} {unit}",
-                    "",
-                    f"ν_eff {_g(budget.get('effective_degrees_of_freedom'), 3)}",
-                    f"k {_g(budget.get('coverage_factor'), 3)}",
-                    f"U {_g(budget.get('expanded_uncertainty'), 3)} {unit}",
-                    "",
-                ]
-            )
-            block.append(
-                _grid(
-                    brows,
-                    [
-                        36 * mm,
-                        18 * mm,
-                        10 * mm,
-                        17 * mm,
-                        10 * mm,
-                        19 * mm,
-                        24 * mm,
-                        22 * mm,
-                        14 * mm,
-                    ],
-                )
-            )
-        for warning in (r.get("diagnostics") or {}).get("warnings", []):
-            block.append(_p(f"Warning: {warning}", WARN))
-        story.append(KeepTogether(block))
-        key = f"fit-{r.get('sweep', '')}"
-        if key in plots:
-            drawing = _svg_flowable(plots.pop(key), width)
-            if drawing is not None:
-                story += [
-                    Spacer(1, 3 * mm),
-                    drawing,
-                    _p(f"Fit and residuals, {r.get('sweep')}", SMALL),
-                ]
-    for key, svg in plots.items():
-        drawing = _svg_flowable(svg, width)
-        if drawing is not None:
-            story += [Spacer(1, 3 * mm), drawing, _p(key, SMALL)]
-
-    conditions = record.get("conditions") or {}
-    story.append(_p("Conditions of measurement", H2))
-    story.append(_pairs({k: v for k, v in conditions.items() if not isinstance(v, list)}))
-    for sweep in conditions.get("sweeps", []) or []:
-        story += [Spacer(1, 2 * mm), _pairs(sweep)]
-    deviations = record.get("deviations") or []
-    story.append(_p("Deviations and assumptions", H2))
-    story += [_p(f"• {d}") for d in deviations] or [_p("None.")]
-    story += [_p("Traceability", H2), _p(record.get("traceability", "not stated"))]
-    story.append(_p("Statements and cautions", H2))
-    story += [_p(f"• {s}") for s in record.get("statements") or []]
-    people = record.get("people") or {}
-    story += [
-        _p("Authorisation", H2),
+        ),
         _p(
-            f"Operator: {people.get('operator') or '—'}. Approved and issued by: "
-            f"{people.get('approver') or 'not yet issued'}."
+            f"Anyone holding this file can check that the laboratory issued it and whether it is "
+            f"still in force, without an account, at {check['url']} (give the number and this "
+            "file; the file is fingerprinted in the browser and not uploaded).",
+            SMALL,
         ),
     ]
-    files = (record.get("inputs") or {}).get("files") or []
-    if files:
-        story.append(_p("Records", H2))
-        story.append(
-            _grid(
-                [["input file", "SHA-256"]] + [[f["name"], f["sha256"]] for f in files],
-                [45 * mm, 125 * mm],
-            )
+    table = Table([[text, drawing]], colWidths=[width - size - 6 * mm, size + 6 * mm])
+    table.setStyle(
+        TableStyle(
+            [
+                ("BOX", (0, 0), (-1, -1), 0.4, colors.HexColor("#b5bcc6")),
+                ("VALIGN", (0, 0), (-1, -1), "TOP"),
+            ]
         )
-    reproducibility = record.get("reproducibility") or {}
-    if reproducibility:
-        software = ", ".join(f"{k} {v}" for k, v in (reproducibility.get("software") or {}).items())
-        story.append(_p(f"Seed {reproducibility.get('seed')}; software {software}.", SMALL))
-    story += [Spacer(1, 4 * mm), _p(f"Certificate {cid} — end of certificate", BODY)]
+    )
+    return table
+
+
+STYLES = {"body": BODY, "small": SMALL, "warn": WARN, "id": BODY, "draft": DRAFT, "notice": DRAFT}
+
+
+def _flowables(blocks: list[content.Block], width: float) -> list[Any]:
+    """reportlab flowables for the blocks, in order; a budget heading keeps with its table."""
+    story: list[Any] = []
+    for block in blocks:
+        if isinstance(block, content.Heading):
+            story.append(_p(block.text, {1: H1, 2: H2}.get(block.level, H3)))
+        elif isinstance(block, content.Text):
+            story.append(_p(block.text, STYLES.get(block.style, BODY)))
+        elif isinstance(block, content.Pairs):
+            rows = [[name, value] for name, value in block.rows]
+            story.append(_grid(rows, [45 * mm, width - 45 * mm], header=False) if rows
+                         else _p("not stated"))
+        elif isinstance(block, content.Grid):
+            weights = block.weights or (1.0,) * len(block.header)
+            widths = [width * w / sum(weights) for w in weights]
+            table = _grid([list(block.header), *map(list, block.rows)], widths)
+            if story and isinstance(story[-1], Paragraph) and story[-1].style is H3:
+                story[-1] = KeepTogether([story[-1], table])
+            else:
+                story.append(table)
+        elif isinstance(block, content.Bullets):
+            story += [_p(f"• {item}") for item in block.items]
+        elif isinstance(block, content.Figure):
+            drawing = _svg_flowable(block.svg, width)
+            if drawing is not None:
+                story += [Spacer(1, 3 * mm), drawing, _p(block.caption, SMALL)]
+    return story
+
+
+def render_pdf(
+    record: Mapping[str, Any],
+    plots: Mapping[str, str] | None = None,
+    check: Mapping[str, str] | None = None,
+    seal: Mapping[str, Any] | None = None,
+) -> bytes:
+    """The certificate as PDF bytes (A4): the same blocks as the HTML page, laid out on pages.
+
+    ``check`` (issued certificates) adds, below the certificate's number, where and how a holder
+    checks the file: the number, the SHA-256 of the signed record, the address and its QR code.
+    ``seal`` adds the signature details to the authorisation section (as on the HTML page).
+    """
+    cid = str(record.get("certificate_id", "unnumbered"))
+    state = str(record.get("state", "draft"))
+    buffer = io.BytesIO()
+    doc = a4_document(
+        buffer,
+        title=f"{record.get('title', 'Calibration certificate')} {cid}",
+        subject=f"Certificate {cid}",
+        author=str((record.get("laboratory") or {}).get("name", "")),
+    )
+    blocks = content.certificate_blocks(record, plots, seal)
+    story = _flowables(blocks, TEXT_WIDTH)
+    if check:
+        # Headings and texts map one to one onto flowables, so the place after the number line
+        # is the same index in both lists.
+        at = next(
+            (i + 1 for i, b in enumerate(blocks) if isinstance(b, content.Text) and b.style == "id"),
+            0,
+        )
+        story[at:at] = [Spacer(1, 2 * mm), _check_flowable(check, TEXT_WIDTH)]
     doc.build(story, canvasmaker=_numbered_canvas(cid, state))
     return buffer.getvalue()

@@ -4,9 +4,9 @@
 from __future__ import annotations
 
 import json
+import logging
 import mimetypes
 import os
-from html import escape
 from pathlib import Path
 from typing import Any
 
@@ -15,13 +15,18 @@ from sqlalchemy import select
 
 from service import storage as st
 from service.archive import ArchiveError, canonical_json, log_event
-from service.queue.jobs import enqueue, import_string, job_status
+from service.archive.items import record_rendering
+from service.queue.jobs import RetryRefused, enqueue, import_string, job_status, retry
 from service.storage import sha256_hex
 from service.web.auth import (
     AuthError,
-    create_token,
+    TokenAlreadyRevoked,
+    TokenNotFound,
+    create_token_entry,
     create_user,
+    list_tokens,
     list_users,
+    revoke_token,
     roles_required,
     update_user,
 )
@@ -29,6 +34,7 @@ from service.web.openapi import openapi_document
 from service.web.upload import UploadError, accept_run, parse_seed
 
 bp = Blueprint("api", __name__, url_prefix="/api")
+logger = logging.getLogger(__name__)
 
 READERS = ("operator", "approver", "auditor")
 AUDIT = ("auditor", "approver")
@@ -84,9 +90,12 @@ def _json_body() -> dict[str, Any]:
 
 @bp.get("/health")
 def health():
+    """Database reachable; the job queue's depth and the analysis workers seen."""
     with services().storage.read() as conn:
         conn.execute(select(1))
-    return jsonify(status="ok")
+    queue = services().queue_health()
+    status = "ok" if queue.get("broker_ok", True) else "degraded"
+    return jsonify(status=status, queue=queue)
 
 
 @bp.get("/openapi.json")
@@ -105,7 +114,7 @@ def public_key():
 
 def accept_uploaded(uploads: list[tuple[str, bytes]]):
     """Validate and store the files of the current request as a run (API and web form alike)."""
-    return accept_run(
+    accepted = accept_run(
         services().storage,
         services().archive,
         import_string(current_app.config["LOAD_RUN"]),
@@ -117,6 +126,8 @@ def accept_uploaded(uploads: list[tuple[str, bytes]]):
         max_bytes=current_app.config["MAX_RUN_BYTES"],
         max_files=current_app.config["MAX_RUN_FILES"],
     )
+    services().submit(accepted.job_id)
+    return accepted
 
 
 @bp.post("/runs")
@@ -159,6 +170,19 @@ def get_run(run_id: str):
     info["files"] = files
     info["jobs"] = [dict(j._mapping) for j in job_rows]
     return jsonify(info)
+
+
+@bp.post("/jobs/<job_id>/retry")
+@roles_required("operator", "approver")
+def retry_job(job_id: str):
+    """Queue a failed job again (bounded; see queue.jobs.MAX_RETRIES)."""
+    try:
+        result = retry(services().storage, job_id, g.user)
+    except RetryRefused as exc:
+        return error(exc.status, str(exc))
+    response = jsonify(**result, job_url=url_for("api.get_job", job_id=job_id))
+    response.status_code = 202
+    return response
 
 
 @bp.get("/jobs/<job_id>")
@@ -205,52 +229,68 @@ def get_certificate(certificate_id: str):
     return jsonify(services().archive.get(certificate_id))
 
 
-def _cached_pdf(record: dict[str, Any], plots_sha256: str | None) -> bytes:
+def seal_of(info: dict[str, Any]) -> dict[str, Any] | None:
+    """The signature details an issued certificate's renderings show (None for a draft)."""
+    if info.get("sequence") is None:
+        return None
+    return {
+        "sequence": info["sequence"],
+        "sha256": info["sha256"],
+        "key_id": info.get("key_id") or services().key.key_id,
+        "public_key_url": url_for("api.public_key", _external=True),
+    }
+
+
+def _cached_pdf(
+    record: dict[str, Any],
+    plots_sha256: str | None,
+    check: dict[str, str] | None = None,
+    seal: dict[str, Any] | None = None,
+) -> bytes:
     """PDF of a record; laying out the plots takes seconds, so identical requests reuse it.
 
-    The PDF is a pure function of the record and the plots (reportlab's invariant mode), so a
-    cache keyed by their digests can never serve a stale document.
+    The PDF is a pure function of the record, the plots and the check block (reportlab's
+    invariant mode). The cache is keyed by the SHA-256 of those inputs and each file is named
+    with the SHA-256 of its own bytes as well, checked on every read: a damaged or swapped file
+    is laid out again, never served (``KEY-PDFSHA256.pdf``).
     """
     from service.render.pdf import RENDERER_VERSION, render_pdf
 
     key = sha256_hex(
-        canonical_json({"record": record, "plots": plots_sha256, "renderer": RENDERER_VERSION})
+        canonical_json(
+            {"record": record, "plots": plots_sha256, "renderer": RENDERER_VERSION,
+             "check": check, "seal": seal}
+        )
     )
-    path = Path(current_app.instance_path) / "cache" / "pdf" / f"{key}.pdf"
-    if path.is_file():
-        return path.read_bytes()
-    pdf = render_pdf(record, services().archive.plots(plots_sha256))
-    path.parent.mkdir(parents=True, exist_ok=True)
+    folder = Path(current_app.instance_path) / "cache" / "pdf"
+    for path in sorted(folder.glob(f"{key}-*.pdf")):
+        data = path.read_bytes()
+        if path.stem == f"{key}-{sha256_hex(data)}":
+            return data
+        logger.warning("PDF cache file %s does not match its name; laying out again", path.name)
+        path.unlink(missing_ok=True)
+    pdf = render_pdf(record, services().archive.plots(plots_sha256), check=check, seal=seal)
+    path = folder / f"{key}-{sha256_hex(pdf)}.pdf"
+    folder.mkdir(parents=True, exist_ok=True)
     tmp = path.with_suffix(f".{os.getpid()}.tmp")
     tmp.write_bytes(pdf)
     os.replace(tmp, path)
     return pdf
 
 
-def _with_lifecycle_notice(page: str, record: dict[str, Any]) -> str:
-    """Put amendment, supersession and withdrawal notices at the top of the HTML document.
-
-    ISO/IEC 17025:2017 7.8.8.2: an amended report is identified as such and names the report it
-    replaces; a reader of a superseded or withdrawn one must see that at once.
-    """
-    notices = []
-    if record.get("replaces"):
-        notices.append(
-            f"This revision replaces certificate {record['replaces']}. Reason: "
-            f"{record.get('amendment_reason') or 'not stated'}."
-        )
-    if record.get("state") == "superseded":
-        notices.append(f"Superseded by certificate {record.get('superseded_by')}; do not use.")
-    if record.get("state") == "withdrawn":
-        notices.append(f"Withdrawn: {record.get('withdrawn_reason') or ''}; do not use.")
-    if not notices or "<body>" not in page:
-        return page
-    banner = "".join(
-        f'<p class="lifecycle" style="border:2px solid #a3261b;padding:.4em .6em;'
-        f'color:#a3261b">{escape(text)}</p>'
-        for text in notices
+def check_block(info: dict[str, Any]) -> dict[str, str] | None:
+    """What an issued certificate's PDF says about checking it: its number, the SHA-256 of its
+    signed record, and the public page where a customer checks the file they hold."""
+    if info.get("sequence") is None or not info.get("sha256"):
+        return None
+    base = current_app.config.get("PUBLIC_CHECK_URL") or url_for(
+        "public.check_page", _external=True
     )
-    return page.replace("<body>", "<body>" + banner, 1)
+    return {
+        "certificate_id": info["id"],
+        "signed_record_sha256": info["sha256"],
+        "url": f"{base}?id={info['id']}",
+    }
 
 
 def render(info: dict[str, Any], fmt: str) -> tuple[bytes | str, str]:
@@ -262,13 +302,14 @@ def render(info: dict[str, Any], fmt: str) -> tuple[bytes | str, str]:
         document = services().archive.signed_entry(info["id"])
         return json.dumps(document, sort_keys=True, indent=2, ensure_ascii=False), RENDERINGS[fmt]
     if fmt == "html":
-        from service.record.certificate import render_html
+        from service.render.html import render_html
 
-        plots, sections = services().archive.presentation(info.get("plots_sha256"))
-        page = render_html(record, plots, sections)
-        return _with_lifecycle_notice(page, record), RENDERINGS[fmt]
+        plots = services().archive.plots(info.get("plots_sha256"))
+        return render_html(record, plots, seal_of(info)), RENDERINGS[fmt]
     if fmt == "pdf":
-        return _cached_pdf(record, info.get("plots_sha256")), RENDERINGS[fmt]
+        return _cached_pdf(
+            record, info.get("plots_sha256"), check_block(info), seal_of(info)
+        ), RENDERINGS[fmt]
     if fmt == "xml":
         from service.render.dcc import configured_schema, render_dcc, validate_dcc
 
@@ -290,6 +331,11 @@ def get_rendering(certificate_id: str, fmt: str):
         content, media = render(info, fmt)
     except ValueError as exc:
         return error(409, str(exc))
+    if info.get("sequence") is not None:
+        # A file of an issued certificate leaves the service: note its SHA-256, so that the
+        # customer holding it can later check it on the public page.
+        data = content.encode("utf-8") if isinstance(content, str) else content
+        record_rendering(services().archive, certificate_id, fmt, sha256_hex(data))
     response = Response(content, mimetype=media.split(";")[0])
     response.headers["Content-Type"] = media
     extension = "json" if fmt == "signed" else fmt
@@ -310,7 +356,7 @@ def get_output_file(certificate_id: str, name: str):
     if entry is None:
         names = ", ".join(sorted(info["extra_files"])) or "none"
         return error(404, f"{certificate_id} has no output file {name!r} (it has: {names})")
-    data = services().storage.blobs.get(entry["sha256"])
+    data = services().archive.checked_blob(entry["sha256"], f"output file {name} of {certificate_id}")
     media = mimetypes.guess_type(name)[0] or "application/octet-stream"
     response = Response(data, mimetype=media)
     response.headers["Content-Disposition"] = f'attachment; filename="{certificate_id}-{name}"'
@@ -371,8 +417,10 @@ def amend_certificate(certificate_id: str):
 def verify_and_log(certificate_id: str):
     """Verify one certificate and record who did it (API and web page alike)."""
     report = services().archive.verify(certificate_id)
-    with services().storage.write() as conn:
-        log_event(conn, g.user["username"], "certificate.verified", certificate_id, {"valid": report.valid})
+    if not services().storage.read_only:  # a read-only audit copy cannot log; it only reports
+        with services().storage.write() as conn:
+            log_event(conn, g.user["username"], "certificate.verified", certificate_id,
+                      {"valid": report.valid})
     return report
 
 
@@ -380,8 +428,10 @@ def queue_reproduction(certificate_id: str) -> str:
     """Queue a re-analysis of an archived certificate from its raw data; returns the job id."""
     info = services().archive.get(certificate_id)
     with services().storage.write() as conn:
-        return enqueue(conn, purpose="reproduce", run_id=info["run_id"], requested_by=g.user,
-                       certificate_id=certificate_id)
+        job_id = enqueue(conn, purpose="reproduce", run_id=info["run_id"], requested_by=g.user,
+                         certificate_id=certificate_id)
+    services().submit(job_id)
+    return job_id
 
 
 @bp.get("/certificates/<certificate_id>/verify")
@@ -459,9 +509,28 @@ def patch_user(username: str):
 @roles_required("admin")
 def post_token(username: str):
     body = _json_body()
-    token = create_token(
-        services().storage, username, body.get("label", ""), actor=g.user["username"]
+    token_id, token = create_token_entry(
+        services().storage, username, str(body.get("label", "")), actor=g.user["username"]
     )
-    response = jsonify(username=username, token=token, note="shown once; store it safely")
+    response = jsonify(
+        username=username, token=token, token_id=token_id, note="shown once; store it safely"
+    )
     response.status_code = 201
     return response
+
+
+@bp.get("/users/<username>/tokens")
+@roles_required("admin")
+def get_tokens(username: str):
+    return jsonify(username=username, tokens=list_tokens(services().storage, username))
+
+
+@bp.post("/users/<username>/tokens/<int:token_id>/revoke")
+@roles_required("admin")
+def revoke(username: str, token_id: int):
+    try:
+        return jsonify(revoke_token(services().storage, username, token_id, g.user["username"]))
+    except TokenNotFound as exc:
+        return error(404, str(exc))
+    except TokenAlreadyRevoked as exc:
+        return error(409, str(exc))

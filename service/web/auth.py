@@ -22,6 +22,7 @@ import hmac
 import re
 import secrets
 from collections.abc import Callable, Iterable, Mapping
+from datetime import UTC, datetime, timedelta
 from typing import Any
 
 from flask import (
@@ -208,21 +209,71 @@ _DUMMY_HASH = generate_password_hash("not-a-real-password")
 
 def create_token(storage: Storage, username: str, label: str = "", actor: str = "system") -> str:
     """Make an API token for ``username``; the token is returned once and stored only hashed."""
+    return create_token_entry(storage, username, label, actor)[1]
+
+
+def create_token_entry(
+    storage: Storage, username: str, label: str = "", actor: str = "system"
+) -> tuple[int, str]:
+    """Like :func:`create_token`, also returning the token's id (to list or revoke it later)."""
     token = TOKEN_PREFIX + secrets.token_urlsafe(32)
     with storage.write() as conn:
         row = conn.execute(select(st.users).where(st.users.c.username == username)).first()
         if row is None:
             raise AuthError(f"no user named {username!r}")
-        conn.execute(
+        token_id = conn.execute(
             st.api_tokens.insert().values(
                 user_id=row.id,
                 token_sha256=sha256_hex(token.encode()),
                 label=label,
                 created_at=utc_now(),
             )
-        )
-        log_event(conn, actor, "token.created", username, {"label": label})
-    return token
+        ).inserted_primary_key[0]
+        log_event(conn, actor, "token.created", username, {"label": label, "token_id": token_id})
+    return token_id, token
+
+
+def list_tokens(storage: Storage, username: str) -> list[dict[str, Any]]:
+    """A person's API tokens: id, label, when made and when revoked (never the hash)."""
+    t = st.api_tokens.c
+    with storage.read() as conn:
+        user = conn.execute(select(st.users.c.id).where(st.users.c.username == username)).first()
+        if user is None:
+            raise AuthError(f"no user named {username!r}")
+        rows = conn.execute(
+            select(t.id, t.label, t.created_at, t.revoked_at)
+            .where(t.user_id == user.id)
+            .order_by(t.id)
+        ).all()
+    return [dict(r._mapping) for r in rows]
+
+
+class TokenNotFound(AuthError):
+    """No such token for that person (HTTP 404)."""
+
+
+class TokenAlreadyRevoked(AuthError):
+    """The token was revoked before (HTTP 409)."""
+
+
+def revoke_token(storage: Storage, username: str, token_id: int, actor: str = "system") -> dict:
+    """Revoke one API token of ``username``; it stops working at once. Kept for the record."""
+    t = st.api_tokens.c
+    with storage.write() as conn:
+        row = conn.execute(
+            select(t.id, t.label, t.created_at, t.revoked_at)
+            .join(st.users, st.users.c.id == t.user_id)
+            .where(st.users.c.username == username)
+            .where(t.id == token_id)
+        ).first()
+        if row is None:
+            raise TokenNotFound(f"{username} has no API token {token_id}")
+        if row.revoked_at is not None:
+            raise TokenAlreadyRevoked(f"API token {token_id} of {username} was revoked at {row.revoked_at}")
+        now = utc_now()
+        conn.execute(st.api_tokens.update().where(t.id == token_id).values(revoked_at=now))
+        log_event(conn, actor, "token.revoked", username, {"token_id": token_id, "label": row.label})
+    return {"id": token_id, "label": row.label, "created_at": row.created_at, "revoked_at": now}
 
 
 def user_for_token(storage: Storage, token: str) -> dict[str, Any] | None:
@@ -274,7 +325,12 @@ def load_user() -> None:
     if uid is not None:
         with _storage().read() as conn:
             row = conn.execute(select(st.users).where(st.users.c.id == uid)).first()
-        if row is not None and row.active:
+        # A password change (or reset) ends every session signed in with the old password.
+        if (
+            row is not None
+            and row.active
+            and hmac.compare_digest(session.get("password_epoch", ""), _password_epoch(row))
+        ):
             g.user = _public(row)
         else:
             session.clear()
@@ -288,6 +344,11 @@ def load_user() -> None:
         if not expected or not hmac.compare_digest(sent, expected):
             return _deny(400, "the form's security token is missing or expired; reload the page")
     return None
+
+
+def _password_epoch(row) -> str:
+    """A short digest of the stored password hash: changes whenever the password does."""
+    return sha256_hex(("session:" + (row.password_hash or "")).encode())[:32]
 
 
 def _deny(status: int, message: str):
@@ -339,27 +400,72 @@ def _template_helpers() -> Mapping[str, Any]:
     return {"csrf_token": csrf_token, "has_role": has_role}
 
 
+def _log_sign_in(actor: str, action: str, subject: str) -> None:
+    # A read-only audit copy cannot record sign-ins (nor count failures, which then never wait).
+    if _storage().read_only:
+        return
+    with _storage().write() as conn:
+        log_event(conn, actor, action, subject)
+
+
 @bp.route("/login", methods=["GET", "POST"])
 def login():
     if request.method == "POST":
-        username = request.form.get("username", "").strip()
+        username = request.form.get("username", "").strip()[:80]
+        wait = _login_wait(username)
+        if wait:
+            _log_sign_in(username or "?", "login.throttled", username)
+            flash(
+                f"Too many failed sign-ins for this name; try again in {wait // 60 + 1} minutes.",
+                "error",
+            )
+            return render_template("login.html"), 429, {"Retry-After": str(wait)}
         user = check_password(_storage(), username, request.form.get("password", ""))
         if user is None:
             flash("Unknown user name or wrong password.", "error")
-            with _storage().write() as conn:
-                log_event(conn, username or "?", "login.failed", username)
+            _log_sign_in(username or "?", "login.failed", username)
             return render_template("login.html"), 401
         session.clear()
         session["user_id"] = user["id"]
+        with _storage().read() as conn:
+            row = conn.execute(select(st.users).where(st.users.c.id == user["id"])).one()
+        session["password_epoch"] = _password_epoch(row)
         csrf_token()
-        with _storage().write() as conn:
-            log_event(conn, user["username"], "login", user["username"])
+        _log_sign_in(user["username"], "login", user["username"])
         target = request.args.get("next", "")
         # Only same-site paths, never another host.
         if not target.startswith("/") or target.startswith("//"):
             target = url_for("pages.home")
         return redirect(target)
     return render_template("login.html")
+
+
+#: Failed sign-ins for one name within the window before further attempts wait (common
+#: practice, no source; cf. the rate limiting NIST SP 800-63B 5.2.2 asks of verifiers).
+LOGIN_FAILURES_ALLOWED = 5
+LOGIN_WINDOW_SECONDS = 15 * 60
+
+
+def _login_wait(username: str) -> int:
+    """Seconds until ``username`` may try again (0 = now), from the event log's failures."""
+    since = (datetime.now(UTC) - timedelta(seconds=LOGIN_WINDOW_SECONDS)).strftime(
+        "%Y-%m-%dT%H:%M:%S.%fZ"
+    )
+    e = st.events.c
+    with _storage().read() as conn:
+        failures = conn.execute(
+            select(e.at)
+            .where(e.action == "login.failed")
+            .where(e.subject == username)
+            .where(e.at >= since)
+            .order_by(e.at.desc())
+            .limit(LOGIN_FAILURES_ALLOWED)
+        ).all()
+    if len(failures) < LOGIN_FAILURES_ALLOWED:
+        return 0
+    oldest = datetime.strptime(failures[-1].at, "%Y-%m-%dT%H:%M:%S.%fZ").replace(tzinfo=UTC)
+    left = LOGIN_WINDOW_SECONDS - (datetime.now(UTC) - oldest).total_seconds()
+    return max(1, int(left))
 
 
 @bp.route("/logout", methods=["POST"])

@@ -88,7 +88,14 @@ def openapi_document() -> dict[str, Any]:
             },
         },
         "paths": {
-            "/api/health": {"get": _op("Service is up", [], {"200": _json("ok")})},
+            "/api/health": {
+                "get": _op(
+                    "Service is up; job counts by status, queue mode, messages waiting in the "
+                    "broker and the number of analysis workers seen",
+                    [],
+                    {"200": _json("ok")},
+                )
+            },
             "/api/openapi.json": {"get": _op("This document", [], {"200": _json("OpenAPI")})},
             "/api/public-key": {
                 "get": _op("The lab's Ed25519 public key", [], {"200": _json("key")})
@@ -132,6 +139,14 @@ def openapi_document() -> dict[str, Any]:
                     "A job's status and progress",
                     READERS,
                     {"200": _json("job", {"$ref": "#/components/schemas/Job"}), "404": _ERROR},
+                    parameters=[_param("job_id")],
+                )
+            },
+            "/api/jobs/{job_id}/retry": {
+                "post": _op(
+                    "Queue a failed job again (at most twice; each retry is logged)",
+                    ["operator", "approver"],
+                    {"202": _json("queued again"), "404": _ERROR, "409": _ERROR},
                     parameters=[_param("job_id")],
                 )
             },
@@ -287,14 +302,29 @@ def openapi_document() -> dict[str, Any]:
                 )
             },
             "/api/users/{username}/tokens": {
-                "post": _op(
-                    "Make an API token (shown once)",
+                "get": _op(
+                    "List a person's API tokens (id, label, made, revoked; never the token)",
                     ["admin"],
-                    {"201": _json("token"), "400": _ERROR},
+                    {"200": _json("tokens"), "400": _ERROR},
+                    parameters=[_param("username")],
+                ),
+                "post": _op(
+                    "Make an API token (shown once; the id is for listing and revoking)",
+                    ["admin"],
+                    {"201": _json("token and token_id"), "400": _ERROR},
                     parameters=[_param("username")],
                     requestBody=_body({"label": {"type": "string"}}, []),
+                ),
+            },
+            "/api/users/{username}/tokens/{token_id}/revoke": {
+                "post": _op(
+                    "Revoke one API token; it stops working at once",
+                    ["admin"],
+                    {"200": _json("revoked token"), "404": _ERROR, "409": _ERROR},
+                    parameters=[_param("username"), _param("token_id", type="integer")],
                 )
             },
+            **_history_paths(),
         },
     }
 
@@ -306,4 +336,95 @@ def _body(properties: dict[str, Any], required: list[str]) -> dict[str, Any]:
                 "schema": {"type": "object", "properties": properties, "required": required}
             }
         }
+    }
+
+
+_ITEM = _param("item", description="the item identifier as on its certificates, e.g. SMU-MXC-RX-14")
+_SHA = _param("sha256", "query", "SHA-256 of the file held (64 hex digits)")
+_ID = _param("id", "query", "certificate number as printed, e.g. CC-2026-00001")
+
+
+def _history_paths() -> dict[str, Any]:
+    """Items, impact of a change and the public check (docs/history.md)."""
+    check = {
+        "summary": "Public: is the file I hold an authentic certificate, and is it in force? "
+        "Answers authentic or not and, if authentic, only the state, the replacing revision "
+        "or the reason for withdrawal. Throttled per address (429).",
+        "x-roles": [],
+        "responses": {"200": _json("answer"), "400": _ERROR, "429": _ERROR},
+    }
+    return {
+        "/api/items/{item}/history": {
+            "get": _op(
+                "Every certificate of an item in time order, the drift of its tracked "
+                "quantities, ΔT(R) between sensor curves, and its due date",
+                READERS,
+                {"200": _json("history"), "404": _ERROR},
+                parameters=[_ITEM],
+            )
+        },
+        "/api/items/{item}/history.pdf": {
+            "get": _op(
+                "The item's history report as PDF",
+                READERS,
+                {"200": {"description": "PDF"}, "404": _ERROR},
+                parameters=[_ITEM],
+            )
+        },
+        "/api/items/due": {
+            "get": _op(
+                "Items with a certificate in force: due date and status, soonest first",
+                READERS,
+                {"200": _json("items"), "400": _ERROR},
+                parameters=[_param("status", "query", "overdue, due or in date")],
+            )
+        },
+        "/api/impact": {
+            "get": _op(
+                "Issued certificates that used a software version or model, or were issued "
+                "in a date range (none given: all issued), with item and customer",
+                AUDIT,
+                {"200": _json("certificates"), "400": _ERROR},
+                parameters=[
+                    _param("software", "query", "coldcert version, or NAME=VERSION"),
+                    _param("model", "query", "part of a model name"),
+                    _param("from", "query", "issued on or after (YYYY-MM-DD)"),
+                    _param("to", "query", "issued on or before (YYYY-MM-DD)"),
+                    _param("in_force", "query", "1: only certificates in force"),
+                ],
+            )
+        },
+        "/api/impact/reproduce": {
+            "post": _op(
+                "Reproduce certificates in bulk through the job queue",
+                AUDIT,
+                {"202": _json("jobs and the report address"), "400": _ERROR, "409": _ERROR},
+                requestBody=_body(
+                    {
+                        "certificate_ids": {"type": "array", "items": {"type": "string"}},
+                        "fraction": {"type": "number"},
+                    },
+                    ["certificate_ids"],
+                ),
+            ),
+            "get": _op(
+                "Report of a bulk reproduction: results that moved by more than a fraction "
+                "of their expanded uncertainty",
+                AUDIT,
+                {"200": _json("report"), "400": _ERROR},
+                parameters=[
+                    _param("jobs", "query", "job ids, comma-separated"),
+                    _param("fraction", "query", "flag moves above this multiple of U (0.1)"),
+                ],
+            ),
+        },
+        "/api/public/check": {
+            "get": {**check, "parameters": [_ID, _SHA]},
+            "post": {
+                **check,
+                "summary": check["summary"] + " (the file as multipart field 'file', hashed "
+                "as it arrives and not stored)",
+                "parameters": [_ID],
+            },
+        },
     }

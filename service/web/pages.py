@@ -150,9 +150,19 @@ def _act(certificate_id: str, action, success: str):
     return redirect(url_for("pages.certificate", certificate_id=certificate_id), 303)
 
 
+def _confirmed(certificate_id: str, what: str) -> bool:
+    """Signing and withdrawing cannot be undone: the form's confirmation box must be ticked."""
+    if request.form.get("confirm") == "yes":
+        return True
+    flash(f"Nothing done: tick the box confirming that you {what} {certificate_id}.", "error")
+    return False
+
+
 @bp.post("/certificates/<certificate_id>/issue")
 @roles_required("approver")
 def issue(certificate_id: str):
+    if not _confirmed(certificate_id, "reviewed and authorise the issue of"):
+        return redirect(url_for("pages.certificate", certificate_id=certificate_id), 303)
     return _act(
         certificate_id,
         lambda: services().archive.issue(certificate_id, g.user),
@@ -163,6 +173,8 @@ def issue(certificate_id: str):
 @bp.post("/certificates/<certificate_id>/withdraw")
 @roles_required("approver")
 def withdraw(certificate_id: str):
+    if not _confirmed(certificate_id, "withdraw"):
+        return redirect(url_for("pages.certificate", certificate_id=certificate_id), 303)
     reason = request.form.get("reason", "")
     return _act(
         certificate_id,

@@ -13,7 +13,7 @@ Run from the repository root, one command per file (times on one core of the sha
 an earlier run on the same settings computed.)
 
 For each chain length N = 2, 3, 4 (uniform junctions, C_0 = 0, no offset charge) it solves the
-orthodox master equation (analysis.cbt.tunnelling, PHYSICS.md 1.3) on a grid of reduced bias x
+orthodox master equation (analysis.cbt.tunnelling, docs/physics.md §1.3) on a grid of reduced bias x
 and u = ΔE/(k_B T) and stores the reduced dip D_N(x, u) = (1 − G/G_T)/u, which tends to the
 first-order dip function g(x) of Pekola et al., PRL 73, 2903 (1994) as u → 0 (used as the u = 0
 row). The N = 4 solve is costly where the charge window is wide (small u, large x); there it is
