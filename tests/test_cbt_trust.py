@@ -136,11 +136,12 @@ def test_posterior_edge_rule_just_inside_and_outside():
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("u", [3.05, 3.1, 3.3])
-def test_just_beyond_validated_range_is_refused_not_crashed(u):
-    # Exact N = 3 sweeps just beyond the full model's validated u: the posterior would pile up at
-    # the bound; the fit must refuse with ModelEdgeError (a SweepError), never certify or crash.
-    bias, g, setup = noisy_exact(u, seed=7)
+@pytest.mark.parametrize("beyond", [0.05, 0.1, 0.3])
+def test_just_beyond_validated_range_is_refused_not_crashed(beyond):
+    # Exact N = 3 sweeps just beyond the full model's validated u (its max_u): the posterior would
+    # pile up at the bound; the fit must refuse with ModelEdgeError (a SweepError), never certify
+    # or crash.
+    bias, g, setup = noisy_exact(FullTunnellingShape(3).max_u + beyond, seed=7)
     with pytest.raises(ModelEdgeError, match="bound u = "):
         fit_sweep_chosen(SweepData(bias, g, setup), seed=1, settings=QUICK)
 

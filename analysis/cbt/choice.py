@@ -7,9 +7,9 @@ the series shapes do not have. Measured against the full tunnelling model (exact
 tables, analysis.cbt.full_model), least-squares fits over ±5 V_1/2 read T high by
   first order (Pekola et al. 1994): ≈ 0.105 u   (+1.0e-3 at u = 0.01, +2.1 % at 0.2, +5.0 % at 0.48),
   higher order (this package):     ≈ 0.042 u   (+3.9e-4 at u = 0.01, +0.80 % at 0.2, +2.0 % at 0.48),
-for N = 3 and N = 33 alike (benchmarks/bench_cbt_models.py; PHYSICS.md 1.2 quotes +1.8 % and
+for N = 3 and N = 33 alike (benchmarks/bench_cbt_models.py; docs/physics.md §1.2 quotes +1.8 % and
 +4.5 % for the first-order formula on exact N = 2 data at u = 0.2 and 0.5). So the full model is
-the default wherever it is validated; the series serves only where it is not (C₀ > 0, u > 3), with
+the default wherever it is validated; the series serves only where it is not (C₀ > 0, u > 5), with
 its measured error as a budget row.
 """
 

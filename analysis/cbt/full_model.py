@@ -1,25 +1,28 @@
 """Fast full-tunnelling dip shape for long CBT arrays (N = 10–100), usable inside an MCMC.
 
-The exact orthodox master equation (analysis.cbt.tunnelling, PHYSICS.md 1.3) is exact at any u
-but only affordable for chains of up to four or five junctions, while sensors have 10–100.
-This module bridges the gap in two steps, both precomputed by the committed script
-``analysis/cbt/tables/make_tables.py``:
+The exact orthodox master equation (analysis.cbt.tunnelling, docs/physics.md §1.3) is exact at any u
+but affordable only for short chains, while sensors have 10–100 junctions. This module bridges
+the gap in three steps, all precomputed by the committed script
+``analysis/cbt/tables/make_tables.py`` (docs/models.md gives the commands):
 
-1. **Tables.** For N = 2, 3, 4 the exact reduced dip D_N(x, u) = (1 − G/G_T)/u is tabulated on a
-   grid of x = eV/(N k_B T) ∈ [0, 40] and u = ΔE/(k_B T) ∈ [0, 3.2] (u = 0 is the first-order
-   limit g(x) of Pekola et al., PRL 73, 2903 (1994)), and interpolated by a bivariate quintic
-   spline. Beyond |x| = 40 (where 1 − G/G_T < 2e-7) the tail is continued exponentially.
-2. **Extrapolation in 1/N.** In the uniform chain the dip depends on N only at order u³ in
-   G/G_T (the depth series and the width factor of Farhangfar et al. 1997 are N-independent);
-   the remainder falls off roughly as 1/N² (PHYSICS.md 1.3 table). For N > 4 we continue the
-   exact N = 3 and N = 4 tables in 1/N² (see :func:`extrapolation_weights`).
+1. **Short tables.** For N = 2, 3, 4 the exact reduced dip D_N(x, u) = (1 − G/G_T)/u is tabulated
+   on a grid of x = eV/(N k_B T) ∈ [0, 40] and u = ΔE/(k_B T) ∈ [0, 5.2] (u = 0 is the
+   first-order limit g(x) of Pekola et al., PRL 73, 2903 (1994)) and interpolated by a bivariate
+   quintic spline. Beyond |x| = 40 the tail is continued exponentially at the slowest decay rate
+   the tables show there (:data:`TAIL_DECAY` from the tables).
+2. **Exact N = 5, 6 tables** (``long_arrays.npz``, from the energy-bounded solver) on a coarser
+   grid (x ≤ 12, u = 1.5–5). They enter as the difference Δ_N = D_N − C_N from the 1/N²
+   continuation C_N of the N = 3, 4 tables (:func:`extrapolation_weights`), which is small and
+   smooth: a bicubic spline in (x, u) with Δ_N = 0 at u = 0 (all N share g(x) there); beyond the
+   last solved x it is continued in proportion to D_4.
+3. **Long arrays (N > 6).** Continued from the exact N = 5 and 6 dips by the law
+   :data:`LONG_ARRAY_LAW` (1/N), chosen and bounded by independent exact solutions at N = 7, 8
+   and checked by an orthodox Monte Carlo of N = 10–30 chains (docs/models.md); validated only
+   up to u = :data:`LONG_ARRAY_MAX_U`, beyond which the C_0 = 0 dip does not converge in N.
 
-Its error (max |ΔG/G_T| over the dip, per u band) was *measured* against exact master-equation
-solutions at N = 5 (off the table, so the extrapolation is tested out of sample) and at off-grid
-points of the tables; the figures are in :data:`MEASURED_ERROR` and the test suite checks them.
-For N > 5 the extrapolated part of the error is scaled by the extrapolation length in 1/N²
-(an assumption, stated); an orthodox Monte Carlo of a long chain (analysis.cbt.orthodox_mc)
-checks the result at its own, coarser, statistical resolution (~1e-4 in the current).
+Its error (max |ΔG/G_T| over the dip, per u band) was *measured* against exact solutions not used
+to build the tables, and against the Monte Carlo; the figures are in :data:`MEASURED_ERROR`, and
+the test suite checks them against further held-out points.
 """
 
 from __future__ import annotations
@@ -37,42 +40,68 @@ from analysis.cbt.dip_grid import GridDip
 logger = logging.getLogger(__name__)
 
 TABLE_FILE = "short_arrays.npz"
+LONG_TABLE_FILE = "long_arrays.npz"
 
-#: Largest u at which the model is validated for certificates (the tables reach 3.2 so that the
-#: spline has no edge effect at 3.0).
-MAX_U = 3.0
+#: Chain lengths with exact tables (N = 2–4 on the fine grid, 5 and 6 on the coarse one).
+EXACT_LENGTHS = (2, 3, 4, 5, 6)
 
-#: Beyond this |x| the tables end; there 1 − G/G_T < 2e-7 for u <= 3 and it is continued as
-#: D(40, u) exp(−TAIL_DECAY (|x| − 40)), TAIL_DECAY the slowest decay rate of the tabulated tail
-#: between x = 35 and 40 (0.41 at u = 3.2; faster at smaller u).
+#: Largest u at which the model is validated for certificates, for the exactly tabulated chains
+#: N <= 6 (the short tables reach 5.2 so that their spline has no edge effect at 5.0; the N = 5,
+#: 6 tables reach 5.0). Each shape carries its own limit as ``max_u``, which the fit reads.
+MAX_U = 5.0
+
+#: ... and for longer chains (N > 6), where the continuation of the exact N = 5, 6 dips has been
+#: checked against exact N = 7, 8 solutions and the orthodox Monte Carlo. At u = 2 the 1/N law
+#: meets the exact N = 7, 8 depths to 1e-7; from u = 2.5 on its residual per unit of
+#: long_array_length grows with N (1.0e-5 at N = 7, 1.4e-5 at N = 8; 6.9e-5 and 9.7e-5 at u = 3):
+#: with C_0 = 0 the zero-bias depth keeps growing with N (the unscreened charging energy of a
+#: charge in the middle of the chain grows as N e²/(8C)), so no continuation from N <= 6 is safe.
+LONG_ARRAY_MAX_U = 2.0
+
+#: Beyond this |x| the tables end and D is continued as D(40, u) exp(−κ (|x| − 40)), κ the
+#: slowest decay rate of the tabulated tails between x = 35 and 40 over all u (computed from the
+#: tables when they are loaded; 0.41 at u = 3.2, 0.24 at u = 5.2).
 X_TABLE_END = 40.0
+#: Upper limit of that decay rate (the fastest that may be assumed at small u, where the tail is
+#: below 1e-9 at x = 40 anyway).
 TAIL_DECAY = 0.4
+
+#: How the dip of a chain longer than the exact tables (N > 6) is continued from the exact N = 5
+#: and 6 dips: "inverse_n" D_N = D_6 + (D_6 − D_5)(1/6 − 1/N)/(1/5 − 1/6), "inverse_n2" the same
+#: in 1/N², "converged" D_N = D_6. Chosen by the independent N = 7, 8 exact solutions
+#: (make_tables.py --long-check; docs/models.md).
+LONG_ARRAY_LAW = "inverse_n"
 
 #: Measured max |ΔG/G_T| of the model per u band (upper band edges in ``u_band_upper``):
 #: ``interpolation_short`` for the exact N = 2, 3 tables (off-grid points against the exact
-#: solver), ``interpolation_n4`` for the N = 4 table (off-grid and where it is a continuation),
-#: ``extrapolation_n5`` the residual of the 1/N² continuation against exact N = 5 solutions.
-#: From make_tables.py --validate and benchmarks/bench_full_model.py, rounded up by ~1.5x
-#: (measured maxima: N = 5 residual 2.6e-8 at u = 0.5 (x = 0 only; the u³ scaling of the u = 1
-#: value gives 3e-7), 2.4e-6 at u = 1, 6.4e-6 at 1.5, 1.4e-5 at 2, 6.5e-5 at 2.5, 2.0e-4 at 3;
-#: N = 4 table 2.9e-7 below u = 0.5 (continuation), 7e-8 to u = 2, 1.0e-6 at u = 3, x = 25;
-#: N = 2, 3 tables 1.1e-9). Checked by tests/test_full_model.py.
+#: solver: <= 1.8e-9 for x >= 0.2, but between x = 0 and the first node 1.6e-8 at u <= 0.5
+#: rising to 2.6e-7 at u = 3 and 9.5e-7 at u = 5, where the spline does not know D is even);
+#: ``interpolation_n4`` for N = 4 (off-grid <= 6e-8, near x = 0.1 up to 1.2e-6; the
+#: continuation below u = 0.5 2.9e-7, and beyond x = 20: 1.0e-6 at u = 3, 5.3e-6 at u = 4,
+#: 1.6e-5 at u = 5, x = 25); ``extrapolation_n5`` the residual of the 1/N² continuation from
+#: N = 3, 4 against exact N = 5 (2.4e-6 at u = 1, 6.4e-6 at 1.5; used for N >= 5 where no
+#: N = 5, 6 table exists, u <= 1.5); ``exact_long`` the interpolation and continuation error of
+#: the N = 5, 6 tables (make_tables.py --bound: <= 5.7e-7 at u = 2.25, 3.1e-6 at 3.75, 2.1e-5 at
+#: 4.75, each band taking the larger of the bound points around it, doubled); ``long_array`` the
+#: residual of LONG_ARRAY_LAW against exact N = 7, 8 per unit of long_array_length (<= 4.3e-6 at
+#: u = 2, x = 2.75; 3.9e-7 at u = 1.5, x = 0; make_tables.py --long-check), used only up to
+#: LONG_ARRAY_MAX_U. Checked
+#: by tests/test_full_model.py against held-out points that set none of these numbers.
 MEASURED_ERROR: dict[str, tuple[float, ...]] = {
-    "u_band_upper": (0.5, 1.0, 1.5, 2.0, 2.5, 3.0),
-    "interpolation_short": (1e-8, 1e-8, 1e-8, 1e-8, 1e-8, 1e-8),
-    "interpolation_n4": (5e-7, 5e-7, 5e-7, 5e-7, 2e-6, 2e-6),
-    "extrapolation_n5": (5e-7, 3.5e-6, 1e-5, 2e-5, 1e-4, 3e-4),
+    "u_band_upper": (0.5, 1.0, 1.5, 2.0, 2.5, 3.0, 3.5, 4.0, 4.5, 5.0),
+    "interpolation_short": (3e-8, 6e-8, 1.1e-7, 1.7e-7, 2.7e-7, 4e-7, 7e-7, 1e-6, 1.3e-6, 1.5e-6),
+    "interpolation_n4": (5e-7, 5e-7, 5e-7, 5e-7, 2e-6, 2e-6, 5e-6, 8e-6, 1.5e-5, 2.5e-5),
+    "extrapolation_n5": (5e-7, 3.5e-6, 1e-5, 2e-5, 1e-4, 3e-4, 3e-4, 3e-4, 3e-4, 3e-4),
+    "exact_long": (0.0, 0.0, 0.0, 1.2e-6, 1.2e-6, 6e-6, 6e-6, 6e-6, 4.3e-5, 4.3e-5),
+    "long_array": (0.0, 0.0, 0.0, 4.3e-6, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0),
 }
 
-#: Safety factor on the extrapolation residual when it is scaled to longer chains: the scaling
-#: with the extrapolation length assumes the residual grows linearly in 1/N², which the
-#: N = 2…5 sequence supports only roughly.
+#: Safety factor on a measured residual when it is scaled to longer chains.
 EXTRAPOLATION_SAFETY = 2.0
 
-#: Above this u the exact dip converges in N faster than 1/N² (N = 2…5 depths at u = 3 differ by
-#: 5.4e-3, 5.3e-4, 4.6e-5), so the continuation may overshoot: there the bound also covers the
-#: whole correction applied beyond N = 4.
-NON_ALGEBRAIC_U = 2.0
+#: Below this u no N = 5, 6 table exists; there the N >= 5 model is the 1/N² continuation and
+#: its error the scaled N = 5 residual (the weak N-dependence, O(u³), makes that small).
+LONG_TABLE_MIN_U = 1.5
 
 
 class FullModelRangeError(ValueError):
@@ -86,12 +115,20 @@ def _load_tables() -> dict[str, np.ndarray]:
         return {key: np.array(data[key]) for key in data.files}
 
 
-def extrapolation_weights(n_junctions: int) -> tuple[float, float, float]:
-    """Weights (w_2, w_3, w_4) of the exact tables D_2, D_3, D_4 that give the N-junction dip.
+@lru_cache(maxsize=1)
+def _load_long_tables() -> dict[str, np.ndarray]:
+    ref = resources.files("analysis.cbt.tables").joinpath(LONG_TABLE_FILE)
+    with resources.as_file(ref) as path, np.load(path) as data:
+        return {key: np.array(data[key]) for key in data.files}
 
-    N ≤ 4: the exact table itself. N > 4: D_N = D_4 + (D_4 − D_3)(1/16 − 1/N²)/(1/9 − 1/16), the
-    continuation in 1/N² through the two longest exact chains (PHYSICS.md 1.3: the N-dependence
-    of the exact depth and width at u = 1 falls off close to 1/N²).
+
+def extrapolation_weights(n_junctions: int) -> tuple[float, float, float]:
+    """Weights (w_2, w_3, w_4) of the exact tables D_2, D_3, D_4 of the 1/N² continuation C_N.
+
+    N ≤ 4: the exact table itself. N > 4: C_N = D_4 + (D_4 − D_3)(1/16 − 1/N²)/(1/9 − 1/16), the
+    continuation in 1/N² through N = 3 and 4 (docs/physics.md §1.3: the N-dependence of the exact
+    depth and width at u = 1 falls off close to 1/N²). For N = 5, 6 and longer chains the exact
+    N = 5, 6 tables correct it (:func:`long_array_weights`).
     """
     if n_junctions in (2, 3, 4):
         return tuple(1.0 if n == n_junctions else 0.0 for n in (2, 3, 4))  # type: ignore[return-value]
@@ -99,11 +136,123 @@ def extrapolation_weights(n_junctions: int) -> tuple[float, float, float]:
     return (0.0, -f, 1.0 + f)
 
 
+def long_array_weights(n_junctions: int, law: str = LONG_ARRAY_LAW) -> tuple[float, float]:
+    """Weights (v_5, v_6) of the exact N = 5, 6 dips that give the N-junction dip, N ≥ 5.
+
+    N = 5, 6: the exact dip itself. N > 6: D_N = D_6 + (D_6 − D_5) f(N) with f from ``law``:
+    "inverse_n" f = (1/6 − 1/N)/(1/5 − 1/6), "inverse_n2" f = (1/36 − 1/N²)/(1/25 − 1/36),
+    "converged" f = 0.
+    """
+    if n_junctions == 5:
+        return (1.0, 0.0)
+    if n_junctions == 6:
+        return (0.0, 1.0)
+    f = long_array_length(n_junctions, law)
+    return (-f, 1.0 + f)
+
+
+def long_array_length(n_junctions: int, law: str = LONG_ARRAY_LAW) -> float:
+    """f(N) of :func:`long_array_weights`: the continuation in units of the N = 5 → 6 step."""
+    n = int(n_junctions)
+    if n <= 6:
+        return 0.0
+    if law == "inverse_n":
+        return (1.0 / 6.0 - 1.0 / n) / (1.0 / 5.0 - 1.0 / 6.0)
+    if law == "inverse_n2":
+        return (1.0 / 36.0 - 1.0 / n**2) / (1.0 / 25.0 - 1.0 / 36.0)
+    if law == "converged":
+        return 0.0
+    raise ValueError(f"unknown long-array law {law!r}; expected inverse_n, inverse_n2 or converged")
+
+
 def extrapolation_length(n_junctions: int) -> float:
     """How far (in units of the N = 4 → 5 step in 1/N²) the tables are continued; 0 for N ≤ 4."""
     if n_junctions <= 4:
         return 0.0
     return (1.0 / 16.0 - 1.0 / n_junctions**2) / (1.0 / 16.0 - 1.0 / 25.0)
+
+
+@lru_cache(maxsize=1)
+def exact_long_dips() -> dict[int, np.ndarray]:
+    """D_5 and D_6 on the short tables' (x, u) grid: C_N + Δ_N (module docstring, step 2)."""
+    tables = _load_tables()
+    long = _load_long_tables()
+    x_fine, u_fine = tables["x_nodes"], tables["u_nodes"]
+    x_c, u_c = long["x_nodes"], long["u_nodes"]
+    d4 = dip_spline(x_fine, u_fine, tables["dip_4"])
+    out = {}
+    for n in (5, 6):
+        w2, w3, w4 = extrapolation_weights(n)
+        base_fine = w2 * tables["dip_2"] + w3 * tables["dip_3"] + w4 * tables["dip_4"]
+        base = dip_spline(x_fine, u_fine, base_fine)
+        xg, ug = np.meshgrid(x_c, u_c, indexing="ij")
+        delta = (1.0 - long[f"conductance_{n}"]) / ug - base.ev(xg, ug)
+        # Beyond the last solved x of a column (the window budget) continue Δ ∝ D_4.
+        for j in range(u_c.size):
+            solved = np.isfinite(delta[:, j])
+            last = int(np.nonzero(solved)[0][-1])
+            ratio = d4.ev(x_c[last + 1 :], u_c[j]) / d4.ev(x_c[last], u_c[j])
+            delta[last + 1 :, j] = delta[last, j] * ratio
+        # Below the first tabulated u the N-dependence of G/G_T is O(u³) (module docstring), so
+        # Δ = (1 − G/G_T)/u differences scale as u²: nodes at u = 0.5 and 1 carry Δ(u_1)(u/u_1)²,
+        # which keeps the cubic from overshooting in the gap (checked by the N = 5 points of
+        # validation.npz at u = 0.5 and 1 and the exact N = 7 point at u = 1.5).
+        low_u = np.array([0.5, 1.0])
+        u_all = np.concatenate(([0.0], low_u, u_c))
+        delta_low = delta[:, :1] * (low_u / u_c[0]) ** 2
+        delta_all = np.concatenate((np.zeros((x_c.size, 1)), delta_low, delta), axis=1)
+        spline = dip_spline(x_c, u_all, delta_all, degree=3)
+        xf, uf = np.meshgrid(x_fine, u_fine, indexing="ij")
+        inside = xf <= x_c[-1]
+        delta_fine = np.empty_like(base_fine)
+        delta_fine[inside] = spline.ev(xf[inside], uf[inside])
+        edge = spline.ev(np.full(int((~inside).sum()), x_c[-1]), uf[~inside])
+        ratio = d4.ev(xf[~inside], uf[~inside]) / d4.ev(np.full(edge.size, x_c[-1]), uf[~inside])
+        delta_fine[~inside] = edge * ratio
+        out[n] = base_fine + delta_fine
+    return out
+
+
+def _table_dip(n_junctions: int) -> np.ndarray:
+    """D_N on the short tables' grid: exact (N ≤ 6) or continued (N > 6)."""
+    tables = _load_tables()
+    if n_junctions <= 4:
+        return tables[f"dip_{n_junctions}"]
+    exact = exact_long_dips()
+    v5, v6 = long_array_weights(n_junctions)
+    return v5 * exact[5] + v6 * exact[6]
+
+
+@lru_cache(maxsize=1)
+def tail_decay() -> float:
+    """Slowest decay rate of the tabulated dips between x = 35 and 40, capped at TAIL_DECAY."""
+    tables = _load_tables()
+    x = tables["x_nodes"]
+    i35, i40 = int(np.argmin(np.abs(x - 35.0))), int(np.argmin(np.abs(x - X_TABLE_END)))
+    u = tables["u_nodes"]
+    rates = [TAIL_DECAY]
+    for n in (2, 3, 4):
+        dip = tables[f"dip_{n}"]
+        # Only where the tail is resolved (u D > 1e-8 at x = 40); below, it is rounding noise.
+        sel = u * dip[i40] > 1e-8
+        rates.extend(np.log(dip[i35, sel] / dip[i40, sel]) / (x[i40] - x[i35]))
+    return float(min(rates))
+
+
+#: Nodes mirrored to x < 0 before a spline of the N = 5, 6 corrections is fitted: D is even in
+#: x, and a spline that does not know it errs between x = 0 and the first node (the fine-grid
+#: N = 2 spline, unmirrored for the fast grid's sake, by up to 1.6e-7 near x = 0.1 at u ≈ 2.5,
+#: measured against the exact solver).
+MIRRORED_NODES = 10
+
+
+def dip_spline(x_nodes: np.ndarray, u_nodes: np.ndarray, dip: np.ndarray,
+               degree: int = 5) -> RectBivariateSpline:
+    """Interpolating spline of a tabulated even dip D(x, u), with nodes mirrored to x < 0."""
+    k = MIRRORED_NODES
+    xs = np.concatenate((-x_nodes[k:0:-1], x_nodes))
+    values = np.concatenate((dip[k:0:-1], dip), axis=0)
+    return RectBivariateSpline(xs, u_nodes, values, kx=degree, ky=degree, s=0)
 
 
 @dataclass(frozen=True)
@@ -115,10 +264,11 @@ class FullTunnellingShape:
     built once from the table spline (analysis.cbt.dip_grid; 1.3–1.5e7 points per second for
     16–64 walkers on a shared 2-core machine, about 5x the spline's own rate,
     benchmarks/bench_full_model.py).
-    Source: the orthodox master equation of PHYSICS.md 1.3 (Melsen et al., PRB 55, 10638 (1997)
-    for arrays), solved exactly for N = 2, 3, 4 and continued in 1/N² (module docstring).
+    Source: the orthodox master equation of docs/physics.md §1.3 (Melsen et al., PRB 55, 10638 (1997)
+    for arrays), solved exactly for N = 2–6 and continued to longer chains (module docstring).
 
-    Validated for 0 ≤ u ≤ 3 (refused outside with :class:`FullModelRangeError`). ``c0_ratio``
+    Validated for 0 ≤ u ≤ :data:`MAX_U` (= ``max_u``; refused outside with
+    :class:`FullModelRangeError`, and the fit reads ``max_u``). ``c0_ratio``
     (C_0/C) other than 0 is refused: no tables with stray capacitance are shipped (the exact
     solver :mod:`analysis.cbt.tunnelling` handles C_0 for short chains).
     """
@@ -129,7 +279,6 @@ class FullTunnellingShape:
     max_u: float = field(init=False, default=MAX_U)
     min_u: float = field(init=False, default=0.0)
     _spline: RectBivariateSpline = field(init=False, repr=False, compare=False)
-    _correction_beyond_four: tuple[float, ...] = field(init=False, repr=False, compare=False)
     _grid: GridDip = field(init=False, repr=False, compare=False)
 
     def __post_init__(self) -> None:
@@ -140,24 +289,18 @@ class FullTunnellingShape:
         if self.c0_ratio != 0.0:
             raise FullModelRangeError(
                 f"c0_ratio = {self.c0_ratio!r}: the full-model tables are for C_0 = 0 only; fit an "
-                "effective ΔE (PHYSICS.md 1.4) or solve short chains with "
+                "effective ΔE (docs/physics.md §1.4) or solve short chains with "
                 "analysis.cbt.tunnelling.ArrayDescription(c0_ratio=...)"
             )
         tables = _load_tables()
-        w2, w3, w4 = extrapolation_weights(int(self.n_junctions))
-        dip = w2 * tables["dip_2"] + w3 * tables["dip_3"] + w4 * tables["dip_4"]
+        dip = _table_dip(int(self.n_junctions))
+        # Not mirrored: the fast grid (analysis.cbt.dip_grid) reproduces this spline to rounding
+        # because its knots lie on the grid; the cost is the measured 1.6e-7 near x = 0.1 that
+        # MEASURED_ERROR["interpolation_short"] carries.
         spline = RectBivariateSpline(tables["x_nodes"], tables["u_nodes"], dip, kx=5, ky=5, s=0)
         object.__setattr__(self, "_spline", spline)
-        # max over x of u |D_N − D_4| per u band: the size of the 1/N² correction itself.
-        u_nodes = tables["u_nodes"]
-        correction = np.abs(u_nodes * (dip - tables["dip_4"]))
-        lower = 0.0
-        per_band = []
-        for upper in MEASURED_ERROR["u_band_upper"]:
-            sel = (u_nodes > lower - 1e-9) & (u_nodes <= upper + 1e-9)
-            per_band.append(float(correction[:, sel].max()))
-            lower = upper
-        object.__setattr__(self, "_correction_beyond_four", tuple(per_band))
+        if self.n_junctions > max(EXACT_LENGTHS):
+            object.__setattr__(self, "max_u", LONG_ARRAY_MAX_U)
         object.__setattr__(
             self, "name", f"full orthodox tunnelling, N = {self.n_junctions} (master equation)"
         )
@@ -165,7 +308,8 @@ class FullTunnellingShape:
         # whole tabulated u range (analysis.cbt.dip_grid); its own error is measured there.
         u_nodes = tables["u_nodes"]
         object.__setattr__(self, "_grid", GridDip(
-            self._reference_reduced, (float(u_nodes[0]), float(u_nodes[-1])), X_TABLE_END, TAIL_DECAY))
+            self._reference_reduced, (float(u_nodes[0]), float(u_nodes[-1])), X_TABLE_END,
+            tail_decay()))
 
     def __call__(self, x: np.ndarray, u: np.ndarray) -> np.ndarray:
         u_arr = np.asarray(u, dtype=float)
@@ -211,17 +355,19 @@ class FullTunnellingShape:
         reduced[inside] = self._spline.ev(xf[inside], uf[inside])
         if not inside.all():
             edge = self._spline.ev(np.full(int((~inside).sum()), X_TABLE_END), uf[~inside])
-            reduced[~inside] = edge * np.exp(-TAIL_DECAY * (xf[~inside] - X_TABLE_END))
+            reduced[~inside] = edge * np.exp(-tail_decay() * (xf[~inside] - X_TABLE_END))
         return reduced.reshape(xb.shape)
 
     def model_error(self, u: float | np.ndarray) -> float:
         """Bound on max |ΔG/G_T| over the dip at this u (measured; see :data:`MEASURED_ERROR`).
 
-        Interpolation error of the tables used, plus the N = 5 extrapolation residual of the
-        u band scaled by :func:`extrapolation_length` and :data:`EXTRAPOLATION_SAFETY` (zero for
-        the exact N = 2, 3, 4 tables); for u > :data:`NON_ALGEBRAIC_U` at least the size of the
-        correction applied beyond N = 4; plus the measured difference of the fast evaluation grid
-        from the table spline (~1e-15 today). Use it as a model-uncertainty row of the budget.
+        N ≤ 4: the interpolation error of the exact table. N ≥ 5: that of the N = 4 table, plus
+        for u ≤ :data:`LONG_TABLE_MIN_U` the N = 5 residual of the 1/N² continuation scaled by
+        :func:`extrapolation_length` and :data:`EXTRAPOLATION_SAFETY`; above it the measured
+        error of the exact N = 5, 6 tables, and for N > 6 the measured residual of
+        :data:`LONG_ARRAY_LAW` per unit of its length, times :func:`long_array_length` and the
+        safety factor. Plus the measured difference of the fast evaluation grid from the table
+        spline. Use it as a model-uncertainty row of the budget.
         """
         u_max = float(np.max(u))
         if not (self.min_u <= u_max <= self.max_u):
@@ -231,13 +377,19 @@ class FullTunnellingShape:
         bands = np.asarray(MEASURED_ERROR["u_band_upper"])
         i = int(np.searchsorted(bands, u_max - 1e-12))
         n = int(self.n_junctions)
-        key = "interpolation_short" if n <= 3 else "interpolation_n4"
-        interp = MEASURED_ERROR[key][i]
-        extrap = EXTRAPOLATION_SAFETY * MEASURED_ERROR["extrapolation_n5"][i]
-        extrap *= extrapolation_length(n)
-        if n > 4 and u_max > NON_ALGEBRAIC_U:
-            extrap = max(extrap, self._correction_beyond_four[i])
-        return float(interp + extrap + self._grid.measured_error)
+        if n <= 3:
+            error = MEASURED_ERROR["interpolation_short"][i]
+        else:
+            error = MEASURED_ERROR["interpolation_n4"][i]
+        if n >= 5:
+            if bands[i] <= LONG_TABLE_MIN_U + 1e-12:
+                error += (EXTRAPOLATION_SAFETY * MEASURED_ERROR["extrapolation_n5"][i]
+                          * extrapolation_length(n))
+            else:
+                error += MEASURED_ERROR["exact_long"][i]
+                error += (EXTRAPOLATION_SAFETY * MEASURED_ERROR["long_array"][i]
+                          * long_array_length(n))
+        return float(error + self._grid.measured_error)
 
     def relative_width_error(self, u: float) -> float:
         """Relative error of the FWHM (so of T) implied by :meth:`model_error`.

@@ -55,7 +55,7 @@ def simulate_current(
 ) -> MonteCarloCurrent:
     """Stationary current of the array by orthodox kinetic Monte Carlo.
 
-    Orthodox sequential tunnelling (rates of PHYSICS.md 1.3; Melsen et al., PRB 55, 10638 (1997)
+    Orthodox sequential tunnelling (rates of docs/physics.md §1.3; Melsen et al., PRB 55, 10638 (1997)
     for arrays) sampled by the Gillespie algorithm (J. Phys. Chem. 81, 2340 (1977)). Every
     replica starts from the configuration the charge window of the master equation would be
     centred on and discards ``burn_in_events`` events before averaging. Reproducible: the same
@@ -79,7 +79,7 @@ def simulate_current(
     profile = v * (0.5 - np.arange(1, n) / n)
     start = np.rint(-(array.c0_ratio * profile / c) + offsets).astype(np.int64)
     charges = np.tile(start, (n_replicas, 1))
-    # Node potentials (reduced, e φ/k_B T) with the leads at ±v/2; islands from K̃ (PHYSICS.md 1.3).
+    # Node potentials (reduced, e φ/k_B T) with the leads at ±v/2; islands from K̃ (docs/physics.md §1.3).
     psi = np.empty((n_replicas, n + 1))
     psi[:, 0] = 0.5 * v
     psi[:, n] = -0.5 * v
@@ -138,7 +138,7 @@ def conductance_by_difference(
 ) -> tuple[float, float]:
     """G/G_T ≈ [J(x + h) − J(x − h)]/(2h) from two Monte Carlo runs, with its standard error.
 
-    A planning-grade estimate (PHYSICS.md 1.3 defines G = dI/dV): the central difference has a
+    A planning-grade estimate (docs/physics.md §1.3 defines G = dI/dV): the central difference has a
     bias of (h²/6) G'' on top of the statistical error returned. The two runs use seeds derived
     from ``seed`` so that the result is reproducible.
     """

@@ -2,7 +2,7 @@
 
 The analytic dip formulas (first order, Pekola et al. 1994; higher order, Farhangfar et al. 1997)
 are expansions in u = ΔE/(k_B T). This module solves the problem they approximate without any
-expansion: the stationary master equation of orthodox sequential tunnelling (PHYSICS.md 1.3;
+expansion: the stationary master equation of orthodox sequential tunnelling (docs/physics.md §1.3;
 Melsen, Hanke, Müller & Chao, PRB 55, 10638 (1997) for arrays) over the island-charge
 configurations n = (n_1 … n_{N-1}) of a chain of N junctions. It is exact for short chains
 (N ≲ 5, limited by the (2K+1)^(N-1) growth of the charge window) and is the reference that the
@@ -12,7 +12,7 @@ Everything is in reduced units, so the results plug straight into the team's dip
 
 * x = eV/(N k_B T), the bias per junction in units of k_B T/e (bias applied symmetrically,
   +V/2 on the left lead, −V/2 on the right one);
-* u = ΔE/(k_B T) with ΔE = ((N − 1)/N) e²/C, C the junction capacitance (PHYSICS.md 1.1), so the
+* u = ΔE/(k_B T) with ΔE = ((N − 1)/N) e²/C, C the junction capacitance (docs/physics.md §1.1), so the
   charging parameter of a junction is c = e²/(C k_B T) = u N/(N − 1);
 * conductance as G/G_T with G_T = 1/Σ_k R_k the high-bias conductance of the chain; currents as
   J = I Σ_k R_k e/(N k_B T), which tends to x at high bias.
@@ -44,8 +44,9 @@ logger = logging.getLogger(__name__)
 #: ~1e-9 on enlarging the window, at N = 2–5 and u = 0.5–3 (measured, see the tests).
 DEFAULT_WINDOW_SIGMAS = 7.0
 
-#: Largest state space we build (memory ~ 1 kB per state for the sparse LU).
-MAX_STATES = 400_000
+#: Largest state space we build (memory ~ 0.5 kB per state for the sparse generator and GMRES;
+#: the sparse LU is used only for small windows).
+MAX_STATES = 3_000_000
 
 
 class TunnellingModelError(ValueError):
@@ -54,7 +55,7 @@ class TunnellingModelError(ValueError):
 
 @dataclass(frozen=True)
 class ArrayDescription:
-    """A series chain of N tunnel junctions in the reduced description of PHYSICS.md 1.3.
+    """A series chain of N tunnel junctions in the reduced description of docs/physics.md §1.3.
 
     ``resistance_ratios`` are R_k / mean(R) (normalised here to mean 1; default all 1),
     ``c0_ratio`` is the island-to-ground capacitance C_0 over the junction capacitance C, and
@@ -113,7 +114,7 @@ class ArrayDescription:
         m = self.n_islands
         drive = np.zeros(m)
         # Island 1 couples to the left lead (+v/2) and island N−1 to the right lead (−v/2)
-        # through one junction capacitance each: φ = K (q + C_c V_lead), PHYSICS.md 1.3.
+        # through one junction capacitance each: φ = K (q + C_c V_lead), docs/physics.md §1.3.
         drive[0] += 0.5
         drive[-1] -= 0.5
         return self.inverse_capacitance() @ drive
@@ -121,7 +122,7 @@ class ArrayDescription:
     def junction_charging(self) -> np.ndarray:
         """(1/2)(K̃_aa + K̃_bb − 2 K̃_ab) for each junction (units of e²/C), leads contributing 0.
 
-        PHYSICS.md 1.3: for a uniform chain with C_0 = 0 every entry is (N − 1)/(2N).
+        docs/physics.md §1.3: for a uniform chain with C_0 = 0 every entry is (N − 1)/(2N).
         """
         k = self.inverse_capacitance()
         m = self.n_islands
@@ -140,7 +141,7 @@ def orthodox_rate_factor(y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """φ(y) = y/(e^y − 1) and its derivative φ'(y), y = ΔF/(k_B T).
 
     Orthodox theory: Γ = (k_B T/(e² R)) φ(ΔF/k_B T) for a tunnelling event that changes the free
-    energy by ΔF (PHYSICS.md 1.3; Melsen et al., PRB 55, 10638 (1997)). Near y = 0 both are taken
+    energy by ΔF (docs/physics.md §1.3; Melsen et al., PRB 55, 10638 (1997)). Near y = 0 both are taken
     from their Bernoulli series (φ = Σ B_n yⁿ/n!) to avoid cancellation; elsewhere from expm1, in a
     form that neither overflows for large positive y nor loses precision for large negative y.
     """
@@ -183,7 +184,9 @@ class MasterEquationSolution:
 
     ``conductance`` is G/G_T; ``current`` J (→ x at high bias); ``boundary_probability`` the
     stationary probability on states at the edge of the charge window (a truncation indicator);
-    ``window_change`` the |ΔG/G_T| when the window was enlarged (None if not checked).
+    ``window_change`` the |ΔG/G_T| when the window was enlarged (None if not checked);
+    ``solver`` the linear solve used ("LU" for small windows, "GMRES" above
+    DIRECT_SOLVE_MAX_STATES states).
     """
 
     x: float
@@ -196,6 +199,8 @@ class MasterEquationSolution:
     window: ChargeWindow
     window_change: float | None = None
     notes: tuple[str, ...] = field(default_factory=tuple)
+    solver: str = ""
+    _window_solution: object = field(default=None, repr=False, compare=False)
 
     @property
     def converged(self) -> bool:
@@ -233,44 +238,177 @@ def _choose_window(
                         temperature)
 
 
+def _ellipsoid_count_estimate(form: np.ndarray, radius_sq: float) -> float:
+    """Volume of {q : q·A q ≤ r²}, which approximates its number of lattice points."""
+    m = form.shape[0]
+    unit_ball = math.pi ** (m / 2) / math.gamma(m / 2 + 1)
+    return unit_ball * radius_sq ** (m / 2) / math.sqrt(float(np.linalg.det(form)))
+
+
+def estimated_window_states(array: ArrayDescription, x: float, u: float, sigmas: float) -> float:
+    """About how many charge states the window of :func:`solve_master_equation` holds here."""
+    c = charging_parameter(u, array.n_junctions)
+    window = _choose_window(array, c, x, sigmas, np.zeros(array.n_islands))
+    form = (c / window.noise_temperature) * array.inverse_capacitance()
+    return _ellipsoid_count_estimate(form, sigmas**2)
+
+
 def _enumerate_states(array: ArrayDescription, c: float, window: ChargeWindow) -> np.ndarray:
-    centre = np.asarray(window.centre)
-    half = np.asarray(window.half_widths)
-    size = 2 * half + 1
-    total = int(np.prod(size.astype(float)))
-    if total > 40 * MAX_STATES:
+    """Integer charge configurations inside the window's energy ellipsoid.
+
+    The window is {q : (c / 2T) q·K̃q ≤ sigmas²/2} around ``window.centre`` (an energy bound of
+    sigmas²/2 k_B T_eff in the charging energy, docs/physics.md §1.3). It is enumerated directly,
+    one island at a time from the last, with the remaining budget of the quadratic form after
+    the coordinates already fixed (the lattice enumeration of Fincke & Pohst, Math. Comp. 44,
+    463 (1985)), so the cost is proportional to the states kept, not to a bounding box.
+    """
+    m = array.n_islands
+    form = (c / window.noise_temperature) * array.inverse_capacitance()
+    radius_sq = window.sigmas**2
+    estimate = _ellipsoid_count_estimate(form, radius_sq)
+    if estimate > 1.5 * MAX_STATES:
         raise TunnellingModelError(
-            f"charge window of {total:.3g} configurations for N = {array.n_junctions} at "
-            f"c = e²/(C k_B T) = {c:.3g} is too large for the exact solver; use a shorter array "
-            "or the long-array model (analysis.cbt.full_model)"
+            f"about {estimate:.3g} charge states needed for N = {array.n_junctions} at "
+            f"c = e²/(C k_B T) = {c:.3g}, charge-noise temperature "
+            f"{window.noise_temperature:.3g} k_B T: beyond the exact solver's limit "
+            f"({MAX_STATES}); use a shorter array or the long-array model "
+            "(analysis.cbt.full_model)"
         )
-    grids = np.indices(tuple(size), dtype=np.int32).reshape(len(size), -1).T - half
-    kinv = array.inverse_capacitance()
-    energy = 0.5 * c / window.noise_temperature * np.einsum("si,ij,sj->s", grids, kinv, grids)
-    keep = energy <= 0.5 * window.sigmas**2
-    # Keep the box edges' neighbours consistent: the ellipsoid cut already excludes the corners.
-    states = grids[keep] + centre
+    # q·A q = Σ_i (R_ii q_i + Σ_{j>i} R_ij q_j)² with A = RᵀR (R upper triangular): fixing
+    # q_m, q_{m−1}, … in turn leaves a one-dimensional interval for the next coordinate.
+    upper = np.linalg.cholesky(form).T
+    partial = np.zeros((1, m), dtype=np.int32)
+    budget = np.array([radius_sq])
+    for i in range(m - 1, -1, -1):
+        shift = partial[:, i + 1 :] @ upper[i, i + 1 :] if i < m - 1 else np.zeros(len(partial))
+        centre_i = -shift / upper[i, i]
+        half = np.sqrt(np.maximum(budget, 0.0)) / upper[i, i]
+        lo = np.ceil(centre_i - half - 1e-12).astype(np.int64)
+        hi = np.floor(centre_i + half + 1e-12).astype(np.int64)
+        count = np.maximum(hi - lo + 1, 0)
+        total = int(count.sum())
+        if total > 2 * MAX_STATES:
+            raise TunnellingModelError(
+                f"more than {2 * MAX_STATES} charge states needed for N = {array.n_junctions} at "
+                f"c = e²/(C k_B T) = {c:.3g}: beyond the exact solver's limit; use the "
+                "long-array model (analysis.cbt.full_model)"
+            )
+        parent = np.repeat(np.arange(len(partial)), count)
+        first = np.repeat(np.cumsum(count) - count, count)
+        value = lo[parent] + (np.arange(total) - first)
+        partial = partial[parent]
+        partial[:, i] = value
+        residual = upper[i, i] * value + shift[parent]
+        budget = budget[parent] - residual**2
+    states = partial + np.asarray(window.centre, dtype=np.int32)
     if len(states) > MAX_STATES:
         raise TunnellingModelError(
             f"{len(states)} charge states needed for N = {array.n_junctions} at "
-            f"c = e²/(C k_B T) = {c:.3g}, charge-noise temperature {window.noise_temperature:.3g} k_B T: beyond the exact "
+            f"c = e²/(C k_B T) = {c:.3g}, charge-noise temperature "
+            f"{window.noise_temperature:.3g} k_B T: beyond the exact "
             "solver's limit; use the long-array model (analysis.cbt.full_model)"
         )
     return states
 
 
+def _state_keys(states: np.ndarray, low: np.ndarray, size: np.ndarray) -> np.ndarray:
+    """One int64 key per charge configuration inside the box [low, low + size) (row-major)."""
+    rel = states.astype(np.int64) - low
+    keys = np.zeros(len(states), dtype=np.int64)
+    for i in range(states.shape[1]):
+        keys = keys * int(size[i]) + rel[:, i]
+    return keys
+
+
+class _StateIndex:
+    """Index of a sorted set of charge configurations, for neighbour and warm-start look-ups."""
+
+    def __init__(self, states: np.ndarray) -> None:
+        self.low = states.min(axis=0).astype(np.int64) - 1
+        self.size = states.max(axis=0).astype(np.int64) - self.low + 2
+        if float(np.prod(self.size.astype(float))) >= 2.0**62:
+            raise TunnellingModelError("charge window too wide to index")
+        keys = _state_keys(states, self.low, self.size)
+        self.order = np.argsort(keys)
+        self.sorted_keys = keys[self.order]
+
+    def find(self, states: np.ndarray) -> np.ndarray:
+        """Index of each configuration in the set, −1 where it is not in it."""
+        rel = states.astype(np.int64) - self.low
+        inside = np.all((rel >= 0) & (rel < self.size), axis=1)
+        out = np.full(len(states), -1, dtype=np.int64)
+        if not inside.any():
+            return out
+        keys = _state_keys(states[inside], self.low, self.size)
+        pos = np.minimum(np.searchsorted(self.sorted_keys, keys), len(self.sorted_keys) - 1)
+        hit = self.sorted_keys[pos] == keys
+        found = np.where(hit, self.order[pos], -1)
+        out[inside] = found
+        return out
+
+
+#: Below this many states the sparse LU is the fastest solve; above it Jacobi-preconditioned
+#: GMRES (measured: LU fill-in of the 5-dimensional N = 6 lattice costs 25 s for 9 229 states at
+#: u = 3, GMRES 0.05 s to a relative residual of 2e-14).
+DIRECT_SOLVE_MAX_STATES = 3000
+
+#: Relative residual to which the iterative solve is driven (then checked independently).
+ITERATIVE_RTOL = 1e-13
+
+
+@dataclass(frozen=True)
+class _WindowSolution:
+    conductance: float
+    current: float
+    mean_charge: np.ndarray
+    edge_probability: float
+    states: np.ndarray
+    probability: np.ndarray
+    probability_derivative: np.ndarray
+    method: str
+
+
+def _linear_solve(
+    matrix: sp.csc_matrix, rhs: np.ndarray, guess: np.ndarray | None, lu: object | None
+) -> tuple[np.ndarray, str]:
+    if lu is not None:
+        return lu.solve(rhs), "LU"
+    diagonal = matrix.diagonal()
+    jacobi = spla.LinearOperator(matrix.shape, lambda v: v / diagonal)
+    scale = float(np.linalg.norm(rhs))
+    if scale == 0.0:
+        return np.zeros_like(rhs), "GMRES"
+    sol, info = spla.gmres(matrix, rhs, x0=guess, M=jacobi, rtol=ITERATIVE_RTOL, atol=0.0,
+                           restart=60, maxiter=400)
+    residual = float(np.linalg.norm(matrix @ sol - rhs)) / scale
+    if info != 0 or not residual < 1e3 * ITERATIVE_RTOL:
+        logger.warning("GMRES stopped at relative residual %.1e (info %d); solving by sparse LU",
+                       residual, info)
+        return _factorise(matrix).solve(rhs), "LU after GMRES"
+    return sol, "GMRES"
+
+
+def _factorise(matrix: sp.csc_matrix):  # noqa: ANN202 (SuperLU object)
+    # No pivoting: with the pinned row the matrix is column diagonally dominant (each diagonal
+    # entry is minus the sum of its column's rates), for which LU without pivoting is stable;
+    # dropping the pivot search lets SuperLU keep the symmetric fill-reducing ordering of this
+    # structurally symmetric matrix, which is ~20x faster than partial pivoting at N = 4.
+    return spla.splu(matrix, permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0,
+                     options={"SymmetricMode": True})
+
+
 def _solve_on_window(
-    array: ArrayDescription, c: float, x: float, states: np.ndarray, window: ChargeWindow
-) -> tuple[float, float, np.ndarray, np.ndarray, float]:
+    array: ArrayDescription,
+    c: float,
+    x: float,
+    states: np.ndarray,
+    window: ChargeWindow,
+    warm_start: _WindowSolution | None = None,
+) -> _WindowSolution:
     n = array.n_junctions
     m = array.n_islands
     n_states = len(states)
-    centre = np.asarray(window.centre)
-    half = np.asarray(window.half_widths)
-    size = 2 * half + 1
-    lookup = np.full(int(np.prod(size)), -1, dtype=np.int64)
-    flat = np.ravel_multi_index(tuple((states - centre + half).T), tuple(size))
-    lookup[flat] = np.arange(n_states)
+    index = _StateIndex(states)
 
     kinv = array.inverse_capacitance()
     v = n * x
@@ -293,7 +431,7 @@ def _solve_on_window(
     boundary = np.zeros(n_states, dtype=bool)
     for k in range(1, n + 1):
         # "Forward" = one electron from node k to node k−1 (conventional current left to right
-        # for positive bias). ΔF = ψ_k − ψ_{k−1} + e²(K_aa + K_bb − 2K_ab)/2, PHYSICS.md 1.3.
+        # for positive bias). ΔF = ψ_k − ψ_{k−1} + e²(K_aa + K_bb − 2K_ab)/2, docs/physics.md §1.3.
         delta = np.zeros(m, dtype=np.int32)
         if k <= m:
             delta[k - 1] -= 1
@@ -302,13 +440,7 @@ def _solve_on_window(
         drive = psi[:, k] - psi[:, k - 1]
         ddrive = dpsi_dx[k] - dpsi_dx[k - 1]
         for sign in (1, -1):
-            target_charge = states + sign * delta
-            rel = target_charge - centre + half
-            inside = np.all((rel >= 0) & (rel < size), axis=1)
-            target = np.full(n_states, -1, dtype=np.int64)
-            target[inside] = lookup[
-                np.ravel_multi_index(tuple(rel[inside].T), tuple(size))
-            ]
+            target = index.find(states + sign * delta)
             valid = target >= 0
             boundary |= ~valid
             y = sign * drive[valid] + e_junction[k - 1]
@@ -338,7 +470,7 @@ def _solve_on_window(
     # one entry keeps the matrix as sparse as Q; a row of ones (Σ P = 1) would be dense and ruin
     # the LU fill-in. Normalising afterwards gives P; for P' any solution of Q y = −Q'P is P' up
     # to a multiple of P, and Σ P' = 0 fixes that multiple.
-    pivot = int(lookup[np.ravel_multi_index(tuple(half), tuple(size))])
+    pivot = int(index.find(np.asarray(window.centre, dtype=np.int64)[None, :])[0])
     if pivot < 0:
         pivot = 0
     keep = rows_a != pivot
@@ -347,19 +479,30 @@ def _solve_on_window(
     a_data = np.concatenate((data_a[keep], [1.0]))
     matrix = sp.csc_matrix((a_data, (a_rows, a_cols)), shape=(n_states, n_states))
     dgen = sp.csr_matrix((ddata_a, (rows_a, cols_a)), shape=(n_states, n_states))
-    # No pivoting: with the pinned row the matrix is column diagonally dominant (each diagonal
-    # entry is minus the sum of its column's rates), for which LU without pivoting is stable;
-    # dropping the pivot search lets SuperLU keep the symmetric fill-reducing ordering of this
-    # structurally symmetric matrix, which is ~20x faster than partial pivoting at N = 4.
-    lu = spla.splu(matrix, permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0,
-                   options={"SymmetricMode": True})
+    lu = _factorise(matrix) if n_states <= DIRECT_SOLVE_MAX_STATES else None
+
+    # Warm start (a bias sweep): the previous point's P and P', carried over state by state and
+    # scaled to the pinned normalisation P_pivot = 1.
+    guess_p = guess_dp = None
+    if warm_start is not None and lu is None:
+        where = _StateIndex(warm_start.states).find(states)
+        carried = where >= 0
+        old_p = np.zeros(n_states)
+        old_dp = np.zeros(n_states)
+        old_p[carried] = warm_start.probability[where[carried]]
+        old_dp[carried] = warm_start.probability_derivative[where[carried]]
+        if old_p[pivot] > 0:
+            # The pinned systems' solutions are P/P_pivot and P' − (P'_pivot/P_pivot) P.
+            guess_p = old_p / old_p[pivot]
+            guess_dp = old_dp - (old_dp[pivot] / old_p[pivot]) * old_p
+
     rhs = np.zeros(n_states)
     rhs[pivot] = 1.0
-    prob = lu.solve(rhs)
+    prob, method = _linear_solve(matrix, rhs, guess_p, lu)
     prob /= prob.sum()
     rhs_d = -(dgen @ prob)
     rhs_d[pivot] = 0.0
-    dprob = lu.solve(rhs_d)
+    dprob, method_d = _linear_solve(matrix, rhs_d, guess_dp, lu)
     dprob -= dprob.sum() * prob
 
     currents = jnet @ prob
@@ -367,11 +510,16 @@ def _solve_on_window(
     spread = float(np.max(np.abs(conductances - conductances.mean())))
     if spread > 1e-8:
         logger.warning("junction conductances disagree by %.3g (ill-conditioned solve)", spread)
-    mean_charge = prob @ states
-    dev = states - mean_charge
-    charge_variance = (dev * prob[:, None]).T @ dev
-    return (float(conductances.mean()), float(currents.mean()), mean_charge, charge_variance,
-            float(prob[boundary].sum()))
+    return _WindowSolution(
+        conductance=float(conductances.mean()),
+        current=float(currents.mean()),
+        mean_charge=prob @ states,
+        edge_probability=float(prob[boundary].sum()),
+        states=states,
+        probability=prob,
+        probability_derivative=dprob,
+        method=method if method == method_d else f"{method}/{method_d}",
+    )
 
 
 def solve_master_equation(
@@ -381,57 +529,88 @@ def solve_master_equation(
     *,
     sigmas: float = DEFAULT_WINDOW_SIGMAS,
     check_window: bool = False,
+    warm_start: MasterEquationSolution | None = None,
 ) -> MasterEquationSolution:
     """Stationary orthodox master equation of a 1D array at reduced bias x and u = ΔE/(k_B T).
 
-    Orthodox sequential tunnelling, PHYSICS.md 1.3 (rates Γ = ΔF/(e²R[exp(ΔF/k_BT) − 1]),
+    Orthodox sequential tunnelling, docs/physics.md §1.3 (rates Γ = ΔF/(e²R[exp(ΔF/k_BT) − 1]),
     free-energy change ΔF = e(φ_a − φ_b) + (e²/2)(K_aa + K_bb − 2K_ab)); Melsen et al., PRB 55,
     10638 (1997) for arrays. Returns G/G_T (by the analytic derivative of the stationary
     solution, see module docstring) and the current.
 
-    The charge window is centred on the expected charge (the linear-profile charge C_0 φ_i plus
-    offsets), sized from the Gaussian charge distribution at a noise temperature that grows with
-    bias (1 + 0.5|x|), then recentred on the computed mean charge if that lies more than half an
-    electron away. Its truncation is reported as the stationary probability on the window edge;
-    with ``check_window`` the solution is repeated on a window 1.5 σ larger and the change in
-    G/G_T reported as ``window_change``.
+    The charge window is bounded by energy: the configurations q (relative to its centre) with
+    charging energy (e²/2) q·K q ≤ (sigmas²/2) k_B T_eff, an ellipsoid in the inverse-capacitance
+    metric (so the Gaussian estimate of their probability exceeds exp(−sigmas²/2)). T_eff, the
+    charge-noise temperature (x/2) coth(x/2), grows the window with bias. It is centred on the
+    expected charge (the linear-profile charge C_0 φ_i plus offsets), then recentred on the
+    computed mean charge if that lies more than half an electron away. Its truncation is
+    reported as the stationary probability on the window edge; with ``check_window`` the
+    solution is repeated on a window 1.5 σ larger and the change in G/G_T reported as
+    ``window_change``. ``warm_start`` (the previous point of a bias sweep, as returned by this
+    function) is the starting guess of the iterative solve.
     """
     if not (math.isfinite(x) and math.isfinite(u)) or u <= 0:
         raise TunnellingModelError(f"need finite x and u > 0; got x = {x!r}, u = {u!r}")
     c = charging_parameter(u, array.n_junctions)
     notes: list[str] = []
     window = _choose_window(array, c, x, sigmas, None)
+    previous = None if warm_start is None else warm_start._window_solution
     for _ in range(4):
         states = _enumerate_states(array, c, window)
-        g, j, mean_charge, variance, edge = _solve_on_window(array, c, x, states, window)
-        shift = np.abs(mean_charge - np.asarray(window.centre))
+        solved = _solve_on_window(array, c, x, states, window, previous)
+        shift = np.abs(solved.mean_charge - np.asarray(window.centre))
         if np.all(shift <= 0.5):
             break
-        notes.append(f"window recentred from {window.centre} to mean charge {mean_charge}")
-        window = _choose_window(array, c, x, sigmas, mean_charge)
+        notes.append(f"window recentred from {window.centre} to mean charge {solved.mean_charge}")
+        window = _choose_window(array, c, x, sigmas, solved.mean_charge)
+        previous = solved
     change = None
     if check_window:
         wider = _choose_window(array, c, x, sigmas + 1.5, np.asarray(window.centre))
-        g2, *_ = _solve_on_window(array, c, x, _enumerate_states(array, c, wider), wider)
-        change = abs(g2 - g)
+        wide = _solve_on_window(array, c, x, _enumerate_states(array, c, wider), wider, solved)
+        change = abs(wide.conductance - solved.conductance)
     return MasterEquationSolution(
         x=float(x),
         u=float(u),
-        conductance=g,
-        current=j,
+        conductance=solved.conductance,
+        current=solved.current,
         n_states=len(states),
-        mean_charge=tuple(float(q) for q in mean_charge),
-        boundary_probability=edge,
+        mean_charge=tuple(float(q) for q in solved.mean_charge),
+        boundary_probability=solved.edge_probability,
         window=window,
         window_change=change,
         notes=tuple(notes),
+        solver=solved.method,
+        _window_solution=solved,
     )
+
+
+def solve_bias_sweep(
+    array: ArrayDescription,
+    xs: np.ndarray,
+    u: float,
+    *,
+    sigmas: float = DEFAULT_WINDOW_SIGMAS,
+    check_window: bool = False,
+) -> list[MasterEquationSolution]:
+    """The master equation at each bias of ``xs`` in turn, each solve warm-started from the last.
+
+    Same physics and window rule as :func:`solve_master_equation` (docs/physics.md §1.3); order the
+    biases so that neighbours are close (e.g. increasing) for the warm start to help. Every
+    solution carries its own window-convergence indicators.
+    """
+    out: list[MasterEquationSolution] = []
+    for xv in np.asarray(xs, dtype=float).ravel():
+        out.append(solve_master_equation(array, float(xv), u, sigmas=sigmas,
+                                         check_window=check_window,
+                                         warm_start=out[-1] if out else None))
+    return out
 
 
 def conductance(
     x: np.ndarray | float, u: float, array: ArrayDescription, *, sigmas: float = DEFAULT_WINDOW_SIGMAS
 ) -> np.ndarray:
-    """G/G_T of the array at each reduced bias in ``x`` (exact master equation, PHYSICS.md 1.3)."""
+    """G/G_T of the array at each reduced bias in ``x`` (exact master equation, docs/physics.md §1.3)."""
     xs = np.atleast_1d(np.asarray(x, dtype=float))
     out = np.array([solve_master_equation(array, float(xi), u, sigmas=sigmas).conductance
                     for xi in xs.ravel()])
@@ -439,7 +618,7 @@ def conductance(
 
 
 def dip_depth(u: float, array: ArrayDescription, *, sigmas: float = DEFAULT_WINDOW_SIGMAS) -> float:
-    """ΔG/G_T = 1 − G(0)/G_T from the exact master equation (PHYSICS.md 1.3)."""
+    """ΔG/G_T = 1 − G(0)/G_T from the exact master equation (docs/physics.md §1.3)."""
     return 1.0 - solve_master_equation(array, 0.0, u, sigmas=sigmas).conductance
 
 
@@ -449,7 +628,7 @@ def full_width_half_depth(
     """FWHM of the dip in units of N k_B T/e (twice the x where G/G_T = 1 − depth/2).
 
     The half-depth point is bracketed between 0.5 and 3 times the first-order root x = 2.71958
-    (Pekola et al. 1994, PHYSICS.md 1.1) and found by Brent's method on the exact conductance.
+    (Pekola et al. 1994, docs/physics.md §1.1) and found by Brent's method on the exact conductance.
     Assumes a dip symmetric in bias (no offset charges or asymmetric resistances that break the
     x → −x symmetry); otherwise measures the positive-bias half only and doubles it.
     """
