@@ -32,13 +32,13 @@ from tests.service_support import complete_record
 
 
 def test_sha256_of_abc_fips_180_2():
-    # FIPS 180-2, Appendix B.1 ("abc" one-block message); value quoted in PHYSICS.md 6.
+    # FIPS 180-2, Appendix B.1 ("abc" one-block message); value quoted in docs/physics.md 6.
     assert sha256_hex(b"abc") == (
         "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
     )
 
 
-# RFC 8032 section 7.1, TEST 1 (empty message); values quoted in PHYSICS.md 6.
+# RFC 8032 section 7.1, TEST 1 (empty message); values quoted in docs/physics.md 6.
 RFC8032_SECRET = "9d61b19deffd5a60ba844af492ec2cc44449c5697b326919703bac031cae7f60"
 RFC8032_PUBLIC = "d75a980182b10ab7d54bfed3c964073a0ee172f3daa62325af021a68f707511a"
 RFC8032_SIGNATURE = (

@@ -15,7 +15,7 @@ from analysis.sampling import sample_posterior
 @pytest.mark.parametrize("T, u", [(0.02, 0.6), (0.1, 1.5), (1.5, 2.5)])
 def test_recovers_temperature(T, u):
     # Data from the exact master equation of a 3-junction array (analysis.cbt.simulate.exact_sweep,
-    # PHYSICS.md 1.3), not from the tables the fit interpolates; the fit chooses its model as
+    # docs/physics.md 1.3), not from the tables the fit interpolates; the fit chooses its model as
     # `coldcert certify` does.
     bias, g, setup = exact_sweep(3, T, u, 3e-6, bias_offset=0.05 * half_width_voltage(T, 3))
     g = g + 3e-4 * 3e-6 * np.random.default_rng(11).standard_normal(g.size)
@@ -41,7 +41,7 @@ def test_same_seed_same_posterior():
 
 
 def test_first_order_model_is_biased_where_published():
-    # Exact N = 3 data at u = 0.5 (master equation, PHYSICS.md 1.3): the full model recovers T
+    # Exact N = 3 data at u = 0.5 (master equation, docs/physics.md 1.3): the full model recovers T
     # within its uncertainty, while the first-order formula (Pekola et al. 1994) reads T high by
     # more than the width correction 0.3921 ΔG/G_T it lacks (Farhangfar et al. 1997: 3.1 % here).
     T, u = 0.05, 0.5
@@ -71,7 +71,7 @@ def test_budget_rows_and_correction():
     names = [r.quantity for r in budget.rows]
     for needed in ("posterior", "bias-voltage scale", "excitation", "non-uniformity", "model truncation"):
         assert any(needed in n for n in names), needed
-    # Non-uniformity: FWHM x (1 - 0.7343 sigma^2) (PHYSICS.md 1.4, derived) -> T corrected upward.
+    # Non-uniformity: FWHM x (1 - 0.7343 sigma^2) (docs/physics.md 1.4, derived) -> T corrected upward.
     assert factor == pytest.approx(1 + 0.7343 * 0.05**2)
     assert budget.estimate == pytest.approx(fit.temperature * factor)
     # Bias-scale row: T scales with the voltage axis, so its contribution is T x u_rel.

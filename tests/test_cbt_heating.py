@@ -1,4 +1,4 @@
-"""Self-heating: the electron-phonon heat balance in the forward model (PHYSICS.md 1.4)."""
+"""Self-heating: the electron-phonon heat balance in the forward model (docs/physics.md 1.4)."""
 
 import numpy as np
 import pytest
@@ -33,12 +33,12 @@ def heated_sweep(T=0.01, seed=1):
 
 
 def test_electron_temperature_formula():
-    # T_e = [T_p^5 + (P_0 + V^2/(N^2 R_T))/(Sigma Omega)]^(1/5) (Wellstood et al. 1994; PHYSICS.md 1.4).
+    # T_e = [T_p^5 + (P_0 + V^2/(N^2 R_T))/(Sigma Omega)]^(1/5) (Wellstood et al. 1994; docs/physics.md 1.4).
     hm = HeatingModel(COUPLING, R_T, LEAK)
     v = 1e-3
     expect = (0.01**5 + (LEAK + v**2 / (N**2 * R_T)) / COUPLING) ** 0.2
     assert hm.electron_temperature(v, 0.01, N) == pytest.approx(expect, rel=1e-14)
-    # Size at the half-width point: dT/T ~ 1.1e-8/(R_T Sigma Omega T^3) (PHYSICS.md 1.4, derived):
+    # Size at the half-width point: dT/T ~ 1.1e-8/(R_T Sigma Omega T^3) (docs/physics.md 1.4, derived):
     # R_T = 20 kohm, 1000 um^3 Cu -> 27 % at 10 mK, 0.22 % at 50 mK.
     for T, frac in ((0.01, 0.27), (0.05, 0.0022)):
         vh = half_width_voltage(T, N)

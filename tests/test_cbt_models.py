@@ -22,7 +22,7 @@ def test_dip_function_matches_closed_form_away_from_zero():
 
 
 def test_dip_function_check_values():
-    # PHYSICS.md 1.1 check values (derived from Pekola et al. 1994's g).
+    # docs/physics.md 1.1 check values (derived from Pekola et al. 1994's g).
     x = np.array([1.0, 2.0, 3.0, 5.0])
     expected = [0.150947578709, 0.113328424380, 0.0724759138, 0.0209523201]
     np.testing.assert_allclose(m.dip_function(x), expected, rtol=1e-9)
@@ -33,7 +33,7 @@ def test_dip_function_stable_at_zero_and_large_bias():
     assert m.dip_function(np.array([0.0]))[0] == pytest.approx(1 / 6, rel=1e-15)
     x = np.array([1e-8, 1e-4, 0.299999, 0.300001])
     # Taylor series of g (derived from the Bernoulli series of x coth(x/2); first three terms in
-    # PHYSICS.md 1.1), to x^10.
+    # docs/physics.md 1.1), to x^10.
     series = 1 / 6 - x**2 / 60 + x**4 / 1008 - x**6 / 21600 + x**8 / 532224 - 691 * x**10 / 9906624000
     np.testing.assert_allclose(m.dip_function(x), series, rtol=1e-13)
     big = m.dip_function(np.array([50.0, 700.0, 1e4]))
@@ -43,7 +43,7 @@ def test_dip_function_stable_at_zero_and_large_bias():
 
 def test_half_width_root():
     # Pekola et al. 1994: FWHM = 5.439 N k_B T / e; the root of g(x) = g(0)/2 is 2.7195849526
-    # (PHYSICS.md 1.1, derived).
+    # (docs/physics.md 1.1, derived).
     root = optimize.brentq(lambda x: m.dip_function(np.array([x]))[0] - 1 / 12, 1, 4, xtol=1e-14)
     assert root == pytest.approx(2.7195849526, abs=1e-9)
     assert 2 * root == pytest.approx(5.43917, abs=1e-5)
@@ -51,12 +51,12 @@ def test_half_width_root():
 
 
 def test_half_width_voltage_check_value():
-    # PHYSICS.md 1.1 (derived): N = 100, T = 10 mK -> V_1/2 = 468.7114 uV.
+    # docs/physics.md 1.1 (derived): N = 100, T = 10 mK -> V_1/2 = 468.7114 uV.
     assert m.half_width_voltage(0.010, 100) * 1e6 == pytest.approx(468.7114, abs=1e-4)
 
 
 def test_integral_and_sum_rule():
-    # PHYSICS.md 1.1 (derived): integral of g over [0, inf) is 1/2.
+    # docs/physics.md 1.1 (derived): integral of g over [0, inf) is 1/2.
     val, _ = integrate.quad(lambda x: m.dip_function(np.array([x]))[0], 0, np.inf, limit=200)
     assert val == pytest.approx(0.5, rel=1e-10)
 
@@ -83,7 +83,7 @@ def test_higher_order_width():
 @pytest.mark.parametrize(
     "alpha, fwhm_ratio, depth_ratio",
     [
-        # PHYSICS.md 1.4 (derived, first-order model): lock-in broadening table.
+        # docs/physics.md 1.4 (derived, first-order model): lock-in broadening table.
         (0.1, 1.000281647, 0.99975007),
         (0.5, 1.007037411, 0.99379617),
         (1.0, 1.028101125, 0.97572295),
@@ -105,7 +105,7 @@ def test_lockin_average_broadening_table(alpha, fwhm_ratio, depth_ratio):
 
 
 def test_lockin_quadrature_against_adaptive_integration():
-    # The semicircle-weighted average (2/pi) int_0^pi G(V0 + a cos t) sin^2 t dt (PHYSICS.md 1.4)
+    # The semicircle-weighted average (2/pi) int_0^pi G(V0 + a cos t) sin^2 t dt (docs/physics.md 1.4)
     # against scipy.integrate.quad for a range of excitations.
     shape = m.higher_order_shape
     for alpha in (0.05, 0.29, 0.9, 2.4, 4.0):
@@ -121,7 +121,7 @@ def test_lockin_quadrature_against_adaptive_integration():
 
 
 def test_lockin_small_amplitude_limit():
-    # Lowest order: G_meas = G + (a^2/8) G'' (PHYSICS.md 1.4, derived).
+    # Lowest order: G_meas = G + (a^2/8) G'' (docs/physics.md 1.4, derived).
     x0, a = 0.7, 0.02
     h = 1e-3
     g = lambda x: m.first_order_shape(np.asarray(x), 0.3)  # noqa: E731
@@ -142,7 +142,7 @@ def test_forward_model_vectorised_over_batch_and_points():
 
 
 def test_series_resistance_correction_inverts_the_circuit():
-    # Circuit theory (PHYSICS.md 1.4): the array sees V - I R_s, G_m = G/(1 + R_s G).
+    # Circuit theory (docs/physics.md 1.4): the array sees V - I R_s, G_m = G/(1 + R_s G).
     N, T, rs = 20, 0.05, 300.0
     va = np.linspace(-3e-3, 3e-3, 4001)
     g = m.forward_conductance(m.first_order_shape, va, m.SweepSetup(N), T, 0.2 * T, 2e-5, 0.0)
@@ -156,6 +156,6 @@ def test_series_resistance_correction_inverts_the_circuit():
 
 
 def test_invert_depth_series_secondary_mode_values():
-    # PHYSICS.md 1.5 (derived from the Farhangfar 1997 series): d -> u.
+    # docs/physics.md 1.5 (derived from the Farhangfar 1997 series): d -> u.
     d = np.array([0.01, 0.05, 0.0793651, 0.15])
     np.testing.assert_allclose(m.invert_depth_series(d), [0.0603623, 0.3092839, 0.5, 0.9885171], atol=2e-7)

@@ -11,7 +11,7 @@ from analysis.constants import BOLTZMANN, ELEMENTARY_CHARGE
 
 
 def test_excitation_width_ratio_table():
-    # PHYSICS.md 1.4 (derived, first-order model): FWHM ratio 1.028101125 at alpha = 1, 1.007037411 at 0.5.
+    # docs/physics.md 1.4 (derived, first-order model): FWHM ratio 1.028101125 at alpha = 1, 1.007037411 at 0.5.
     assert excitation_width_ratio(1.0) == pytest.approx(1.028101125, abs=2e-6)
     assert excitation_width_ratio(0.5) == pytest.approx(1.007037411, abs=2e-6)
 
@@ -20,7 +20,7 @@ def test_charging_energy_of_a_uniform_chain():
     # Pekola et al. 1994: dE = ((N - 1)/N) e^2/C for C_0 = 0.
     d = Device(33, 10, 20e3, 0.25e-12)
     assert d.charging_energy_K == pytest.approx(32 / 33 * ELEMENTARY_CHARGE**2 / (0.25e-12 * BOLTZMANN), rel=1e-12)
-    # Infinite-array stray capacitance: e^2/C_eff = (e^2/C)[1 - sqrt(C0/(C0 + 4C))] (PHYSICS.md 1.4, derived).
+    # Infinite-array stray capacitance: e^2/C_eff = (e^2/C)[1 - sqrt(C0/(C0 + 4C))] (docs/physics.md 1.4, derived).
     d0 = Device(33, 10, 20e3, 0.25e-12, ground_capacitance_F=0.25e-12)
     assert d0.charging_energy_K / d.charging_energy_K == pytest.approx(1 - math.sqrt(1 / 5), rel=1e-12)
 

@@ -8,13 +8,13 @@ from analysis.cbt.secondary import SecondaryCalibration, temperatures_from_zero_
 
 
 def test_inversion_check_values():
-    # PHYSICS.md 1.5 (derived from the Farhangfar et al. 1997 series): d -> u; T = dE/u.
+    # docs/physics.md 1.5 (derived from the Farhangfar et al. 1997 series): d -> u; T = dE/u.
     cal = SecondaryCalibration(0.0072, 0.0, 1e-5, 0.0)
     d = np.array([0.01, 0.05, 0.0793651, 0.15])
     res = temperatures_from_zero_bias(1e-5 * (1 - d), cal)
     np.testing.assert_allclose(res.u, [0.0603623, 0.3092839, 0.5, 0.9885171], atol=3e-7)
     np.testing.assert_allclose(res.temperature, 0.0072 / res.u, rtol=1e-14)
-    # First-order 6d would read T 5 % high at u = 0.5 (PHYSICS.md 1.5).
+    # First-order 6d would read T 5 % high at u = 0.5 (docs/physics.md 1.5).
     assert 0.0072 / (6 * 0.0793651) / res.temperature[2] == pytest.approx(1.05, abs=0.01)
 
 

@@ -1,7 +1,7 @@
 """Trust on messy sweeps: bias order, bad points, outliers, correlated noise, the edge of a model.
 
 The data come from the exact orthodox master equation of a 3-junction array
-(analysis.cbt.simulate.exact_sweep, PHYSICS.md 1.3), not from the tables the fit uses, so a
+(analysis.cbt.simulate.exact_sweep, docs/physics.md 1.3), not from the tables the fit uses, so a
 recovery here is a check against an independent line shape.
 """
 

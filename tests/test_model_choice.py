@@ -13,7 +13,7 @@ from service.intake import parse_csv
 
 
 def exact_sweep_file(n, T, u, points=161, noise=1e-4, seed=3):
-    # Data from the exact orthodox master equation (PHYSICS.md 1.3), an independent solver.
+    # Data from the exact orthodox master equation (docs/physics.md 1.3), an independent solver.
     x = np.linspace(-30, 30, points)
     g = tunnelling.conductance(x, u, tunnelling.ArrayDescription(n))
     gt = 2e-6
@@ -49,7 +49,7 @@ def test_cold_sweep_switches_to_the_full_model_and_recovers_T():
 
 @pytest.mark.parametrize("u", [0.2, 0.5])
 def test_first_order_formula_bias_on_exact_data(u):
-    # Exact N = 2 data from the master equation (PHYSICS.md 1.3). PHYSICS.md 1.2 quotes +1.8 % and
+    # Exact N = 2 data from the master equation (docs/physics.md 1.3). docs/physics.md 1.2 quotes +1.8 % and
     # +4.5 % for this bias but not the swept range it was derived over, and the bias grows with the
     # range, so those figures cannot serve as a reference at their quoted digits. Two independent
     # checks instead: the first-order fit must read T high by more than the width correction

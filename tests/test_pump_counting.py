@@ -9,7 +9,7 @@ from analysis.pump.counting import error_rate
 
 
 def test_no_error_seen_gives_the_poisson_upper_limit():
-    # PHYSICS.md 4 / Garwood, Biometrika 28, 437 (1936): with k = 0 the 95 % bound is
+    # docs/physics.md 4 / Garwood, Biometrika 28, 437 (1936): with k = 0 the 95 % bound is
     # χ²₀.₉₅(2)/(2N) = ln(20)/N exactly, since P(0 | λ) = e^{−λ} = 0.05 (derived).
     r = error_rate(0, 1_000_000)
     assert r.probability == 0.0 and r.standard_uncertainty == 0.0
@@ -29,7 +29,7 @@ def test_upper_bound_is_the_poisson_limit(k):
 
 
 def test_estimate_and_binomial_uncertainty():
-    # p̂ = k/N, u = √(p̂(1 − p̂)/N) (binomial; PHYSICS.md 4).
+    # p̂ = k/N, u = √(p̂(1 − p̂)/N) (binomial; docs/physics.md 4).
     r = error_rate(12, 3_000_000)
     assert r.probability == pytest.approx(4e-6)
     assert r.standard_uncertainty == pytest.approx(math.sqrt(4e-6 * (1 - 4e-6) / 3e6))

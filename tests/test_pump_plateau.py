@@ -19,7 +19,7 @@ EF = nominal_current(1.0e9)
     "delta, x_expected, dev_expected",
     [
         # Derived from Kashcheyevs & Kaestner, PRL 104, 186805 (2010), computed independently
-        # (PHYSICS.md 4): inflection point x = aV and ⟨n⟩ − 1 there, with Δ₁ = 0, Δ₂ = δ.
+        # (docs/physics.md 4): inflection point x = aV and ⟨n⟩ − 1 there, with Δ₁ = 0, Δ₂ = δ.
         (10.0, 7.4792, -5.606e-4),
         (20.0, 16.8604, -4.751e-8),
         (25.0, 21.6569, -3.926e-10),

@@ -671,7 +671,7 @@ def fit_sweep(
     Raises :class:`PointError` for a bias value far outside the sweep (a typing slip) or a sweep
     with too many outliers, naming the points; SweepError when the swept bias does not reach
     ``min_range_half_widths`` × V_1/2 on both sides of the dip (the asymptote G_T is then not
-    fixed: 6g(x) is still 0.1 % of the depth at 2 V_1/2; PHYSICS.md 1.4); :class:`ModelEdgeError`
+    fixed: 6g(x) is still 0.1 % of the depth at 2 V_1/2; docs/physics.md 1.4); :class:`ModelEdgeError`
     when the least-squares optimum or the posterior touches a bound of the model's validated
     range or of the prior box. With ``robust`` (default) outliers are screened out, correlated
     noise is modelled and the residuals are diagnosed (:func:`screen_and_model_noise`).
@@ -788,7 +788,7 @@ def fit_sweep(
 
 
 def heating_fraction(setup: SweepSetup, temperature: float, fwhm: float) -> float:
-    """Relative electron heating (T_e − T)/T at the half-depth bias ±V_1/2/2 (PHYSICS.md 1.4)."""
+    """Relative electron heating (T_e − T)/T at the half-depth bias ±V_1/2/2 (docs/physics.md 1.4)."""
     if setup.heating is None:
         return 0.0
     te = float(setup.heating.electron_temperature(fwhm / 2, temperature, setup.junctions_in_series))

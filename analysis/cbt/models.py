@@ -25,12 +25,12 @@ import numpy as np
 from analysis.constants import BOLTZMANN, ELEMENTARY_CHARGE
 
 #: FWHM of the first-order dip in units of N k_B T / e: twice the root x of g(x) = g(0)/2 = 1/12.
-#: Pekola et al., PRL 73, 2903 (1994); the 10-digit value is derived (PHYSICS.md 1.1) and checked
+#: Pekola et al., PRL 73, 2903 (1994); the 10-digit value is derived (docs/physics.md 1.1) and checked
 #: in tests by root finding.
 HALF_WIDTH_FACTOR = 5.439169905
 
 #: Junction non-uniformity narrows the dip: FWHM × (1 − 0.7343 σ_R²), σ_R the relative spread of
-#: the junction resistances (first order; PHYSICS.md 1.4, derived, checked there by an exact master
+#: the junction resistances (first order; docs/physics.md 1.4, derived, checked there by an exact master
 #: equation at N = 2: −0.738; error ∝ variance: Pekola et al., arXiv:2112.13830 (2021)).
 NON_UNIFORMITY_WIDTH_COEFFICIENT = 0.7343
 
@@ -39,7 +39,7 @@ NON_UNIFORMITY_WIDTH_COEFFICIENT = 0.7343
 WIDTH_CORRECTION = 0.3921
 
 # Taylor coefficients of g(x) about x = 0 (derived from the Bernoulli-number series of
-# x coth(x/2) and 2(cosh x - 1); PHYSICS.md 1.1 lists the first three).
+# x coth(x/2) and 2(cosh x - 1); docs/physics.md 1.1 lists the first three).
 _G_SERIES = (
     1.0 / 6.0,
     -1.0 / 60.0,
@@ -106,7 +106,7 @@ def depth_series(u: np.ndarray | float) -> np.ndarray:
 def invert_depth_series(depth: np.ndarray | float) -> np.ndarray:
     """u such that u/6 − u²/60 + u³/630 = depth (Farhangfar et al. 1997), by Newton iteration.
 
-    Used for secondary thermometry (PHYSICS.md 1.5). The series is monotonic for u below ~5.
+    Used for secondary thermometry (docs/physics.md 1.5). The series is monotonic for u below ~5.
     """
     d = np.asarray(depth, dtype=float)
     if np.any(d <= 0) or np.any(d >= depth_series(4.0)):
@@ -127,7 +127,7 @@ class FirstOrderShape:
     """G/G_T = 1 − u g(x): Pekola et al., PRL 73, 2903 (1994), first order in u.
 
     Its temperature is exact only as u → 0: fitted to exact data it reads T high by ~1.8 % at
-    u = 0.2 and ~4.5 % at u = 0.5 (PHYSICS.md 1.2, derived); our own measurement against the full
+    u = 0.2 and ~4.5 % at u = 0.5 (docs/physics.md 1.2, derived); our own measurement against the full
     model gives ≈ 0.105 u over the whole range (analysis.cbt.choice), bounded here by 0.11 u.
     """
 
@@ -152,7 +152,7 @@ class HigherOrderShape:
     G/G_T = 1 − 6 d(u) g(x / s), d(u) the depth series and s = 1 + 0.3921 d(u), so that the
     model's depth and FWHM are exactly the published ones. Against exact master-equation
     solutions the width *formula* is low by only 0.03 % at u = 0.2 and 0.16 % at u = 0.5
-    (PHYSICS.md 1.2, derived), but the line shape away from the half-depth points is not the exact
+    (docs/physics.md 1.2, derived), but the line shape away from the half-depth points is not the exact
     one at O(u²), and a fit of the whole sweep reads T high by ≈ 0.042 u (measured against the
     full tunnelling model, analysis.cbt.choice). :meth:`relative_width_error` bounds this by
     0.045 u; the full model is preferred wherever it is validated.
@@ -221,7 +221,7 @@ def lockin_average(
     """Conductance read by a lock-in with sinusoidal excitation of peak amplitude a.
 
     The first-harmonic response is G_meas(V₀) = (2/π) ∫₀^π G(V₀ + a cos θ) sin²θ dθ
-    (PHYSICS.md 1.4; to lowest order G + (a²/8) G''). We evaluate the integral exactly for the
+    (docs/physics.md 1.4; to lowest order G + (a²/8) G''). We evaluate the integral exactly for the
     model by Gauss–Chebyshev quadrature of the second kind, not only its a²/8 term.
     ``conductance`` maps bias (any shape) to G; the nodes are added on a new last axis.
     """
@@ -242,7 +242,7 @@ class HeatingModel:
     Each island receives the Joule power of its junction, about (V/N)²/R_T, plus a heat leak P₀,
     and cools through electron–phonon coupling P = Σ Ω (T_e⁵ − T_p⁵) (Wellstood, Urbina & Clarke,
     PRB 49, 5942 (1994)); hence T_e(V) = [T_p⁵ + (P₀ + V²/(N² R_T))/(Σ Ω)]^(1/5), with the
-    conductance evaluated at T_e(V) (the usual CBT fitting model; PHYSICS.md 1.4). T_p⁵ and P₀/ΣΩ
+    conductance evaluated at T_e(V) (the usual CBT fitting model; docs/physics.md 1.4). T_p⁵ and P₀/ΣΩ
     enter only as a sum, so P₀ cannot be fitted from one sweep: it is a stated input.
     ``coupling_W_per_K5`` is Σ Ω; ``junction_resistance_ohm`` is R_T of one junction.
     """
@@ -284,7 +284,7 @@ def forward_conductance(
     """Measured conductance for a batch of parameter vectors (vectorised over both).
 
     G(V) = G_T [1 + β (V − V₀)] · shape(e(V − V₀)/(N k_B T), ΔE/(k_B T)), averaged over the
-    lock-in excitation (PHYSICS.md 1.4). ``temperature`` (K), ``charging_energy`` ΔE/k_B (K),
+    lock-in excitation (docs/physics.md 1.4). ``temperature`` (K), ``charging_energy`` ΔE/k_B (K),
     ``asymptotic_conductance`` G_T (S), ``bias_offset`` V₀ (V) and ``background_slope`` β (1/V)
     are arrays of a common batch shape B (or scalars); ``bias`` has shape (n,). Returns B + (n,).
     Series resistance is removed from the data before the fit (see :func:`correct_series_resistance`).
@@ -332,7 +332,7 @@ def correct_series_resistance(
 ) -> tuple[np.ndarray, np.ndarray]:
     """Remove a two-wire series (lead) resistance R_s from a measured sweep.
 
-    Circuit theory (PHYSICS.md 1.4): the array sees V − I R_s and G = G_m / (1 − R_s G_m). The
+    Circuit theory (docs/physics.md 1.4): the array sees V − I R_s and G = G_m / (1 − R_s G_m). The
     current is the running integral of G_m dV (trapezoid rule), zero at the bias point closest to
     zero; the error of that integral constant is second order in R_s G_T × depth.
     """

@@ -2,9 +2,9 @@
 
 From the device (N, M, R_T, C, C_0, island volume) and the temperature, predict the dip
 (charging energy ΔE = ((N − 1)/N) e²/C, Pekola et al. 1994; reduced by stray capacitance roughly as
-the infinite-array e²/C_eff = (e²/C)[1 − √(C₀/(C₀ + 4C))], PHYSICS.md 1.4, derived), its width
+the infinite-array e²/C_eff = (e²/C)[1 − √(C₀/(C₀ + 4C))], docs/physics.md 1.4, derived), its width
 (Farhangfar et al. 1997), the largest lock-in excitation whose *unmodelled* broadening stays below a
-chosen width error (exact semicircle average, PHYSICS.md 1.4), the self-heating at the half-depth
+chosen width error (exact semicircle average, docs/physics.md 1.4), the self-heating at the half-depth
 bias (Wellstood et al. 1994 heat balance), and the best achievable standard uncertainty of T from
 the Fisher information of the sweep (Cramér–Rao bound; Kay, *Fundamentals of Statistical Signal
 Processing: Estimation Theory*, Prentice Hall 1993, ch. 3).
@@ -29,7 +29,7 @@ from analysis.cbt.models import (
 )
 from analysis.constants import BOLTZMANN, ELEMENTARY_CHARGE
 
-#: Σ for copper, W K⁻⁵ m⁻³ (Wellstood, Urbina & Clarke 1994; value from memory, PHYSICS.md 1.4).
+#: Σ for copper, W K⁻⁵ m⁻³ (Wellstood, Urbina & Clarke 1994; value from memory, docs/physics.md 1.4).
 SIGMA_COPPER = 2e9
 
 
@@ -45,7 +45,7 @@ class Device:
 
     @property
     def charging_energy_K(self) -> float:
-        """ΔE/k_B with the infinite-array stray-capacitance reduction (PHYSICS.md 1.4, derived)."""
+        """ΔE/k_B with the infinite-array stray-capacitance reduction (docs/physics.md 1.4, derived)."""
         N, C, C0 = self.junctions_in_series, self.junction_capacitance_F, self.ground_capacitance_F
         reduction = 1.0 - math.sqrt(C0 / (C0 + 4 * C)) if C0 > 0 else 1.0
         return (N - 1) / N * ELEMENTARY_CHARGE**2 / (C * BOLTZMANN) * reduction

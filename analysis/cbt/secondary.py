@@ -2,13 +2,13 @@
 
 Once a primary fit has fixed the charging energy ΔE and the asymptotic conductance G_T, the dip
 depth d = 1 − G(0)/G_T alone gives u = ΔE/(k_B T) by inverting the depth series
-d = u/6 − u²/60 + u³/630 (Farhangfar et al., J. Low Temp. Phys. 108, 191 (1997); PHYSICS.md 1.5),
+d = u/6 − u²/60 + u³/630 (Farhangfar et al., J. Low Temp. Phys. 108, 191 (1997); docs/physics.md 1.5),
 and T = ΔE/(k_B u). This is fast (one reading per point, no sweep) but no longer primary: it
 leans on ΔE, which can drift by ~10 % below 100 mK in some devices, so ΔE should be refitted
-regularly (PHYSICS.md 1.4).
+regularly (docs/physics.md 1.4).
 
 Uncertainty: first-order propagation (GUM 5.1.2) of u(ΔE), u(G_T), their covariance and u(G(0)),
-plus the depth series' own truncation error (about 1.5e-4 in depth at u = 1, PHYSICS.md 1.2),
+plus the depth series' own truncation error (about 1.5e-4 in depth at u = 1, docs/physics.md 1.2),
 carried as a rectangular term.
 """
 
@@ -44,7 +44,7 @@ class SecondaryResult:
 
 
 def _depth_series_error(u: np.ndarray) -> np.ndarray:
-    # PHYSICS.md 1.2 (derived): error of the three-term depth series vs exact, 1e-5 at u = 0.5,
+    # docs/physics.md 1.2 (derived): error of the three-term depth series vs exact, 1e-5 at u = 0.5,
     # 1.5e-4 at u = 1; bounded here by 1.5e-4 u^4 (the first omitted order).
     return 1.5e-4 * u**4
 
@@ -52,7 +52,7 @@ def _depth_series_error(u: np.ndarray) -> np.ndarray:
 def temperatures_from_zero_bias(
     conductance: np.ndarray, calibration: SecondaryCalibration, conductance_u: np.ndarray | float = 0.0
 ) -> SecondaryResult:
-    """T from zero-bias conductance readings (PHYSICS.md 1.5). Refuses depths outside the series' range."""
+    """T from zero-bias conductance readings (docs/physics.md 1.5). Refuses depths outside the series' range."""
     g0 = np.asarray(conductance, dtype=float)
     gt = calibration.asymptotic_conductance
     d = 1.0 - g0 / gt

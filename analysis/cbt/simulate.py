@@ -37,7 +37,7 @@ def simulate_sweep(
     """A sweep with white Gaussian noise of ``relative_noise`` × G_T on every point.
 
     ``resistance_spread`` σ_R narrows the dip by the first-order factor (1 − 0.7343 σ_R²)
-    (PHYSICS.md 1.4, derived) while leaving its depth unchanged, as non-uniform junctions do.
+    (docs/physics.md 1.4, derived) while leaving its depth unchanged, as non-uniform junctions do.
 
     ``shape`` defaults to the full tunnelling model (analysis.cbt.full_model) inside its validated
     range, else the weak-blockade series. The bias grid spans ±``range_half_widths`` V_1/2 about the offset. Returns bias (V),
@@ -66,7 +66,7 @@ def simulate_sweep(
 def exact_dip_curve(junctions_in_series: int, u: float) -> interpolate.CubicSpline:
     """G/G_T(x) of a uniform short array from the exact orthodox master equation, as a spline in |x|.
 
-    Solved point by point by analysis.cbt.tunnelling (PHYSICS.md 1.3; Melsen et al., PRB 55, 10638
+    Solved point by point by analysis.cbt.tunnelling (docs/physics.md 1.3; Melsen et al., PRB 55, 10638
     (1997)) on 0 ≤ x ≤ 40 (0.1 steps to x = 12, 0.5 beyond), then interpolated by a cubic spline;
     beyond x = 40, G/G_T = 1 (the dip is below 2e-7 there). It never touches the fitted models'
     tables, so data made from it test a fit against an independent line shape. Costs seconds to

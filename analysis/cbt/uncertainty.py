@@ -5,8 +5,8 @@ is the statistical (Type A) row; when the residuals are not white a second Type 
 what the noise model misses (the Newey–West inflation of u(T), analysis.cbt.robust). The Type B
 rows are the instrument and device effects that the fit cannot see: the bias-voltage scale (a
 gain error δ stretches the voltage axis, and T from the width scales with it: ∂T/∂δ = T), the
-lock-in excitation amplitude (it broadens the dip; PHYSICS.md 1.4), junction-resistance
-non-uniformity (FWHM × (1 − 0.7343 σ_R²): T from the width reads low by 0.734 σ_R², PHYSICS.md
+lock-in excitation amplitude (it broadens the dip; docs/physics.md 1.4), junction-resistance
+non-uniformity (FWHM × (1 − 0.7343 σ_R²): T from the width reads low by 0.734 σ_R², docs/physics.md
 1.4, after Pekola et al., arXiv:2112.13830 (2021) on the error scaling with the variance), series
 resistance (T high by about R_s G_T when uncorrected), self-heating (a stated heating model's
 coupling, or, without one, the shift the data's own heating signature implies) and the model's

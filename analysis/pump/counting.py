@@ -36,7 +36,7 @@ class ErrorRate:
 
 
 def error_rate(errors: int, cycles: int, confidence: float = 0.95) -> ErrorRate:
-    """p̂ = k/N, u(p̂) = √(p̂(1 − p̂)/N) and the upper bound χ²_P(2k + 2)/(2N) (PHYSICS.md 4;
+    """p̂ = k/N, u(p̂) = √(p̂(1 − p̂)/N) and the upper bound χ²_P(2k + 2)/(2N) (docs/physics.md 4;
     Garwood 1936 for the Poisson upper limit)."""
     if isinstance(errors, bool) or not float(errors).is_integer() or errors < 0:
         raise ValueError(f"the number of errors must be a whole number ≥ 0, got {errors!r}")
