@@ -101,9 +101,18 @@ def test_secondary_command_round_trip(tmp_path, capsys):
     out = tmp_path / "T.csv"
     assert main(["secondary", str(cert), str(log), "--out", str(out)]) == 0
     rows = out.read_text().splitlines()
-    assert rows[0] == "time_s,conductance_S,temperature_K,standard_uncertainty_K"
-    got = [float(r.split(",")[2]) for r in rows[1:]]
+    # The contract's four columns first (rounded as a certificate prints them, GUM 7.2.6), then
+    # the same two at full precision.
+    assert rows[0] == ("time_s,conductance_S,temperature_K,standard_uncertainty_K,"
+                       "temperature_unrounded_K,standard_uncertainty_unrounded_K")
+    got = [float(r.split(",")[4]) for r in rows[1:]]
     assert got == pytest.approx(temps, rel=1e-9)
+    from analysis.budget import round_for_report
+
+    for row in rows[1:]:
+        cells = row.split(",")
+        assert (cells[2], cells[3]) == round_for_report(float(cells[4]), float(cells[5]))
+        assert len(cells[3].replace("0.", "").lstrip("0")) == 2  # two significant digits of u
     # A reading outside the validated depth range is refused with its line and column.
     log.write_text("time_s,conductance_S\n0,1.0e-5\n")
     assert main(["secondary", str(cert), str(log), "--out", str(out)]) == 2

@@ -99,13 +99,15 @@ def test_issued_certificate_validates_against_dcc_3_3_0(schema, issued_record):
     reals = document.findall(".//si:real", NS)
     assert len(reals) == len(issued_record["results"]) == 2
     for real, result in zip(reals, issued_record["results"], strict=True):
-        # The XML carries the record's binary64 numbers exactly.
-        assert float(real.findtext("si:value", namespaces=NS)) == result["value"]
+        # The XML carries the digits the printed certificate shows (GUM 7.2.6 rounding).
+        assert real.findtext("si:value", namespaces=NS) == result["reported"]["value"]
+        assert float(real.findtext("si:value", namespaces=NS)) == pytest.approx(
+            result["value"], abs=result["expanded_uncertainty"] / 10)
         assert real.findtext("si:unit", namespaces=NS) == r"\kelvin"
         mu = real.find("si:measurementUncertaintyUnivariate/si:expandedMU", NS)
         assert (
-            float(mu.findtext("si:valueExpandedMU", namespaces=NS))
-            == (result["expanded_uncertainty"])
+            mu.findtext("si:valueExpandedMU", namespaces=NS)
+            == result["reported"]["expanded_uncertainty"]
         )
         assert float(mu.findtext("si:coverageFactor", namespaces=NS)) == result["coverage_factor"]
         assert float(mu.findtext("si:coverageProbability", namespaces=NS)) == 0.95

@@ -220,10 +220,16 @@ def cmd_secondary(args) -> int:
         if age is not None and age > args.max_age_days:
             print(f"coldcert: warning: the charging energy was measured {age} days ago; it can drift "
                   "(refit it with a primary sweep)", file=sys.stderr)
-    lines = ["time_s,conductance_S,temperature_K,standard_uncertainty_K"]
+    from analysis.budget import round_for_report
+
+    # temperature_K and its uncertainty are rounded as a certificate prints them (GUM 7.2.6, two
+    # significant digits of u); the *_unrounded_K columns keep full precision for further work.
+    lines = ["time_s,conductance_S,temperature_K,standard_uncertainty_K,"
+             "temperature_unrounded_K,standard_uncertainty_unrounded_K"]
     for t, g, T, u in zip(f.columns["time_s"], f.columns["conductance_S"], res.temperature,
                           res.standard_uncertainty, strict=True):
-        lines.append(f"{float(t)!r},{float(g)!r},{float(T)!r},{float(u)!r}")
+        T_r, u_r = round_for_report(float(T), float(u))
+        lines.append(f"{float(t)!r},{float(g)!r},{T_r},{u_r},{float(T)!r},{float(u)!r}")
     write_atomically(Path(args.out).parent, {Path(args.out).name: ("\n".join(lines) + "\n").encode()})
     print(f"{len(lines) - 1} readings -> {args.out} (T from {np.min(res.temperature):.5g} to "
           f"{np.max(res.temperature):.5g} K; ΔE/k_B = {cal.charging_energy * 1e3:.4g} mK)")

@@ -9,8 +9,8 @@ stays the authoritative document and the XML is regenerated from it on demand.
 
 The schema leaves the issue date and every uncertainty optional. ISO/IEC 17025:2017 7.8.2.1 and
 7.8.4.1 do not, so :func:`check_complete` refuses a record without them before any XML is
-written. Values are written with Python's shortest round-trip ``repr``, so the XML carries the
-same binary64 numbers as the record.
+written. Results are written with the digits the printed certificate shows (the record's GUM
+7.2.6 ``reported`` strings); other numbers with Python's shortest round-trip ``repr``.
 
 The schema files themselves are not shipped with coldcert (they are PTB's). A laboratory that
 wants every DCC it serves checked against its own copy names the main ``dcc.xsd`` in the
@@ -222,9 +222,10 @@ def si_unit(unit: str) -> str:
     )
 
 
-def si_value(value: float, unit: str) -> str:
-    """Decimal text of a value in the D-SI unit (exact decimal scaling for ppm and %)."""
-    text = repr(float(value))
+def si_value(value: float | str, unit: str) -> str:
+    """Decimal text of a value in the D-SI unit (exact decimal scaling for ppm and %); a string
+    (a GUM 7.2.6 rounded value from the record's ``reported``) is kept digit for digit."""
+    text = value if isinstance(value, str) else repr(float(value))
     if unit in _SCALED:
         return str(Decimal(text).scaleb(_SCALED[unit]))
     return text
@@ -367,10 +368,14 @@ def render_dcc(record: Mapping[str, Any]) -> bytes:
         real = _el(quantity, "si:real")
         unit = result["unit"]
         _el(real, "si:label", _nonempty(result.get("quantity") or result.get("name")))
-        _el(real, "si:value", si_value(result["value"], unit))
+        # The same digits as the printed certificate (GUM 7.2.6: two significant digits of U,
+        # the value rounded to match); the unrounded numbers stay in the JSON record.
+        reported = result.get("reported") or {}
+        _el(real, "si:value", si_value(reported.get("value", result["value"]), unit))
         _el(real, "si:unit", si_unit(unit))
         mu = _el(_el(real, "si:measurementUncertaintyUnivariate"), "si:expandedMU")
-        _el(mu, "si:valueExpandedMU", si_value(result["expanded_uncertainty"], unit))
+        expanded = reported.get("expanded_uncertainty", result["expanded_uncertainty"])
+        _el(mu, "si:valueExpandedMU", si_value(expanded, unit))
         _el(mu, "si:coverageFactor", repr(float(result["coverage_factor"])))
         _el(mu, "si:coverageProbability", repr(float(result["coverage_probability"])))
     return etree.tostring(root, xml_declaration=True, encoding="UTF-8", pretty_print=True)
