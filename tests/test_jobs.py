@@ -166,7 +166,7 @@ def test_output_files_are_kept_signed_verified_and_reproduced(troubled_lab):
     ]["results"][0]["value"]
     assert reply.data == f"temperature_K\n{value!r}\n".encode()
     html = client.get(f"/api/certificates/{cert}/html", headers=lab.headers("olga")).data
-    assert f"Certificate {cert}".encode() in html and b"end of document" in html  # re-rendered from the record
+    assert f"Certificate {cert}".encode() in html and b"end of certificate" in html  # re-rendered from the record
     missing = client.get(f"/api/certificates/{cert}/files/other.csv", headers=lab.headers("olga"))
     assert missing.status_code == 404 and "table.csv" in missing.get_json()["error"]
     issued = client.post(f"/api/certificates/{cert}/issue", headers=lab.headers("arno"))

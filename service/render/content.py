@@ -310,7 +310,7 @@ def _closing_blocks(record: Mapping[str, Any], seal: Mapping[str, Any] | None = 
     if rep:
         software = ", ".join(f"{k} {v}" for k, v in (rep.get("software") or {}).items())
         blocks.append(Text(f"Seed {rep.get('seed')}; software {software}.", "small"))
-    blocks.append(Text(f"Certificate {record.get('certificate_id', 'unnumbered')} — end of document", "id"))
+    blocks.append(Text(f"Certificate {record.get('certificate_id', 'unnumbered')} — end of certificate", "id"))
     return blocks
 
 
