@@ -712,6 +712,11 @@ def test_an_incomplete_draft_is_not_issued_until_corrected(lab):
     assert issued.status_code == 200, issued.get_json()
     record = client.get(f"/api/certificates/{cert}/json", headers=lab.headers("olga")).get_json()
     assert record["customer"]["name"] == "A Customer" and "customer" in record["corrected_fields"]
+    # The corrected item identifies the run and the certificate in the archive, and verifies.
+    report = client.get(f"/api/certificates/{cert}/verify", headers=lab.headers("aude")).get_json()
+    assert report["valid"], [c for c in report["checks"] if not c["ok"]]
+    assert client.get(f"/api/certificates/{cert}", headers=lab.headers("olga")).get_json()[
+        "item"] == "CBT-1"
 
 
 def test_issued_renderings_carry_the_signature_details(lab, issued):

@@ -839,10 +839,23 @@ class Archive:
             earlier = set(record.get("corrected_fields") or [])
             record["corrected_fields"] = sorted(earlier | set(corrections))
             item = (record.get("item") or {}).get("identifier") or row.item
+            # The item index of the run and its certificates follows the correction only while
+            # nothing about the run is signed yet (the signed entry names the run's item, and
+            # verify compares both index columns with it).
+            signed = conn.execute(
+                select(st.certificates.c.id).where(
+                    and_(st.certificates.c.run_id == row.run_id,
+                         st.certificates.c.sequence.is_not(None))
+                )
+            ).first()
+            values: dict[str, Any] = {"record_json": canonical_json(record).decode("utf-8")}
+            if signed is None and item != row.item:
+                values["item"] = item
+                conn.execute(st.runs.update().where(st.runs.c.id == row.run_id).values(item=item))
             conn.execute(
                 st.certificates.update()
                 .where(st.certificates.c.id == certificate_id)
-                .values(record_json=canonical_json(record).decode("utf-8"), item=item)
+                .values(**values)
             )
             log_event(
                 conn, user["username"], "certificate.corrected", certificate_id,
