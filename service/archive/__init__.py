@@ -1148,6 +1148,9 @@ class Archive:
             info["software"] = json.loads(info.pop("software_json"))
             info["options"] = json.loads(info.pop("options_json"))
             info["extra_files"] = json.loads(info.pop("extras_json"))
+            # The queue's link to the job that drafted it is for the queue alone (one draft per
+            # job); it is not under the signature, so readers are not shown it.
+            info.pop("job_id", None)
             info["submitted_by"] = self._user(conn, row.submitted_by)["username"]
             info["issued_by"] = (
                 self._user(conn, row.issued_by)["username"] if row.issued_by else None

@@ -331,9 +331,10 @@ def get_rendering(certificate_id: str, fmt: str):
         content, media = render(info, fmt)
     except ValueError as exc:
         return error(409, str(exc))
-    if info.get("sequence") is not None:
+    if info.get("sequence") is not None and not current_app.config.get("READ_ONLY"):
         # A file of an issued certificate leaves the service: note its SHA-256, so that the
-        # customer holding it can later check it on the public page.
+        # customer holding it can later check it on the public page (not from an auditor's
+        # read-only copy, which writes nothing).
         data = content.encode("utf-8") if isinstance(content, str) else content
         record_rendering(services().archive, certificate_id, fmt, sha256_hex(data))
     response = Response(content, mimetype=media.split(";")[0])
