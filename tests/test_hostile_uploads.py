@@ -49,12 +49,17 @@ def refused(lab, files, status=400, **form) -> dict:
     return body
 
 
-def _corrupt_deflated_member() -> bytes:
+def _run_zip(compression: int) -> bytearray:
+    """The example run (manifest and one sweep) as zip bytes, ready to be damaged."""
     buffer = io.BytesIO()
-    with zipfile.ZipFile(buffer, "w", compression=zipfile.ZIP_DEFLATED) as archive:
+    with zipfile.ZipFile(buffer, "w", compression=compression) as archive:
         archive.writestr("run.toml", RUN_TOML)
         archive.writestr(SWEEP_NAME, SWEEP)
-    data = bytearray(buffer.getvalue())
+    return bytearray(buffer.getvalue())
+
+
+def _corrupt_deflated_member() -> bytes:
+    data = _run_zip(zipfile.ZIP_DEFLATED)
     # Overwrite the middle of the sweep's compressed data (after its local header).
     start = data.find(SWEEP_NAME.encode()) + len(SWEEP_NAME) + 40
     for i in range(start, start + 64):
@@ -63,22 +68,14 @@ def _corrupt_deflated_member() -> bytes:
 
 
 def _bad_crc_member() -> bytes:
-    buffer = io.BytesIO()
-    with zipfile.ZipFile(buffer, "w", compression=zipfile.ZIP_STORED) as archive:
-        archive.writestr("run.toml", RUN_TOML)
-        archive.writestr(SWEEP_NAME, SWEEP)
-    data = bytearray(buffer.getvalue())
+    data = _run_zip(zipfile.ZIP_STORED)
     at = data.find(b"1.51517583e-05")
     data[at] = ord("2")
     return bytes(data)
 
 
 def _unknown_compression() -> bytes:
-    buffer = io.BytesIO()
-    with zipfile.ZipFile(buffer, "w", compression=zipfile.ZIP_STORED) as archive:
-        archive.writestr("run.toml", RUN_TOML)
-        archive.writestr(SWEEP_NAME, SWEEP)
-    data = bytearray(buffer.getvalue())
+    data = _run_zip(zipfile.ZIP_STORED)
     # Compression method 99 (AES, unsupported) in both the local and the central header.
     for signature, offset in ((b"PK\x03\x04", 8), (b"PK\x01\x02", 10)):
         at = 0
