@@ -80,9 +80,19 @@ def served(tmp_path):
 
 
 def _wait_for(predicate, timeout: float = 120.0, what: str = "condition"):
+    """Poll ``predicate`` until it is truthy.
+
+    A click that submits a form replaces the page under the predicate: an element found on the old
+    page goes stale, or is not on the new one yet. Both mean "not yet", never a failure.
+    """
+    from selenium.common.exceptions import NoSuchElementException, StaleElementReferenceException
+
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
-        value = predicate()
+        try:
+            value = predicate()
+        except (StaleElementReferenceException, NoSuchElementException):
+            value = None
         if value:
             return value
         time.sleep(0.2)
