@@ -401,7 +401,6 @@ def execute(
                     options=options,
                     plots=output.plots,
                     extra_files=output.extra_files,
-                    html_sections=output.html_sections,
                     job_id=job["id"],
                 )
                 _finish(conn, job["id"], worker, {"certificate_id": cert_id}, cert_id)
