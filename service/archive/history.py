@@ -40,7 +40,7 @@ from analysis import curve_comparison as cc
 from analysis import drift
 from analysis import intervals as iv
 from analysis.sensors import CalibrationCurve
-from service.calibrations.sensor import CertificateError, curve_from_record
+from service.record.sensor_curve import CertificateError, curve_from_record
 
 KIND_CBT = "cbt_thermometry"
 KIND_SENSOR = "sensor_calibration"
