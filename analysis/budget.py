@@ -186,6 +186,27 @@ class Budget:
         }
 
 
+def sensitivity_coefficients(
+    model: Callable[..., float], estimates: Mapping[str, float], **fixed: object
+) -> tuple[float, dict[str, float]]:
+    """The model's value and its sensitivity coefficients c_i = ∂f/∂x_i at the input estimates
+    (GUM 5.1.3), taken from the model function itself.
+
+    The derivatives are exact first-order ones (automatic differentiation by the `uncertainties`
+    package, which follows every arithmetic operation of the model), so a budget's sensitivities
+    cannot drift apart from the measurement equation it states. The model must be written with
+    operators (and ``uncertainties.umath`` for functions); ``fixed`` are keyword arguments that
+    are not inputs of the budget. An input the model does not depend on has c_i = 0.
+    """
+    from uncertainties import ufloat  # here, not at the top: most budgets do not need it
+
+    variables = {name: ufloat(float(x), 1.0, tag=name) for name, x in estimates.items()}
+    y = model(**variables, **fixed)
+    derivatives = getattr(y, "derivatives", {})
+    value = float(getattr(y, "nominal_value", y))
+    return value, {name: float(derivatives.get(v, 0.0)) for name, v in variables.items()}
+
+
 def combine(
     measurand: str,
     unit: str,
