@@ -72,6 +72,12 @@ def _existing_app(args: argparse.Namespace, **config):
 
 
 def add_commands(subparsers: argparse._SubParsersAction) -> None:
+    for add in (_add_serve, _add_work, _add_add_admin, _add_new_token, _add_verify, _add_reproduce):
+        add(subparsers)
+
+
+def _add_serve(subparsers: argparse._SubParsersAction) -> None:
+    """`coldcert serve`: the web pages and JSON API on this machine."""
     p = subparsers.add_parser(
         "serve", help="run the calibration service (web pages + JSON API) on this machine"
     )
@@ -109,6 +115,9 @@ def add_commands(subparsers: argparse._SubParsersAction) -> None:
     )
     p.set_defaults(handler=_serve)
 
+
+def _add_work(subparsers: argparse._SubParsersAction) -> None:
+    """`coldcert work`: analysis workers without a web server."""
     p = subparsers.add_parser(
         "work",
         help="run analysis workers only (no web server), e.g. on another machine: with a broker "
@@ -133,6 +142,9 @@ def add_commands(subparsers: argparse._SubParsersAction) -> None:
     )
     p.set_defaults(handler=_work)
 
+
+def _add_add_admin(subparsers: argparse._SubParsersAction) -> None:
+    """`coldcert add-admin`: the first (or another) administrator."""
     p = subparsers.add_parser("add-admin", help="create an administrator account")
     _add_instance(p)
     p.add_argument("username")
@@ -144,12 +156,18 @@ def add_commands(subparsers: argparse._SubParsersAction) -> None:
     )
     p.set_defaults(handler=_add_admin)
 
+
+def _add_new_token(subparsers: argparse._SubParsersAction) -> None:
+    """`coldcert new-token`: an API token for a user."""
     p = subparsers.add_parser("new-token", help="create an API token for a user (shown once)")
     _add_instance(p)
     p.add_argument("username")
     p.add_argument("--label", default="")
     p.set_defaults(handler=_new_token)
 
+
+def _add_verify(subparsers: argparse._SubParsersAction) -> None:
+    """`coldcert verify`: one certificate, an exported file, or the whole archive."""
     p = subparsers.add_parser(
         "verify",
         help="check a certificate's signature, hash chain and raw files "
@@ -167,6 +185,9 @@ def add_commands(subparsers: argparse._SubParsersAction) -> None:
     _add_read_only(p)
     p.set_defaults(handler=_verify)
 
+
+def _add_reproduce(subparsers: argparse._SubParsersAction) -> None:
+    """`coldcert reproduce`: re-run an archived analysis and compare."""
     p = subparsers.add_parser(
         "reproduce",
         help="re-run an archived certificate's analysis from its archived raw data and compare "

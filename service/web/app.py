@@ -291,29 +291,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     if not app.config.get("SECRET_KEY"):
         app.config["SECRET_KEY"] = _secret_key(instance, read_only)
 
-    settings = worker_settings(app.config, instance)
-    storage = settings.open_storage(read_only=read_only)
-    storage.create_schema()
-    # Raw data a killed process left in temporary folders (an upload being checked, a fit).
-    storage.blobs.clean_scratch()
-    if read_only:
-        key = LabKey.load_for_reading(instance / "keys")
-    else:
-        key = LabKey.load_or_create(instance / "keys")
-    try:
-        trusted = [bytes.fromhex(h) for h in app.config.get("TRUSTED_PUBLIC_KEYS", ())]
-    except ValueError:
-        raise ValueError("TRUSTED_PUBLIC_KEYS must list Ed25519 public keys as hex") from None
-    archive = Archive(
-        storage,
-        key,
-        number_prefix=app.config["CERTIFICATE_PREFIX"],
-        trusted_public_keys=trusted,
-    )
-    settings.public_keys = [key.public_raw.hex(), *settings.public_keys]
-    services = Services(storage, archive, key, settings)
-    if app.config["BROKER_URL"]:
-        services.engine = EngineQueue(storage, settings, engine_settings(app.config))
+    services = _open_services(app.config, instance, read_only)
     app.extensions["coldcert"] = services
 
     from service.web import api, auth, history, pages, public
@@ -323,6 +301,44 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     app.register_blueprint(pages.bp)
     app.register_blueprint(history.bp)
     public.init_app(app)
+
+    _install_handlers(app, instance, read_only)
+    if app.config["START_WORKERS"] and not read_only:
+        services.start_workers(app.config["WORKERS"])
+        atexit.register(services.stop_workers)
+    return app
+
+
+def _open_services(config: Mapping[str, Any], instance: Path, read_only: bool) -> Services:
+    """Storage (schema migrated, scratch cleaned), the lab key, the archive and the queue."""
+    settings = worker_settings(config, instance)
+    storage = settings.open_storage(read_only=read_only)
+    storage.create_schema()
+    # Raw data a killed process left in temporary folders (an upload being checked, a fit).
+    storage.blobs.clean_scratch()
+    if read_only:
+        key = LabKey.load_for_reading(instance / "keys")
+    else:
+        key = LabKey.load_or_create(instance / "keys")
+    try:
+        trusted = [bytes.fromhex(h) for h in config.get("TRUSTED_PUBLIC_KEYS", ())]
+    except ValueError:
+        raise ValueError("TRUSTED_PUBLIC_KEYS must list Ed25519 public keys as hex") from None
+    archive = Archive(
+        storage,
+        key,
+        number_prefix=config["CERTIFICATE_PREFIX"],
+        trusted_public_keys=trusted,
+    )
+    settings.public_keys = [key.public_raw.hex(), *settings.public_keys]
+    services = Services(storage, archive, key, settings)
+    if config["BROKER_URL"]:
+        services.engine = EngineQueue(storage, settings, engine_settings(config))
+    return services
+
+
+def _install_handlers(app: Flask, instance: Path, read_only: bool) -> None:
+    """Error pages and JSON errors, security headers, and the read-only refusal."""
 
     @app.errorhandler(HTTPException)
     def _http_error(exc: HTTPException):
@@ -375,8 +391,3 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
                 return response
             return render_template("error.html", code=503, message=message), 503
         return None
-
-    if app.config["START_WORKERS"] and not read_only:
-        services.start_workers(app.config["WORKERS"])
-        atexit.register(services.stop_workers)
-    return app
