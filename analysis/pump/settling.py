@@ -516,21 +516,26 @@ def choose_discard(
     def evaluate(d: float) -> tuple[float, float, float, float, float]:
         weights, u = weights_and_u(d)
         sw = _stack_weights(rec, weights)
-        # The component that allows the largest residual bias sets the correction.
+        # The resolved fit that allows the largest residual bias sets the correction; an
+        # unresolved fit widens its uncertainty to its allowance but does not move its estimate.
         worst = None
         for c in used:
-            if c.resolved:
-                bs = residual_biases(rec, [c.fit, *c.replicates], d, sw)
-                b, ub = float(bs[0]), _jackknife_u(bs[1:])
-            else:
-                # Not resolved: no correction, an allowance as large as the worst τ allows.
-                b = 0.0
-                ub = 0.0
-                for _, reps in c.alternatives:
-                    ub = max(ub, _jackknife_u(residual_biases(rec, list(reps), d, sw)))
+            if not c.resolved:
+                continue
+            bs = residual_biases(rec, [c.fit, *c.replicates], d, sw)
+            b, ub = float(bs[0]), _jackknife_u(bs[1:])
             if worst is None or abs(b) + tq * ub > abs(worst[0]) + tq * worst[1]:
                 worst = (b, ub, c)
-        b, ub, c = worst
+        b, ub, c = worst if worst is not None else (0.0, 0.0, None)
+        for a in used:
+            if a.resolved:
+                continue
+            # Not resolved: τ is open, so every τ of the range is a hypothesis; the largest
+            # jackknife u over them is the allowance.
+            allowance = max(_jackknife_u(residual_biases(rec, list(reps), d, sw))
+                            for _, reps in a.alternatives)
+            if allowance > ub:
+                ub, c = allowance, a
         return (d, b, ub, u, c, math.hypot(u, ub))
 
     # Every candidate when there are few; else every k-th, then all between the best one's
