@@ -281,3 +281,44 @@ def test_service_warns_with_the_outlier_lines():
     f = _sweep_file(bias, g)
     work = fit_file(f, 1, QUICK, FullTunnellingShape(3))
     assert any(f"line {f.line_of_row(137)}" in w for w in work.warnings)
+
+
+def test_named_outliers_and_findings_reach_the_certificate_renderings():
+    """The record → render path: the outlier lines and each named finding of the residual checks
+    appear as warnings in the HTML page and in the PDF, next to that sweep's budget."""
+    import copy
+    import io
+    import json
+    import re
+    from pathlib import Path
+
+    from analysis.cbt.uncertainty import TypeBInputs
+    from service.calibrations.cbt import fit_file, sweep_result
+    from service.render.html import render_html
+    from service.render.pdf import render_pdf
+
+    pypdf = pytest.importorskip("pypdf")
+    bias, g, _ = noisy_exact(1.0, seed=4)
+    g[137] *= 1.25
+    g[290] *= 0.8
+    f = _sweep_file(bias, g)
+    work = fit_file(f, 1, QUICK, FullTunnellingShape(3))
+    entry, _ = sweep_result(work, TypeBInputs())
+    lines = entry["diagnostics"]["residual_checks"]["outlier_lines"]
+    assert sorted(lines) == sorted([f.line_of_row(137), f.line_of_row(290)])
+
+    example = Path(__file__).resolve().parents[1] / "example_runs" / "sensor-larkspur-certificate"
+    record = copy.deepcopy(json.loads((example / "certificate.json").read_text()))
+    record["job"] = "cbt_thermometry"
+    record["sections"].pop("sensor_calibration")
+    record["results"] = [entry]
+    html = render_html(record)
+    pdf = "".join(p.extract_text() for p in pypdf.PdfReader(io.BytesIO(render_pdf(record))).pages)
+    squash = lambda s: re.sub(r"\s+", "", s)  # noqa: E731 - PDF text breaks lines anywhere
+    warnings = entry["diagnostics"]["warnings"]
+    outlier_warning = next(w for w in warnings if w.startswith("outliers left out"))
+    for line in lines:
+        assert str(line) in outlier_warning
+    for w in warnings:  # every finding, the outlier lines among them
+        assert f"Warning: {w}" in html.replace("&#39;", "'").replace("&#34;", '"').replace("&amp;", "&")
+        assert squash(f"Warning: {w}") in squash(pdf)

@@ -521,7 +521,7 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
         buf.write("cycle,time_s,delta_current_A,off_weight\n")
         for j, (tj, dj, wj) in enumerate(zip(res.cycles.times, res.cycles.differences,
                                              res.cycles.weights, strict=True), start=1):
-            buf.write(f"{j},{tj!r},{dj!r},{wj!r}\n")
+            buf.write(f"{j},{float(tj)!r},{float(dj)!r},{float(wj)!r}\n")
         outcome.extra_files[f"cycles_{f.name}"] = buf.getvalue().encode("utf-8")
     if progress:
         progress(1.0, "done")
