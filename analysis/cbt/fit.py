@@ -36,6 +36,7 @@ from analysis.cbt.models import (
     numerical_fwhm,
 )
 from analysis.cbt.robust import (
+    HAC_SIGNIFICANT,
     MAX_OUTLIER_FRACTION,
     ResidualDiagnosis,
     choose_noise_model,
@@ -600,7 +601,9 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
         if t.significant:
             findings.append(f"{t.advice} (t = {t.t_statistic:.1f}; adding it would move T by "
                             f"{t.temperature_shift:.3g} K)")
-    if inflation > 1.0 + 1e-9:
+    # Named only when it is beyond its own sampling noise on white residuals (HAC_SIGNIFICANT), or
+    # rides on a non-white noise model: that is also when the budget carries it (uncertainty.py).
+    if inflation > 1.0 + 1e-9 and (noise.kind != "white" or inflation > HAC_SIGNIFICANT):
         findings.append(f"residuals remain correlated after the noise model (lag-1 {r1_after:.2f}): u(T) is "
                         f"inflated by {inflation:.2f} (Newey–West, lag {newey_west_lag(e_w.size)})")
     diagnosis = ResidualDiagnosis(

@@ -561,7 +561,7 @@ def cycles_csv(name: str, cycles) -> bytes:
     buf.write("cycle,time_s,delta_current_A,off_weight\n")
     for j, (tj, dj, wj) in enumerate(zip(cycles.times, cycles.differences,
                                          cycles.weights, strict=True), start=1):
-        buf.write(f"{j},{tj!r},{dj!r},{wj!r}\n")
+        buf.write(f"{j},{float(tj)!r},{float(dj)!r},{float(wj)!r}\n")
     return buf.getvalue().encode("utf-8")
 
 
