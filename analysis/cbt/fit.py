@@ -28,8 +28,8 @@ from analysis.cbt.models import (
     HALF_WIDTH_FACTOR,
     DipShape,
     SweepSetup,
-    depth_series,
     averaged_shape,
+    depth_series,
     dip_function,
     forward_conductance,
     higher_order_shape,
@@ -303,19 +303,21 @@ def make_log_posterior(shape: DipShape, data: SweepData, bias_window: tuple[floa
     u_lo, u_hi = bounds["u"]
     likelihood = ProfiledLikelihood(shape, data)
 
+    lower = np.array([0.0, u_lo, lo])
+    upper = np.array([100.0, u_hi, hi])
+
     def log_prob(theta: np.ndarray) -> np.ndarray:
-        theta = np.array(np.atleast_2d(theta), dtype=float)
+        theta = np.array(theta, dtype=float, ndmin=2)
         jac = np.zeros(theta.shape[0])
         if log_temperature:
+            jac = theta[:, 0].copy()
             with np.errstate(over="ignore"):
-                jac = theta[:, 0].copy()
-                theta[:, 0] = np.exp(theta[:, 0])
-        T, u, v0 = theta[:, 0], theta[:, 1], theta[:, 2]
-        ok = (T > 0) & (T <= 100.0) & (u >= u_lo) & (u <= u_hi)
-        ok &= (v0 >= lo) & (v0 <= hi)
-        out = np.full(theta.shape[0], -np.inf)
+                theta[:, 0] = np.exp(jac)
+        # T > 0 (strict), every parameter inside its box; NaN fails every comparison.
+        ok = ((theta >= lower) & (theta <= upper)).all(axis=1) & (theta[:, 0] > 0.0)
         if ok.all():
             return likelihood(theta) + jac
+        out = np.full(theta.shape[0], -np.inf)
         if ok.any():
             out[ok] = likelihood(theta[ok]) + jac[ok]
         return out

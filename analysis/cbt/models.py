@@ -326,8 +326,11 @@ def averaged_shape(
         alpha_max = a * float(np.max(scale))
         n_nodes = lockin_nodes if lockin_nodes is not None else lockin_nodes_for(alpha_max)
         t, w = chebyshev_u_nodes(n_nodes)
-        xs = (centred[..., None] + a * t) * scale[..., None]
-        return shape(xs, u[..., None]) @ w
+        # Nodes on a new first axis, so that each node's biases stay contiguous for the shape.
+        x0 = centred * scale
+        offsets = (a * t).reshape((-1,) + (1,) * max(np.ndim(centred), scale.ndim)) * scale
+        s = shape(x0 + offsets, u)
+        return (w @ s.reshape(n_nodes, -1)).reshape(s.shape[1:])
     return shape(centred * scale, u)
 
 
