@@ -20,7 +20,7 @@ from dataclasses import dataclass, field
 from decimal import ROUND_CEILING, ROUND_HALF_EVEN, Decimal
 
 import numpy as np
-from scipy import stats
+from scipy import special
 
 #: Divisors that turn a half-width a into a standard uncertainty (GUM 4.3.7, 4.3.9, 4.3.10 and
 #: the arcsine (U-shaped) case of JCGM 101 6.4.6).
@@ -113,11 +113,11 @@ def coverage_factor(degrees_of_freedom: float, coverage_probability: float = 0.9
         raise ValueError("coverage probability must lie strictly between 0 and 1")
     tail = 0.5 * (1.0 + coverage_probability)
     if math.isinf(degrees_of_freedom):
-        return float(stats.norm.ppf(tail))
+        return float(special.ndtri(tail))  # the normal quantile
     nu = math.floor(degrees_of_freedom)
     if nu < 1:
         raise ValueError(f"degrees of freedom must be at least 1, got {degrees_of_freedom}")
-    return float(stats.t.ppf(tail, nu))
+    return float(special.stdtrit(nu, tail))  # Student t quantile
 
 
 def degrees_of_freedom_from_reliability(relative_uncertainty_of_u: float) -> float:

@@ -35,7 +35,7 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import stats
+from scipy import special
 
 from analysis import budget as gum
 from analysis.pump import settling as S
@@ -374,7 +374,7 @@ def type_a_autocorrelated(
     if h >= first:
         lags = np.arange(first, h + 1)
         q = n * (n + 2) * float(np.sum(rho[lags] ** 2 / (n - lags)))
-        p = float(stats.chi2.sf(q, lags.size))
+        p = float(special.chdtrc(lags.size, q))
     else:
         p = math.nan
     white = not (p < significance)
@@ -515,8 +515,9 @@ def interval_end_numerical_u(mc: gum.MonteCarloResult) -> float:
     the Gaussian of the Monte Carlo standard uncertainty u, g(y_p) = φ(z_p)/u. Used to tell whether
     trial count resolves the validation tolerance."""
     p = (1.0 - mc.coverage_probability) / 2.0
-    z = stats.norm.ppf(p)
-    return mc.standard_uncertainty * math.sqrt(p * (1 - p) / mc.draws) / stats.norm.pdf(z)
+    z = float(special.ndtri(p))
+    density = math.exp(-0.5 * z * z) / math.sqrt(2.0 * math.pi)  # standard normal φ(z)
+    return mc.standard_uncertainty * math.sqrt(p * (1 - p) / mc.draws) / density
 
 
 @dataclass(frozen=True)

@@ -11,7 +11,7 @@ from __future__ import annotations
 from collections.abc import Callable
 from dataclasses import dataclass, replace
 
-from scipy import stats
+from scipy import special
 
 from analysis.cbt.choice import ModelChoice, fit_sweep_chosen
 from analysis.cbt.fit import (
@@ -391,7 +391,7 @@ def _global_fit(works, outcome: CalibrationOutcome, progress: Progress | None) -
         outcome.deviations.append(f"global fit not applied ({exc}); temperatures are from independent fits")
         return [None] * len(works)
     outcome.sections["global_fit"] = global_section(g, works)
-    p_val = float(stats.chi2.sf(g.consistency_chi2, g.consistency_dof))
+    p_val = float(special.chdtrc(g.consistency_dof, g.consistency_chi2))
     if p_val < 1e-3:
         outcome.deviations.append(
             f"the independent charging energies disagree (chi2 = {g.consistency_chi2:.1f} for "

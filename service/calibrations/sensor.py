@@ -23,7 +23,7 @@ from datetime import datetime
 from pathlib import Path
 
 import numpy as np
-from scipy import stats
+from scipy import special
 
 from analysis import scales, sensors
 from service.calibrations import cbt as thermometry
@@ -514,7 +514,7 @@ def _fit_curve(data, settings: SensorSettings):
     except sensors.CalibrationFitError as exc:
         raise CertificationRefused(f"calibration curve: {exc}") from None
     if fit.degrees_of_freedom > 0:
-        p_value = float(stats.chi2.sf(fit.chi_squared, fit.degrees_of_freedom))
+        p_value = float(special.chdtrc(fit.degrees_of_freedom, fit.chi_squared))
         if p_value < REFUSE_CHI2_P_VALUE:
             # Enlarging by the Birge ratio covers random excess scatter, not a curve that cannot
             # follow the points: that needs more points, a fixed higher degree or a look at the
