@@ -588,6 +588,22 @@ class PrecisionResult:
     chain: AmmeterChain
 
 
+def _samplers(type_a: TypeA, ch: AmmeterChain, settling_bias: ChainInput | None) -> dict:
+    """The Monte Carlo draw of each input of :func:`deviation_ppm_model` (JCGM 101 6.4)."""
+    ta = ChainInput(type_a.mean, type_a.standard_uncertainty, "t", type_a.degrees_of_freedom)
+    samplers = {
+        "indicated": _sampler(ta),
+        "gain_correction": _sampler(ch.gain_correction),
+        "gain_drift": _sampler(ch.gain_drift),
+        "voltmeter_correction": _sampler(ch.voltmeter_correction),
+        "frequency_correction": _sampler(ch.frequency_correction),
+        "leakage": _sampler(ch.leakage_current),
+    }
+    if settling_bias is not None:
+        samplers["settling_bias"] = _sampler(settling_bias)
+    return samplers
+
+
 def _chain_row(quantity: str, x: ChainInput, unit: str, sensitivity: float,
                sensitivity_unit: str) -> gum.BudgetRow:
     """A Type B row of the budget for one input of the measurement equation."""
@@ -662,22 +678,11 @@ def precision_budget(
     notes.extend(type_a.notes)
     budget = gum.combine("(I − n·e·f)/(n·e·f)", "ppm", d, rows,
                          coverage_probability=coverage_probability, notes=notes)
-    ta = ChainInput(type_a.mean, type_a.standard_uncertainty, "t", type_a.degrees_of_freedom)
-    samplers = {
-        "indicated": _sampler(ta),
-        "gain_correction": _sampler(ch.gain_correction),
-        "gain_drift": _sampler(ch.gain_drift),
-        "voltmeter_correction": _sampler(ch.voltmeter_correction),
-        "frequency_correction": _sampler(ch.frequency_correction),
-        "leakage": _sampler(ch.leakage_current),
-    }
-    if settling_bias is not None:
-        samplers["settling_bias"] = _sampler(settling_bias)
-
     uc = budget.combined_standard_uncertainty
     tol = validation_tolerance(uc) if uc > 0 else None
-    mc = gum.monte_carlo(model, samplers, seed, coverage_probability, draws=monte_carlo_draws,
-                         tolerance=tol, batch=100_000, max_draws=5_000_000)
+    mc = gum.monte_carlo(model, _samplers(type_a, ch, settling_bias), seed, coverage_probability,
+                         draws=monte_carlo_draws, tolerance=tol, batch=100_000,
+                         max_draws=5_000_000)
     return PrecisionResult(d, current, i0, budget, validate_with_monte_carlo(budget, mc), type_a, ch)
 
 
