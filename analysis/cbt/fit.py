@@ -707,6 +707,14 @@ def _cause_tests(shape: DipShape, data: SweepData, ls: dict):
 
 def _structure_message(shape: DipShape, data: SweepData, ls: dict, noise, r1: float) -> str:
     """Why a sweep whose residuals are structure is refused, with the likeliest named cause."""
+    u_ls = float(ls["theta"][1])
+    if u_ls > shape.max_u:
+        # Beyond the model's validated range the misfit is the model's own: say that first.
+        return (f"the residuals are smooth structure, not noise (lag-1 correlation {r1:.2f}): the "
+                f"least-squares u = ΔE/k_BT = {u_ls:.2f} lies beyond the validated range of the "
+                f"{shape.name} model (u ≤ {shape.max_u:g}), which does not describe this sweep, so "
+                "no temperature is certified from it; a model validated at this u is needed, or "
+                "a warmer sweep")
     tests = sorted(_cause_tests(shape, data, ls)[0], key=lambda t: -abs(t.t_statistic))
     cause = (f"likely cause ({tests[0].cause}, t = {tests[0].t_statistic:.1f} under white noise): {tests[0].advice}"
              if tests and tests[0].significant else "no named cause fits; check the model choice and the set-up")
