@@ -94,7 +94,7 @@ def add_commands(subparsers: argparse._SubParsersAction) -> None:
         default=None,
         metavar="ADDRESS",
         help="address of a reverse proxy in front of this server whose X-Forwarded-For/-Proto/"
-        "-Host headers are to be trusted (e.g. 127.0.0.1)",
+        "-Host headers are to be trusted (e.g. 127.0.0.1); default: the TRUSTED_PROXY setting",
     )
     p.add_argument(
         "--development-server",
@@ -180,13 +180,18 @@ def add_commands(subparsers: argparse._SubParsersAction) -> None:
 
 def _serve(args: argparse.Namespace) -> int:
     options = {"fast": True} if args.quick else {}
-    app = _app(
-        args,
-        START_WORKERS=True,
-        WORKERS=args.workers,
-        ANALYSIS_OPTIONS=options,
-        READ_ONLY=args.read_only,
-    )
+    proxy = {"TRUSTED_PROXY": args.proxy} if args.proxy else {}
+    try:
+        app = _app(
+            args,
+            START_WORKERS=True,
+            WORKERS=args.workers,
+            ANALYSIS_OPTIONS=options,
+            READ_ONLY=args.read_only,
+            **proxy,
+        )
+    except ValueError as exc:
+        raise CommandError(str(exc)) from None
     services = app.extensions["coldcert"]
     print(f"coldcert: instance {app.instance_path}", file=sys.stderr)
     print(f"coldcert: lab public key {services.key.key_id}", file=sys.stderr)
@@ -210,7 +215,8 @@ def _serve(args: argparse.Namespace) -> int:
         else:
             from service.web.server import production_server
 
-            production_server(app, args.host, args.port, args.threads, args.proxy).run()
+            proxy_address = app.config.get("TRUSTED_PROXY")
+            production_server(app, args.host, args.port, args.threads, proxy_address).run()
     finally:
         services.stop_workers()
     return 0

@@ -49,6 +49,9 @@ DEFAULTS: dict[str, Any] = {
     "BROKER_URL": None,
     # Distributed queue: seconds a job may run before it is stopped and failed.
     "JOB_TIME_LIMIT": 3600,
+    # Distributed queue: seconds after the time limit before a fit that does not stop when asked
+    # has its process ended (the job is then failed at once, not left "running").
+    "JOB_STOP_GRACE": 30,
     # Distributed queue: seconds before Redis re-delivers a message whose worker vanished;
     # None = JOB_TIME_LIMIT + 330 s. Must exceed the longest job.
     "BROKER_VISIBILITY_TIMEOUT": None,
@@ -75,8 +78,14 @@ DEFAULTS: dict[str, Any] = {
     # The laboratory's copy of the DCC 3.3.0 dcc.xsd; when set (here or by COLDCERT_DCC_SCHEMA),
     # every DCC rendering is validated against it before it is served.
     "DCC_SCHEMA": None,
-    # Reverse proxies in front of the service whose X-Forwarded-For/-Proto/-Host headers are
-    # believed (0: none); with TLS ending at the proxy, 1 lets cookies be marked Secure.
+    # The reverse proxy in front of `coldcert serve` (its address, e.g. "127.0.0.1"): the server
+    # believes its X-Forwarded-For/-Proto/-Host headers and removes them from anyone else.
+    # `coldcert serve --proxy ADDRESS` sets it too. With TLS ending at the proxy, cookies are
+    # then marked Secure.
+    "TRUSTED_PROXY": None,
+    # Only for another WSGI server than `coldcert serve` (which checks the proxy's address):
+    # how many proxies' X-Forwarded-* headers to believe, whoever sent them (0: none). Setting
+    # both this and TRUSTED_PROXY is refused: the headers would be applied twice.
     "TRUSTED_PROXIES": 0,
     # Open the instance for reading only (an audit copy); also chosen when the folder or the
     # database file cannot be written. Changes answer 503; nothing is created.
@@ -88,7 +97,7 @@ DEFAULTS: dict[str, Any] = {
 
 class _SessionInterface(SecureCookieSessionInterface):
     """Session cookies carry ``Secure`` whenever the request came over TLS (directly, or through
-    a reverse proxy counted in ``TRUSTED_PROXIES``), so a cookie set over https is never sent in clear."""
+    the reverse proxy of ``TRUSTED_PROXY``), so a cookie set over https is never sent in clear."""
 
     def get_cookie_secure(self, app: Flask) -> bool:
         return bool(super().get_cookie_secure(app) or (has_request_context() and request.is_secure))
@@ -192,6 +201,7 @@ def engine_settings(config: Mapping[str, Any]) -> EngineSettings:
     return EngineSettings(
         broker_url=str(config["BROKER_URL"]),
         time_limit=float(config.get("JOB_TIME_LIMIT") or 3600),
+        hard_grace=float(config.get("JOB_STOP_GRACE") or 30),
         visibility_timeout=float(timeout) if timeout is not None else None,
     )
 
@@ -278,6 +288,11 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     instance = Path(app.instance_path)
     app.config.update(load_config(instance, config))
     proxies = int(app.config.get("TRUSTED_PROXIES") or 0)
+    if proxies > 0 and app.config.get("TRUSTED_PROXY"):
+        raise ValueError(
+            "configuration: TRUSTED_PROXY (the proxy's address, for `coldcert serve`) and "
+            "TRUSTED_PROXIES (a count, for another WSGI server) are both set; set only one"
+        )
     if proxies > 0:
         from werkzeug.middleware.proxy_fix import ProxyFix
 
