@@ -114,7 +114,7 @@ class GridDip:
 
     def _u_cell(self, u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         s = (u - self.u_lo) * (1.0 / self.u_step)
-        iu = np.clip(s.astype(np.intp), 0, self._nu - 1)
+        iu = np.minimum(np.maximum(s.astype(np.intp), 0), self._nu - 1)
         return iu, s - iu
 
     def _tail(self, ax: np.ndarray, reduced: np.ndarray) -> np.ndarray:

@@ -198,6 +198,12 @@ def _decorrelate(data: SweepData, y: np.ndarray) -> np.ndarray:
     return y
 
 
+#: Parameter sets are evaluated in batches of about this many bias points (times the lock-in
+#: nodes): a few hundred kB per intermediate array stays in cache, where one batch of 600
+#: posterior samples at once ran 4.6x slower per point (measured on the 2-core machine).
+CHUNK_POINTS = 1 << 14
+
+
 class ProfiledLikelihood:
     """The likelihood of one sweep with its linear amplitudes profiled out, for many parameter sets.
 
@@ -234,6 +240,13 @@ class ProfiledLikelihood:
 
     def profile(self, theta: np.ndarray):
         """Least-squares amplitudes (batch, k), RSS, log|AᵀA| and AᵀA (batch, k, k) per row of theta."""
+        rows = max(1, CHUNK_POINTS // self.points)
+        if theta.shape[0] > rows:
+            parts = [self._profile(theta[i:i + rows]) for i in range(0, theta.shape[0], rows)]
+            return tuple(np.concatenate(p) for p in zip(*parts, strict=True))
+        return self._profile(theta)
+
+    def _profile(self, theta: np.ndarray):
         cols = self.columns(theta)
         y = self.y
         if len(cols) == 1:
