@@ -84,6 +84,7 @@ def test_iterative_and_direct_solves_agree(monkeypatch):
     # The Jacobi-GMRES path and the sparse LU must give the same G and current on one window
     # (consistency of two linear solvers, common practice, no source).
     array = ArrayDescription(4, resistance_ratios=(1.1, 0.9, 1.05, 0.95), c0_ratio=0.1)
+    monkeypatch.setattr(tunnelling, "DIRECT_SOLVE_MAX_STATES_BY_ISLANDS", {})
     monkeypatch.setattr(tunnelling, "DIRECT_SOLVE_MAX_STATES", 10**6)
     direct = solve_master_equation(array, 3.3, 1.2)
     assert direct.solver == "LU"
@@ -95,6 +96,7 @@ def test_iterative_and_direct_solves_agree(monkeypatch):
 
 
 def test_warm_started_sweep_equals_cold_solves(monkeypatch):
+    monkeypatch.setattr(tunnelling, "DIRECT_SOLVE_MAX_STATES_BY_ISLANDS", {})
     monkeypatch.setattr(tunnelling, "DIRECT_SOLVE_MAX_STATES", 10)
     array = ArrayDescription(4)
     xs = np.array([0.0, 0.7, 1.4, 3.0])
@@ -285,3 +287,4 @@ def test_monte_carlo_is_reproducible_and_gives_conductance():
              - solve_master_equation(array, -h, 1.0).current) / (2 * h)
     assert abs(g - exact) < 4 * err
     assert err < 2e-3
+
