@@ -2,10 +2,14 @@
 
     .venv/bin/python benchmarks/bench_cbt_models.py [--per-u K]
     .venv/bin/python benchmarks/bench_cbt_models.py --strong [--per-u 20] [--n 3]
+    .venv/bin/python benchmarks/bench_cbt_models.py --stray [--per-u 20] [--n 3]
 
 ``--strong`` runs the recovery campaign in strong blockade instead (u = 3.5, 4, 4.5, within the
 full model's validated u <= 5 for N <= 6), reporting per u the fraction of fits whose expanded
 interval U (the certificate's GUM budget, with the model row) covers the true T, besides the normalised bias.
+
+``--stray`` runs it with stray capacitance C_0/C = 0.1 and 0.2 (u = 1, 3, 4.5), the sweeps
+simulated with C_0 and fitted with the ratio given, as a manifest's ``ground_capacitance_ratio``.
 
 Sweeps are simulated with the exact orthodox master equation (analysis.cbt.tunnelling, an
 independent solver) for a 3-junction chain at u = 0.05 … 3, fitted through the same path as
@@ -31,27 +35,30 @@ from analysis.constants import BOLTZMANN, ELEMENTARY_CHARGE
 _CURVES: dict = {}
 
 
-def exact_sweep(n, T, u, seed, points=401, noise=2e-4, span=None):
+def exact_sweep(n, T, u, seed, points=401, noise=2e-4, span=None, c0_ratio=0.0):
     span = span or (8.0 + 2.5 * u) * 2.0
     x = np.linspace(-span, span, points)
-    key = (n, u, points, span)
+    key = (n, u, points, span, c0_ratio)
     if key not in _CURVES:  # the noiseless exact curve is shared by all seeds
-        _CURVES[key] = tunnelling.conductance(x, u, tunnelling.ArrayDescription(n))
+        _CURVES[key] = tunnelling.conductance(
+            x, u, tunnelling.ArrayDescription(n, c0_ratio=c0_ratio))
     g = _CURVES[key]
     rng = np.random.default_rng(seed)
     bias = x * n * BOLTZMANN * T / ELEMENTARY_CHARGE
     return SweepData(bias, 2e-6 * (g + noise * rng.standard_normal(points)), SweepSetup(n))
 
 
-def strong_campaign(n: int, T: float, per_u: int, settings: FitSettings) -> None:
-    print(f"strong-blockade recovery on exact master-equation sweeps, N = {n}, {per_u} seeds per u")
-    for u in (3.5, 4.0, 4.5):
+def strong_campaign(n: int, T: float, per_u: int, settings: FitSettings, c0_ratio: float = 0.0,
+                    us: tuple[float, ...] = (3.5, 4.0, 4.5)) -> None:
+    stray = f", C_0/C = {c0_ratio:g}" if c0_ratio else ""
+    print(f"recovery on exact master-equation sweeps, N = {n}{stray}, {per_u} seeds per u")
+    for u in us:
         z, covered, names = [], 0, set()
         start = time.perf_counter()
         for s in range(per_u):
-            data = exact_sweep(n, T, u, seed=1000 * s + int(100 * u))
-            fit, choice = fit_sweep_chosen(data, seed=s, settings=settings)
-            names.add(choice.shape.name.split(",")[0])
+            data = exact_sweep(n, T, u, seed=1000 * s + int(100 * u), c0_ratio=c0_ratio)
+            fit, choice = fit_sweep_chosen(data, seed=s, c0_ratio=c0_ratio, settings=settings)
+            names.add(choice.shape.name)
             z.append((fit.temperature - T) / fit.temperature_std)
             # The certificate's T and expanded uncertainty U (GUM budget with the model row).
             budget, _ = temperature_budget(fit, choice.shape, data.setup, TypeBInputs(), data=data)
@@ -66,12 +73,18 @@ def main() -> None:
     ap = argparse.ArgumentParser()
     ap.add_argument("--per-u", type=int, default=6)
     ap.add_argument("--strong", action="store_true", help="u = 3.5-4.5 campaign only")
+    ap.add_argument("--stray", action="store_true",
+                    help="C_0/C = 0.1, 0.2 campaign (u = 1, 3, 4.5) only")
     ap.add_argument("--n", type=int, default=3, help="junctions in the simulated chain")
     args = ap.parse_args()
     n, T = args.n, 0.02
     settings = FitSettings()
     if args.strong:
         strong_campaign(n, T, args.per_u, settings)
+        return
+    if args.stray:
+        for c0 in (0.1, 0.2):
+            strong_campaign(n, T, args.per_u, settings, c0_ratio=c0, us=(1.0, 3.0, 4.5))
         return
     print(f"recovery on exact master-equation sweeps, N = {n}, {args.per_u} seeds per u")
     pooled = []

@@ -20,6 +20,14 @@ the gap in three steps, all precomputed by the committed script
    and checked by an orthodox Monte Carlo of N = 10–30 chains (docs/models.md); validated only
    up to u = :data:`LONG_ARRAY_MAX_U`, beyond which the C_0 = 0 dip does not converge in N.
 
+4. **Stray capacitance** C_0 > 0 (N = 2, 3, 4, 0 < C_0/C ≤ :data:`MAX_C0_RATIO`). Exact tables at
+   C_0/C = 0.05–0.2 (``stray_capacitance.npz``) enter as the difference of the reduced dip from
+   the scaled C_0 = 0 dip r D_N(x, r u), r = :func:`first_order_depth_factor` (which is the whole
+   answer for N = 2, where C_0 only adds to the island's total capacitance); the difference is
+   interpolated by a bicubic spline in (x, u) and by the polynomial in C_0/C through C_0 = 0 and
+   the tables (C_0/C = 0.05, 0.1, 0.15, 0.2).
+   u keeps its nominal meaning ΔE/(k_B T) with ΔE = ((N − 1)/N) e²/C.
+
 Its error (max |ΔG/G_T| over the dip, per u band) was *measured* against exact solutions not used
 to build the tables, and against the Monte Carlo; the figures are in :data:`MEASURED_ERROR`, and
 the test suite checks them against further held-out points.
@@ -36,11 +44,17 @@ import numpy as np
 from scipy.interpolate import RectBivariateSpline
 
 from analysis.cbt.dip_grid import GridDip
+from analysis.cbt.tunnelling import ArrayDescription
 
 logger = logging.getLogger(__name__)
 
 TABLE_FILE = "short_arrays.npz"
 LONG_TABLE_FILE = "long_arrays.npz"
+STRAY_TABLE_FILE = "stray_capacitance.npz"
+
+#: Chain lengths with exact stray-capacitance tables, and the largest C_0/C they cover.
+STRAY_LENGTHS = (2, 3, 4)
+MAX_C0_RATIO = 0.2
 
 #: Chain lengths with exact tables (N = 2–4 on the fine grid, 5 and 6 on the coarse one).
 EXACT_LENGTHS = (2, 3, 4, 5, 6)
@@ -85,7 +99,10 @@ LONG_ARRAY_LAW = "inverse_n"
 #: 4.75, each band taking the larger of the bound points around it, doubled); ``long_array`` the
 #: residual of LONG_ARRAY_LAW against exact N = 7, 8 per unit of long_array_length (<= 4.3e-6 at
 #: u = 2, x = 2.75; 3.9e-7 at u = 1.5, x = 0; make_tables.py --long-check), used only up to
-#: LONG_ARRAY_MAX_U. Checked
+#: LONG_ARRAY_MAX_U; ``stray_capacitance`` the interpolation error of the C_0 > 0 tables in x, u
+#: and C_0/C, added for C_0 > 0 (make_tables.py --stray-bound: 43 off-grid points at N = 3, 4,
+#: C_0/C = 0.03, 0.1, 0.125, 0.2; <= 1.1e-7 for u <= 3.75, 4.4e-7 at u = 4.9, each band doubled,
+#: empty bands taking the larger neighbour). Checked
 #: by tests/test_full_model.py against held-out points that set none of these numbers.
 MEASURED_ERROR: dict[str, tuple[float, ...]] = {
     "u_band_upper": (0.5, 1.0, 1.5, 2.0, 2.5, 3.0, 3.5, 4.0, 4.5, 5.0),
@@ -94,6 +111,8 @@ MEASURED_ERROR: dict[str, tuple[float, ...]] = {
     "extrapolation_n5": (5e-7, 3.5e-6, 1e-5, 2e-5, 1e-4, 3e-4, 3e-4, 3e-4, 3e-4, 3e-4),
     "exact_long": (0.0, 0.0, 0.0, 1.2e-6, 1.2e-6, 6e-6, 6e-6, 6e-6, 4.3e-5, 4.3e-5),
     "long_array": (0.0, 0.0, 0.0, 4.3e-6, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0),
+    "stray_capacitance": (1.6e-7, 2.2e-7, 1.7e-7, 4.4e-8, 3e-8, 1.2e-7, 1.2e-7, 1.4e-7, 8.8e-7,
+                          8.8e-7),
 }
 
 #: Safety factor on a measured residual when it is scaled to longer chains.
@@ -111,6 +130,13 @@ class FullModelRangeError(ValueError):
 @lru_cache(maxsize=1)
 def _load_tables() -> dict[str, np.ndarray]:
     ref = resources.files("analysis.cbt.tables").joinpath(TABLE_FILE)
+    with resources.as_file(ref) as path, np.load(path) as data:
+        return {key: np.array(data[key]) for key in data.files}
+
+
+@lru_cache(maxsize=1)
+def _load_stray_tables() -> dict[str, np.ndarray]:
+    ref = resources.files("analysis.cbt.tables").joinpath(STRAY_TABLE_FILE)
     with resources.as_file(ref) as path, np.load(path) as data:
         return {key: np.array(data[key]) for key in data.files}
 
@@ -213,6 +239,65 @@ def exact_long_dips() -> dict[int, np.ndarray]:
     return out
 
 
+def first_order_depth_factor(n_junctions: int, c0_ratio: float) -> float:
+    """r_N(C_0/C): the first-order dip depth with stray capacitance over its C_0 = 0 value.
+
+    To first order in u the depth is set by the junction average of the charging bracket
+    (K_aa + K_bb − 2K_ab)/2 (docs/physics.md §1.3, §1.4; Pekola et al., PRL 73, 2903 (1994)
+    for the first-order dip), which is (N − 1)/(2N) e²/C for C_0 = 0.
+    """
+    array = ArrayDescription(int(n_junctions), c0_ratio=float(c0_ratio))
+    n = int(n_junctions)
+    return float(array.junction_charging().mean() / ((n - 1) / (2.0 * n)))
+
+
+@lru_cache(maxsize=16)
+def stray_capacitance_dip(n_junctions: int, c0_ratio: float) -> np.ndarray:
+    """D_N(x, u; C_0/C) on the short tables' grid (module docstring, step 4).
+
+    D = r D_N(x, r u; 0) + Δ(x, u; C_0/C), Δ from the exact tables at C_0/C = 0.1 and 0.2 by a
+    bicubic spline in (x, u) (Δ = 0 at u = 0, where every chain has the scaled first-order dip),
+    continued beyond the last solved x of a column in proportion to the scaled dip, and
+    interpolated in C_0/C by the polynomial through Δ = 0 at C_0 = 0 and the tables.
+    """
+    n = int(n_junctions)
+    tables = _load_tables()
+    stray = _load_stray_tables()
+    x_fine, u_fine = tables["x_nodes"], tables["u_nodes"]
+    # D_N(x, u; 0) from the exact table (mirrored nodes: even in x); r u <= u stays inside it.
+    zero = dip_spline(x_fine, u_fine, tables[f"dip_{n}"])
+    x_c, u_c = stray["x_nodes"], stray["u_nodes"]
+    xg, ug = np.meshgrid(x_c, u_c, indexing="ij")
+    xf, uf = np.meshgrid(x_fine, u_fine, indexing="ij")
+    u_clipped = np.minimum(uf, u_c[-1])  # above the last node (u = 5 < 5.2) Δ is held, not extrapolated
+    nodes = [float(c) for c in stray["c0_ratios"]]
+    deltas = []
+    for k, c_k in enumerate(nodes):
+        r_k = first_order_depth_factor(n, c_k)
+        delta = (1.0 - stray[f"conductance_{n}"][k]) / ug - r_k * zero.ev(xg, r_k * ug)
+        for j in range(u_c.size):
+            solved = np.isfinite(delta[:, j])
+            last = int(np.nonzero(solved)[0][-1])
+            scaled = zero.ev(x_c[last:], np.full(x_c.size - last, r_k * u_c[j]))
+            delta[last + 1 :, j] = delta[last, j] * scaled[1:] / scaled[0]
+        u_all = np.concatenate(([0.0], u_c))
+        delta_all = np.concatenate((np.zeros((x_c.size, 1)), delta), axis=1)
+        spline = dip_spline(x_c, u_all, delta_all, degree=3)
+        inside = xf <= x_c[-1]
+        delta_fine = np.zeros_like(xf)
+        delta_fine[inside] = spline.ev(xf[inside], u_clipped[inside])
+        deltas.append(delta_fine)
+    # Lagrange polynomial in C_0/C through Δ = 0 at C_0 = 0 and the tables.
+    c = float(c0_ratio)
+    knots = [0.0, *nodes]
+    delta_c = np.zeros_like(xf)
+    for k, c_k in enumerate(nodes):
+        weight = float(np.prod([(c - c_j) / (c_k - c_j) for c_j in knots if c_j != c_k]))
+        delta_c += weight * deltas[k]
+    r = first_order_depth_factor(n, c)
+    return r * zero.ev(xf, r * uf) + delta_c
+
+
 def _table_dip(n_junctions: int) -> np.ndarray:
     """D_N on the short tables' grid: exact (N ≤ 6) or continued (N > 6)."""
     tables = _load_tables()
@@ -268,9 +353,11 @@ class FullTunnellingShape:
     for arrays), solved exactly for N = 2–6 and continued to longer chains (module docstring).
 
     Validated for 0 ≤ u ≤ :data:`MAX_U` (= ``max_u``; refused outside with
-    :class:`FullModelRangeError`, and the fit reads ``max_u``). ``c0_ratio``
-    (C_0/C) other than 0 is refused: no tables with stray capacitance are shipped (the exact
-    solver :mod:`analysis.cbt.tunnelling` handles C_0 for short chains).
+    :class:`FullModelRangeError`, and the fit reads ``max_u``). ``c0_ratio`` (C_0/C, island to
+    ground over junction capacitance) is taken for N = 2, 3, 4 up to :data:`MAX_C0_RATIO` from the
+    exact stray-capacitance tables (module docstring, step 4) and refused elsewhere, where no
+    validated table exists (the exact solver :mod:`analysis.cbt.tunnelling` handles any C_0 for
+    short chains); u stays ΔE/(k_B T) with the nominal ΔE = ((N − 1)/N) e²/C.
     """
 
     n_junctions: int
@@ -286,14 +373,20 @@ class FullTunnellingShape:
             raise FullModelRangeError(
                 f"n_junctions must be an integer >= 2; got {self.n_junctions!r}"
             )
-        if self.c0_ratio != 0.0:
+        c0 = float(self.c0_ratio)
+        if c0 != 0.0 and not (0.0 < c0 <= MAX_C0_RATIO
+                              and int(self.n_junctions) in STRAY_LENGTHS):
             raise FullModelRangeError(
-                f"c0_ratio = {self.c0_ratio!r}: the full-model tables are for C_0 = 0 only; fit an "
-                "effective ΔE (docs/physics.md §1.4) or solve short chains with "
-                "analysis.cbt.tunnelling.ArrayDescription(c0_ratio=...)"
+                f"c0_ratio = {self.c0_ratio!r} for N = {self.n_junctions}: the full model has "
+                f"validated stray-capacitance tables only for N = 2-4 and 0 <= C_0/C <= "
+                f"{MAX_C0_RATIO} (docs/models.md); fit an effective ΔE (docs/physics.md §1.4) or "
+                "solve short chains with analysis.cbt.tunnelling.ArrayDescription(c0_ratio=...)"
             )
         tables = _load_tables()
-        dip = _table_dip(int(self.n_junctions))
+        if c0 != 0.0:
+            dip = stray_capacitance_dip(int(self.n_junctions), c0)
+        else:
+            dip = _table_dip(int(self.n_junctions))
         # Not mirrored: the fast grid (analysis.cbt.dip_grid) reproduces this spline to rounding
         # because its knots lie on the grid; the cost is the measured 1.6e-7 near x = 0.1 that
         # MEASURED_ERROR["interpolation_short"] carries.
@@ -301,8 +394,10 @@ class FullTunnellingShape:
         object.__setattr__(self, "_spline", spline)
         if self.n_junctions > max(EXACT_LENGTHS):
             object.__setattr__(self, "max_u", LONG_ARRAY_MAX_U)
+        stray = f", C_0/C = {c0:g}" if c0 else ""
         object.__setattr__(
-            self, "name", f"full orthodox tunnelling, N = {self.n_junctions} (master equation)"
+            self, "name",
+            f"full orthodox tunnelling, N = {self.n_junctions}{stray} (master equation)"
         )
         # Evaluation path: the reference above, sampled once into a cheap quintic grid over the
         # whole tabulated u range (analysis.cbt.dip_grid); its own error is measured there.
@@ -361,7 +456,8 @@ class FullTunnellingShape:
     def model_error(self, u: float | np.ndarray) -> float:
         """Bound on max |ΔG/G_T| over the dip at this u (measured; see :data:`MEASURED_ERROR`).
 
-        N ≤ 4: the interpolation error of the exact table. N ≥ 5: that of the N = 4 table, plus
+        N ≤ 4: the interpolation error of the exact table, plus for C_0 > 0 the measured error of
+        the stray-capacitance tables. N ≥ 5: that of the N = 4 table, plus
         for u ≤ :data:`LONG_TABLE_MIN_U` the N = 5 residual of the 1/N² continuation scaled by
         :func:`extrapolation_length` and :data:`EXTRAPOLATION_SAFETY`; above it the measured
         error of the exact N = 5, 6 tables, and for N > 6 the measured residual of
@@ -381,6 +477,8 @@ class FullTunnellingShape:
             error = MEASURED_ERROR["interpolation_short"][i]
         else:
             error = MEASURED_ERROR["interpolation_n4"][i]
+        if self.c0_ratio:
+            error += MEASURED_ERROR["stray_capacitance"][i]
         if n >= 5:
             if bands[i] <= LONG_TABLE_MIN_U + 1e-12:
                 error += (EXTRAPOLATION_SAFETY * MEASURED_ERROR["extrapolation_n5"][i]

@@ -18,7 +18,7 @@ bias, G/G_T = dJ/dx.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -41,6 +41,9 @@ class MonteCarloCurrent:
     n_replicas: int
     events_per_replica: int
     seed: int
+    #: Each replica's own time-averaged current (independent replicas; their spread gives the
+    #: standard error, and paired runs difference them replica by replica).
+    replica_currents: np.ndarray = field(default=None, repr=False, compare=False)
 
 
 def simulate_current(
@@ -124,6 +127,7 @@ def simulate_current(
         n_replicas=n_replicas,
         events_per_replica=events_per_replica,
         seed=seed,
+        replica_currents=per_replica,
     )
 
 
@@ -134,14 +138,28 @@ def conductance_by_difference(
     *,
     seed: int,
     step: float = 0.5,
+    common_random_numbers: bool = True,
     **kwargs: int,
 ) -> tuple[float, float]:
     """G/G_T ≈ [J(x + h) − J(x − h)]/(2h) from two Monte Carlo runs, with its standard error.
 
     A planning-grade estimate (docs/physics.md §1.3 defines G = dI/dV): the central difference has a
-    bias of (h²/6) G'' on top of the statistical error returned. The two runs use seeds derived
-    from ``seed`` so that the result is reproducible.
+    bias of (h²/6) G'' on top of the statistical error returned. With ``common_random_numbers``
+    (the default) both runs draw the same random numbers, replica by replica and event by event,
+    so that paired replicas follow nearly the same event sequence while their rates differ only
+    by the small bias step; their currents are then strongly correlated and the difference is
+    estimated from the replica-wise differences, whose spread gives its standard error (the
+    method of common random numbers, e.g. Glasserman, *Monte Carlo Methods in Financial
+    Engineering*, Springer 2003, §7.1). Otherwise the two runs use independent seeds derived
+    from ``seed``. Either way the result is reproducible.
     """
+    if common_random_numbers:
+        up = simulate_current(array, x + step, u, seed=seed, **kwargs)
+        down = simulate_current(array, x - step, u, seed=seed, **kwargs)
+        paired = up.replica_currents - down.replica_currents
+        value = float(paired.mean()) / (2 * step)
+        error = float(paired.std(ddof=1) / math.sqrt(paired.size)) / (2 * step)
+        return value, error
     seeds = np.random.SeedSequence(seed).generate_state(2)
     up = simulate_current(array, x + step, u, seed=int(seeds[0]), **kwargs)
     down = simulate_current(array, x - step, u, seed=int(seeds[1]), **kwargs)

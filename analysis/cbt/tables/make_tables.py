@@ -8,6 +8,9 @@ Run from the repository root, one command per file (times on one core of the sha
     .venv/bin/python -m analysis.cbt.tables.make_tables --bound      # bound_points.npz, ~2 min
     .venv/bin/python -m analysis.cbt.tables.make_tables --held-out   # held_out.npz, ~2 min
     .venv/bin/python -m analysis.cbt.tables.make_tables --long-check # long_array_check.npz, ~10 min
+    .venv/bin/python -m analysis.cbt.tables.make_tables --stray --workers 2  # stray_capacitance.npz
+    .venv/bin/python -m analysis.cbt.tables.make_tables --stray-bound     # stray_bound_points.npz
+    .venv/bin/python -m analysis.cbt.tables.make_tables --stray-held-out  # stray_held_out.npz
 
 (``--workers 1`` keeps the short tables on one core; ``--reuse FILE`` / ``--resume`` keep what
 an earlier run on the same settings computed.)
@@ -355,6 +358,114 @@ def build_long_check(resume: bool = False) -> dict[str, np.ndarray]:
     return out
 
 
+# Chains with stray capacitance C_0 to ground (--stray): exact G/G_T for N = 2, 3, 4 at
+# C_0/C = 0.05, 0.1, 0.15 and 0.2 (with two tables, at 0.1 and 0.2, the parabola in C_0 through
+# them and C_0 = 0 erred by up to 7e-6 in G/G_T at C_0/C = 0.05 and 0.15, measured). The model (analysis.cbt.full_model) interpolates the difference of the
+# reduced dip from the scaled C_0 = 0 dip r D_N(x, r u; 0), r = r_N(C_0/C) the first-order depth
+# factor, a difference that vanishes identically for N = 2 (one island: C_0 only adds to its
+# total capacitance) and is small and smooth for N = 3, 4. u is the nominal ΔE/k_BT with
+# ΔE = ((N − 1)/N) e²/C, as for C_0 = 0. A node is solved if its window holds at most
+# STRAY_MAX_STATES states; beyond the last solved x the model continues the difference in
+# proportion to the base dip. Cost on one core of the shared machine: see docs/models.md.
+STRAY_PATH = Path(__file__).with_name("stray_capacitance.npz")
+STRAY_PARTIAL_PATH = Path(__file__).with_name("stray_capacitance.partial.npz")
+STRAY_LENGTHS = (2, 3, 4)
+STRAY_C0_RATIOS = (0.05, 0.1, 0.15, 0.2)
+STRAY_X_NODES = np.concatenate((np.arange(0.0, 4.0, 0.25), np.arange(4.0, 12.0, 0.5),
+                                np.arange(12.0, 20.0, 1.0), np.arange(20.0, 40.01, 4.0)))
+STRAY_U_NODES = np.array([0.25, 0.5, 0.75, 1.0, 1.5, 2.0, 2.5, 3.0, 3.5, 4.0, 4.5, 5.0])
+STRAY_SIGMAS = 7.0
+STRAY_MAX_STATES = {2: 10_000, 3: 20_000, 4: 30_000}
+# Off-grid exact points with C_0 > 0 that set the model error of the stray-capacitance tables
+# (stray_bound_points.npz, window as the tables) ...
+STRAY_BOUND_PATH = Path(__file__).with_name("stray_bound_points.npz")
+STRAY_BOUND_POINTS = (
+    [(n, c0, u, x) for n in (3, 4) for c0 in (0.1, 0.2) for u, x in
+     ((0.4, 0.6), (0.9, 3.1), (1.75, 1.4), (2.25, 5.5), (3.75, 0.6), (4.6, 2.9), (4.9, 9.5))]
+    + [(n, c0, u, x) for n in (3, 4) for c0 in (0.03, 0.125)
+       for u, x in ((1.5, 1.0), (3.5, 2.0), (4.75, 0.0))]
+    # N = 4 beyond its last solved x, where the difference is continued
+    + [(4, 0.1, 0.4, 6.5), (4, 0.2, 0.9, 13.0), (4, 0.2, 1.25, 17.0)]
+)
+# ... and held-out ones, off the grid in x, u and C_0/C (0.025, 0.075, 0.175 check the
+# interpolation between the tables in C_0), that nothing is built from: only the tests compare the model with
+# them. They are solved with a window one σ wider than the tables', so that they check the
+# window truncation too.
+STRAY_HELD_OUT_PATH = Path(__file__).with_name("stray_held_out.npz")
+STRAY_HELD_OUT_SIGMAS = 8.0
+STRAY_HELD_OUT_POINTS = (
+    [(n, c0, u, x) for n in (3, 4) for c0 in (0.1, 0.2) for u, x in
+     ((0.6, 1.1), (1.25, 2.6), (2.75, 0.4), (3.25, 4.75), (4.25, 1.6), (4.75, 7.25))]
+    + [(n, c0, u, x) for n in (3, 4) for c0 in (0.025, 0.075, 0.175) for u, x in
+       ((1.0, 0.0), (2.0, 3.0), (3.0, 0.0), (4.0, 2.5), (5.0, 0.0))]
+    + [(2, 0.175, u, x) for u, x in ((0.8, 2.2), (3.6, 5.3), (4.9, 0.0))]
+)
+
+
+def _solve_stray_column(task: tuple[int, float, float]) -> tuple[list[float], list, float]:
+    n, c0, u = task
+    start = time.perf_counter()
+    array = ArrayDescription(n, c0_ratio=c0)
+    xs = [float(x) for x in STRAY_X_NODES if estimated_window_states(
+        array, float(x), u, STRAY_SIGMAS) <= STRAY_MAX_STATES[n]]
+    sols = solve_bias_sweep(array, np.array(xs), u, sigmas=STRAY_SIGMAS)
+    rows = [(s.conductance, s.boundary_probability, s.n_states) for s in sols]
+    return xs, rows, time.perf_counter() - start
+
+
+def build_stray_tables(resume: bool = False, workers: int = 1) -> dict[str, np.ndarray]:
+    """Exact G/G_T with C_0 > 0 on STRAY_X_NODES x STRAY_U_NODES (resumable; one bias sweep
+    per (N, C_0, u) column, ``workers`` columns at a time)."""
+    shape = (len(STRAY_C0_RATIOS), STRAY_X_NODES.size, STRAY_U_NODES.size)
+    out: dict[str, np.ndarray] = {
+        "x_nodes": STRAY_X_NODES, "u_nodes": STRAY_U_NODES, "lengths": np.array(STRAY_LENGTHS),
+        "c0_ratios": np.array(STRAY_C0_RATIOS), "window_sigmas": np.array(STRAY_SIGMAS),
+        "max_states": np.array(sorted(STRAY_MAX_STATES.items()))}
+    for n in STRAY_LENGTHS:
+        for key in ("conductance", "edge_probability", "n_states"):
+            out[f"{key}_{n}"] = np.full(shape, np.nan)
+        out[f"done_{n}"] = np.zeros(shape[::2], dtype=bool)
+        out[f"seconds_{n}"] = np.zeros(shape[::2])
+    if resume and STRAY_PARTIAL_PATH.exists():
+        with np.load(STRAY_PARTIAL_PATH) as old:
+            out.update({key: np.array(old[key]) for key in old.files})
+    tasks = [(n, float(c0), float(u)) for n in STRAY_LENGTHS
+             for k, c0 in enumerate(STRAY_C0_RATIOS) for j, u in enumerate(STRAY_U_NODES)
+             if not out[f"done_{n}"][k, j]]
+    with ProcessPoolExecutor(max_workers=workers) as pool:
+        for (n, c0, u), (xs, rows, seconds) in zip(tasks, pool.map(_solve_stray_column, tasks),
+                                                    strict=True):
+            k = STRAY_C0_RATIOS.index(c0)
+            j = int(np.argmin(np.abs(STRAY_U_NODES - u)))
+            for i, (g, e, size) in enumerate(rows):
+                out[f"conductance_{n}"][k, i, j] = g
+                out[f"edge_probability_{n}"][k, i, j] = e
+                out[f"n_states_{n}"][k, i, j] = size
+            out[f"done_{n}"][k, j] = True
+            out[f"seconds_{n}"][k, j] = seconds
+            np.savez_compressed(STRAY_PARTIAL_PATH, **out)
+            logger.info("N=%d C0/C=%.2f u=%.2f: %d points to x = %g in %.0f s (max %d states, "
+                        "edge <= %.1e)", n, c0, u, len(xs), xs[-1], seconds,
+                        np.nanmax(out[f"n_states_{n}"][k, :, j]),
+                        np.nanmax(out[f"edge_probability_{n}"][k, :, j]))
+    return out
+
+
+def build_stray_points(points, sigmas: float = STRAY_SIGMAS) -> dict[str, np.ndarray]:
+    """Exact G/G_T with C_0 > 0 at single (N, C_0/C, u, x) points, serially on one core."""
+    rows = []
+    for n, c0, u, x in points:
+        start = time.perf_counter()
+        sol = solve_master_equation(ArrayDescription(n, c0_ratio=c0), x, u, sigmas=sigmas)
+        rows.append((n, c0, u, x, sol.conductance, sol.boundary_probability))
+        logger.info("N=%d C0/C=%.2f u=%.2f x=%.2f: G/G_T = %.12f (%d states, edge %.1e, %.0f s)",
+                    n, c0, u, x, sol.conductance, sol.n_states, sol.boundary_probability,
+                    time.perf_counter() - start)
+    arr = np.array(rows)
+    return {"n": arr[:, 0].astype(int), "c0_ratio": arr[:, 1], "u": arr[:, 2], "x": arr[:, 3],
+            "conductance": arr[:, 4], "edge_probability": arr[:, 5], "window_sigmas": np.array(sigmas)}
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--workers", type=int, default=2)
@@ -365,16 +476,29 @@ def main() -> None:
     parser.add_argument("--long", action="store_true",
                         help="compute the exact N = 5, 6 tables (one core, ~25 min)")
     parser.add_argument("--resume", action="store_true",
-                        help="with --long or --long-check: keep what an earlier run computed")
+                        help="with --long, --stray or --long-check: keep what an earlier run computed")
     parser.add_argument("--bound", action="store_true",
                         help="compute the off-grid N = 5, 6 points that set the model error")
     parser.add_argument("--long-check", action="store_true",
                         help="exact N = 7, 8 points and Monte Carlo of N = 10-30 (~15 min)")
+    parser.add_argument("--stray", action="store_true",
+                        help="exact N = 2-4 tables with C_0/C = 0.1, 0.2 (one core)")
+    parser.add_argument("--stray-bound", action="store_true",
+                        help="off-grid points with C_0 > 0 that set the tables' model error")
+    parser.add_argument("--stray-held-out", action="store_true",
+                        help="held-out points with C_0 > 0 that only the tests use")
     parser.add_argument("--held-out", action="store_true",
                         help="compute the held-out N = 5, 6 points that only the tests use")
     args = parser.parse_args()
     logging.basicConfig(level=logging.INFO, format="%(asctime)s %(message)s")
-    if args.long:
+    if args.stray:
+        out, data = STRAY_PATH, build_stray_tables(args.resume, args.workers)
+    elif args.stray_bound:
+        out, data = STRAY_BOUND_PATH, build_stray_points(STRAY_BOUND_POINTS)
+    elif args.stray_held_out:
+        out, data = STRAY_HELD_OUT_PATH, build_stray_points(STRAY_HELD_OUT_POINTS,
+                                                             STRAY_HELD_OUT_SIGMAS)
+    elif args.long:
         out, data = LONG_TABLE_PATH, build_long_tables(args.resume)
     elif args.long_check:
         out, data = LONG_CHECK_PATH, build_long_check(args.resume)
