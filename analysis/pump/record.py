@@ -589,20 +589,65 @@ def precision_budget(
     The Type A input is drawn from a scaled and shifted t distribution with ν = n_eff − 1
     (JCGM 101 6.4.9). ``settling_bias``, when given, is the allowance for the settling transient
     left after the discard (a row of its own, in amperes of indicated current).
+
+    The steps: evaluate the measurement equation at the estimates; one budget row per input;
+    combine (GUM 5.1.2, 6); propagate the same equation by Monte Carlo and compare (JCGM 101).
     """
     check_operating_point(frequency_hz, electrons_per_cycle)
     i0 = nominal_current(frequency_hz, electrons_per_cycle)
+    point = _EquationAtEstimates.of(type_a, chain, settling_bias, i0)
+    rows = _precision_rows(type_a, chain, settling_bias, point)
+    notes = []
+    if chain.is_ideal:
+        notes.append("ideal ammeter assumed: no calibration data for the ammeter chain were given, "
+                     "so only the Type A uncertainty is included")
+    notes.extend(type_a.notes)
+    budget = gum.combine("(I − n·e·f)/(n·e·f)", "ppm", point.deviation_ppm, rows,
+                         coverage_probability=coverage_probability, notes=notes)
+    mc = _monte_carlo_of_the_equation(budget, type_a, chain, settling_bias, frequency_hz,
+                                      electrons_per_cycle, seed, coverage_probability,
+                                      monte_carlo_draws)
+    return PrecisionResult(point.deviation_ppm, point.current, i0, budget,
+                           validate_with_monte_carlo(budget, mc), type_a, chain)
+
+
+@dataclass(frozen=True)
+class _EquationAtEstimates:
+    """The measurement equation of :class:`AmmeterChain` at the input estimates: the factors
+    g = 1 + c_G + d_G, v = 1 + c_V, f = 1 + c_f (corrections in ppm), the current
+    I = (I_ind − b_s) v/g − I_leak and D = [I/(n e f) − 1] × 10⁶ (:func:`deviation_ppm_model`)."""
+
+    indicated: float  #: I_ind, the mean on−off cycle difference
+    nominal: float  #: n e f
+    gain: float  #: g
+    voltmeter: float  #: v
+    frequency: float  #: f
+    current: float  #: I
+    deviation_ppm: float  #: D
+
+    @classmethod
+    def of(cls, type_a: TypeA, chain: AmmeterChain, settling_bias: ChainInput | None,
+           i0: float) -> _EquationAtEstimates:
+        x_ind = type_a.mean
+        g = 1 + 1e-6 * (chain.gain_correction.estimate + chain.gain_drift.estimate)
+        v = 1 + 1e-6 * chain.voltmeter_correction.estimate
+        f = 1 + 1e-6 * chain.frequency_correction.estimate
+        sb = settling_bias.estimate if settling_bias is not None else 0.0
+        current = (x_ind - sb) * v / g - chain.leakage_current.estimate
+        d = (current / (i0 * f) - 1.0) * 1e6
+        return cls(x_ind, i0, g, v, f, current, d)
+
+
+def _precision_rows(type_a: TypeA, chain: AmmeterChain, settling_bias: ChainInput | None,
+                    point: _EquationAtEstimates) -> list[gum.BudgetRow]:
+    """One row per input of :func:`deviation_ppm_model`, each with its partial derivative at the
+    estimates as sensitivity (GUM 5.1.3): ∂D/∂I_ind = 10⁶ v/(g n e f), ∂D/∂c_G = ∂D/∂d_G =
+    −I_ind v/(g² n e f), ∂D/∂c_V = I_ind/(g n e f), ∂D/∂c_f = −I/(n e f²), ∂D/∂I_leak =
+    −10⁶/(n e f), ∂D/∂b_s = −10⁶ v/(g n e f) (derived from the measurement equation). The gain
+    and voltmeter rows take I_ind where the exact derivative has I_ind − b_s, a relative
+    difference of b_s/I_ind in those two sensitivities."""
     ch = chain
-    x_ind = type_a.mean
-    cg, dg, cv, cf, leak = (ch.gain_correction.estimate, ch.gain_drift.estimate,
-                            ch.voltmeter_correction.estimate, ch.frequency_correction.estimate,
-                            ch.leakage_current.estimate)
-    g = 1 + 1e-6 * (cg + dg)
-    v = 1 + 1e-6 * cv
-    f = 1 + 1e-6 * cf
-    sb = settling_bias.estimate if settling_bias is not None else 0.0
-    current = (x_ind - sb) * v / g - leak
-    d = (current / (i0 * f) - 1.0) * 1e6
+    x_ind, i0, g, v, f = point.indicated, point.nominal, point.gain, point.voltmeter, point.frequency
     gain_name = _GAIN_NAME[ch.kind]
     rows = [
         gum.BudgetRow(
@@ -611,25 +656,25 @@ def precision_budget(
             f"{type_a.n} cycles, n_eff = {type_a.effective_n:.1f}"
             + ("" if type_a.white else "; noise not white"),
         ),
-        gum.BudgetRow(f"{gain_name}: calibration correction", cg,
+        gum.BudgetRow(f"{gain_name}: calibration correction", ch.gain_correction.estimate,
                       ch.gain_correction.standard_uncertainty, "ppm", "B",
                       ch.gain_correction.distribution, -x_ind * v / (g * g * i0 * f),
                       ch.gain_correction.degrees_of_freedom, "ppm/ppm", ch.gain_correction.note),
-        gum.BudgetRow(f"{gain_name}: drift since calibration", dg,
+        gum.BudgetRow(f"{gain_name}: drift since calibration", ch.gain_drift.estimate,
                       ch.gain_drift.standard_uncertainty, "ppm", "B", ch.gain_drift.distribution,
                       -x_ind * v / (g * g * i0 * f), ch.gain_drift.degrees_of_freedom, "ppm/ppm",
                       ch.gain_drift.note),
-        gum.BudgetRow("voltmeter calibration correction", cv,
+        gum.BudgetRow("voltmeter calibration correction", ch.voltmeter_correction.estimate,
                       ch.voltmeter_correction.standard_uncertainty, "ppm", "B",
                       ch.voltmeter_correction.distribution, x_ind / (g * i0 * f),
                       ch.voltmeter_correction.degrees_of_freedom, "ppm/ppm",
                       ch.voltmeter_correction.note),
-        gum.BudgetRow("frequency reference relative error", cf,
+        gum.BudgetRow("frequency reference relative error", ch.frequency_correction.estimate,
                       ch.frequency_correction.standard_uncertainty, "ppm", "B",
-                      ch.frequency_correction.distribution, -current / (i0 * f * f),
+                      ch.frequency_correction.distribution, -point.current / (i0 * f * f),
                       ch.frequency_correction.degrees_of_freedom, "ppm/ppm",
                       ch.frequency_correction.note),
-        gum.BudgetRow("leakage current following the pump state", leak,
+        gum.BudgetRow("leakage current following the pump state", ch.leakage_current.estimate,
                       ch.leakage_current.standard_uncertainty, "A", "B",
                       ch.leakage_current.distribution, -1e6 / (i0 * f),
                       ch.leakage_current.degrees_of_freedom, "ppm/A", ch.leakage_current.note),
@@ -639,14 +684,18 @@ def precision_budget(
             "settling transient left after the discard", settling_bias.estimate,
             settling_bias.standard_uncertainty, "A", "B", settling_bias.distribution,
             -1e6 * v / (g * i0 * f), settling_bias.degrees_of_freedom, "ppm/A", settling_bias.note))
-    notes = []
-    if ch.is_ideal:
-        notes.append("ideal ammeter assumed: no calibration data for the ammeter chain were given, "
-                     "so only the Type A uncertainty is included")
-    notes.extend(type_a.notes)
-    budget = gum.combine("(I − n·e·f)/(n·e·f)", "ppm", d, rows,
-                         coverage_probability=coverage_probability, notes=notes)
-    ta = ChainInput(x_ind, type_a.standard_uncertainty, "t", type_a.degrees_of_freedom)
+    return rows
+
+
+def _monte_carlo_of_the_equation(
+    budget: gum.Budget, type_a: TypeA, chain: AmmeterChain, settling_bias: ChainInput | None,
+    frequency_hz: float, electrons_per_cycle: int, seed: int, coverage_probability: float,
+    draws: int | None,
+) -> gum.MonteCarloResult:
+    """Propagation of distributions through :func:`deviation_ppm_model` (JCGM 101:2008), seeded;
+    adaptive (JCGM 101 7.9) to the budget's validation tolerance unless ``draws`` is fixed."""
+    ch = chain
+    ta = ChainInput(type_a.mean, type_a.standard_uncertainty, "t", type_a.degrees_of_freedom)
     samplers = {
         "indicated": _sampler(ta),
         "gain_correction": _sampler(ch.gain_correction),
@@ -664,9 +713,8 @@ def precision_budget(
 
     uc = budget.combined_standard_uncertainty
     tol = validation_tolerance(uc) if uc > 0 else None
-    mc = gum.monte_carlo(model, samplers, seed, coverage_probability, draws=monte_carlo_draws,
-                         tolerance=tol, batch=100_000, max_draws=5_000_000)
-    return PrecisionResult(d, current, i0, budget, validate_with_monte_carlo(budget, mc), type_a, ch)
+    return gum.monte_carlo(model, samplers, seed, coverage_probability, draws=draws,
+                           tolerance=tol, batch=100_000, max_draws=5_000_000)
 
 
 # --------------------------------------------------------------------------------------------
