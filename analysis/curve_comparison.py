@@ -154,16 +154,7 @@ def curve_difference(
     shared = dict(shared_components or {})
     parts1 = _parts_by_name(first, "first")
     parts2 = _parts_by_name(second, "second")
-    for name, rho in shared.items():
-        if name not in parts1 or name not in parts2:
-            where = "first" if name not in parts1 else "second"
-            known = sorted(set(parts1) & set(parts2))
-            raise CurveComparisonError(
-                f"shared component {name!r} is not a covariance part of the {where} curve; "
-                f"parts in both: {known}"
-            )
-        if not (math.isfinite(rho) and -1.0 <= rho <= 1.0):
-            raise CurveComparisonError(f"correlation of {name!r} must lie in [-1, 1], got {rho}")
+    _check_shared(shared, parts1, parts2)
     r = (
         common_resistances(first, second)
         if resistance_ohm is None
@@ -172,36 +163,13 @@ def curve_difference(
     # The curves refuse resistances outside their ranges with a message naming them.
     t1 = np.exp(first.ln_temperature(r))
     t2 = np.exp(second.ln_temperature(r))
-    x1 = np.clip(
-        normalise_log_resistance(r, first.ln_resistance_min, first.ln_resistance_max), -1.0, 1.0
-    )
-    x2 = np.clip(
-        normalise_log_resistance(r, second.ln_resistance_min, second.ln_resistance_max), -1.0, 1.0
-    )
-    g1 = chebyshev_design(x1, first.degree) * t1[:, None]  # ∂T₁/∂c
-    g2 = chebyshev_design(x2, second.degree) * t2[:, None]
-
-    def quad(g: np.ndarray, c: np.ndarray) -> np.ndarray:
-        return np.maximum(np.einsum("ij,jk,ik->i", g, c, g), 0.0)
-
-    contributions: list[np.ndarray] = []
-    dofs: list[float] = []
-    for parts, g in ((parts1, g1), (parts2, g2)):
-        for name, p in parts.items():
-            if name in shared:
-                continue
-            contributions.append(np.sqrt(quad(g, p.covariance)))
-            dofs.append(p.degrees_of_freedom)
-    for name, rho in shared.items():
-        a1 = g1 @ single_component_factor(parts1[name])
-        a2 = g2 @ single_component_factor(parts2[name])
-        var = a1**2 + a2**2 - 2.0 * rho * a1 * a2
-        contributions.append(np.sqrt(np.maximum(var, 0.0)))
-        dofs.append(min(parts1[name].degrees_of_freedom, parts2[name].degrees_of_freedom))
+    g1 = _temperature_gradient(first, r, t1)
+    g2 = _temperature_gradient(second, r, t2)
+    contributions, dofs = _contributions(shared, parts1, parts2, g1, g2)
     stacked = np.vstack(contributions) if contributions else np.zeros((1, r.size))
     dofs = dofs or [math.inf]
     u = np.sqrt(np.sum(stacked**2, axis=0))
-    u_uncorrelated = np.sqrt(quad(g1, first.covariance) + quad(g2, second.covariance))
+    u_uncorrelated = np.sqrt(_quadratic_form(g1, first.covariance) + _quadratic_form(g2, second.covariance))
     nu = np.array([gum.welch_satterthwaite(stacked[:, i], dofs) for i in range(r.size)])
     k = np.array([gum.coverage_factor(v, coverage_probability) for v in nu])
     return CurveDifference(
@@ -217,3 +185,65 @@ def curve_difference(
         coverage_probability=coverage_probability,
         shared_components=tuple(sorted(shared.items())),
     )
+
+
+def _check_shared(
+    shared: Mapping[str, float],
+    parts1: Mapping[str, CovariancePart],
+    parts2: Mapping[str, CovariancePart],
+) -> None:
+    """Every shared component names a part of both curves and has a correlation in [−1, 1]."""
+    for name, rho in shared.items():
+        if name not in parts1 or name not in parts2:
+            where = "first" if name not in parts1 else "second"
+            known = sorted(set(parts1) & set(parts2))
+            raise CurveComparisonError(
+                f"shared component {name!r} is not a covariance part of the {where} curve; "
+                f"parts in both: {known}"
+            )
+        if not (math.isfinite(rho) and -1.0 <= rho <= 1.0):
+            raise CurveComparisonError(f"correlation of {name!r} must lie in [-1, 1], got {rho}")
+
+
+def _temperature_gradient(curve: CalibrationCurve, r: np.ndarray, t: np.ndarray) -> np.ndarray:
+    """∂T/∂c_j = T(R) T_j(x(R)) at each resistance: the sensitivities of T to the curve's
+    Chebyshev coefficients, since T = exp(Σ c_j T_j(x)) (GUM 5.1.3)."""
+    x = np.clip(
+        normalise_log_resistance(r, curve.ln_resistance_min, curve.ln_resistance_max), -1.0, 1.0
+    )
+    return chebyshev_design(x, curve.degree) * t[:, None]
+
+
+def _quadratic_form(g: np.ndarray, c: np.ndarray) -> np.ndarray:
+    """gᵀ C g at each resistance (a row of g), clipped at zero against round-off (GUM 5.1.2)."""
+    return np.maximum(np.einsum("ij,jk,ik->i", g, c, g), 0.0)
+
+
+def _contributions(
+    shared: Mapping[str, float],
+    parts1: Mapping[str, CovariancePart],
+    parts2: Mapping[str, CovariancePart],
+    g1: np.ndarray,
+    g2: np.ndarray,
+) -> tuple[list[np.ndarray], list[float]]:
+    """Standard-uncertainty contributions to ΔT at each resistance, with their degrees of freedom.
+
+    Each unshared part of either curve counts alone; a part shared with correlation ρ counts
+    once, as √(a₁² + a₂² − 2ρ a₁a₂) with a_i its rank-one factor carried to T (GUM 5.2.2, eq. 13,
+    for two correlated inputs), and the smaller of its two ν.
+    """
+    contributions: list[np.ndarray] = []
+    dofs: list[float] = []
+    for parts, g in ((parts1, g1), (parts2, g2)):
+        for name, p in parts.items():
+            if name in shared:
+                continue
+            contributions.append(np.sqrt(_quadratic_form(g, p.covariance)))
+            dofs.append(p.degrees_of_freedom)
+    for name, rho in shared.items():
+        a1 = g1 @ single_component_factor(parts1[name])
+        a2 = g2 @ single_component_factor(parts2[name])
+        var = a1**2 + a2**2 - 2.0 * rho * a1 * a2
+        contributions.append(np.sqrt(np.maximum(var, 0.0)))
+        dofs.append(min(parts1[name].degrees_of_freedom, parts2[name].degrees_of_freedom))
+    return contributions, dofs

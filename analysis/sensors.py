@@ -719,7 +719,66 @@ def fit_calibration_curve(
     leave-one-out prediction error, over degrees 1 … min(max_degree, n/2 − 1) whose curve is
     monotonic over the range. With ``residual_scaling="if_larger"`` an excess scatter (Birge
     ratio B > 1) adds a Type A part (B² − 1) × (independent parts) with ν = n − p.
+
+    The steps, one helper each: check the points and list the candidate degrees; fit and score
+    every candidate; choose among the monotonic ones; split the coefficient covariance into one
+    part per input; enlarge it for excess scatter; normalise the residuals.
     """
+    n = data.n_points
+    ln_r, distinct = _checked_log_resistances(data)
+    y = np.log(data.temperature_K)
+    lo, hi = float(ln_r.min()), float(ln_r.max())
+    half_span = 0.5 * (hi - lo)
+    x = normalise_log_resistance(data.resistance_ohm, lo, hi)
+    candidates, top = _candidate_degrees(n, distinct, degree, max_degree)
+    if residual_scaling not in ("never", "if_larger"):
+        raise ValueError(
+            f"residual_scaling must be 'never' or 'if_larger', got {residual_scaling!r}"
+        )
+    if criterion not in ("aicc", "loo"):
+        raise ValueError(f"criterion must be 'aicc' or 'loo', got {criterion!r}")
+
+    scores, fits = _score_degrees(x, y, data, candidates, half_span, criterion)
+    best = _choose_degree(scores, criterion)
+    ls, slope, parts, its = fits[best.degree]
+
+    cov_parts, independent = _coefficient_covariance_parts(ls, parts, data)
+    warnings: list[str] = []
+    excess, scatter_warning = _excess_scatter(ls, independent, residual_scaling)
+    if excess is not None:
+        cov_parts.append(excess)
+    if scatter_warning is not None:
+        warnings.append(scatter_warning)
+    if best.degree == top and degree is None and top > 1:
+        warnings.append(
+            f"the criterion chose the highest degree allowed ({top}); more points "
+            "would let the curve follow the data more freely"
+        )
+    if not all(s.monotonic for s in scores):
+        rejected = [s.degree for s in scores if not s.monotonic]
+        warnings.append(f"degrees {rejected} rejected: their curves are not monotonic")
+
+    curve = CalibrationCurve(ls.coefficients, lo, hi, tuple(cov_parts))
+    hop = _hopping_check(data, curve, slope) if hopping_check else None
+    return CalibrationFit(
+        curve=curve,
+        data=data,
+        criterion=criterion if degree is None else "fixed degree",
+        scores=tuple(scores),
+        residuals_ln_T=ls.residuals,
+        normalised_residuals=_normalised_residuals(x, best.degree, parts, ls),
+        chi_squared=ls.chi_squared,
+        degrees_of_freedom=ls.degrees_of_freedom,
+        birge_ratio=ls.birge_ratio,
+        iterations=its,
+        hopping=hop,
+        warnings=tuple(warnings),
+    )
+
+
+def _checked_log_resistances(data: CalibrationData) -> tuple[np.ndarray, int]:
+    """ln R of the points and how many distinct resistances they cover; refuses fewer than 4
+    points or 3 distinct resistances."""
     n = data.n_points
     if n < 4:
         raise CalibrationFitError(f"a calibration needs at least 4 points, got {n}")
@@ -731,10 +790,14 @@ def fit_calibration_curve(
         raise CalibrationFitError(
             f"the points cover only {distinct} distinct resistance(s); a curve needs at least 3"
         )
-    y = np.log(data.temperature_K)
-    lo, hi = float(ln_r.min()), float(ln_r.max())
-    half_span = 0.5 * (hi - lo)
-    x = normalise_log_resistance(data.resistance_ohm, lo, hi)
+    return ln_r, distinct
+
+
+def _candidate_degrees(
+    n: int, distinct: int, degree: int | None, max_degree: int | None
+) -> tuple[list[int], int]:
+    """The degrees to try and the highest one the points allow: the given degree if any (checked
+    against two points per coefficient), else 1 … min(n/2 − 1, distinct − 1, max_degree)."""
     top = min(maximum_degree(n), distinct - 1)
     if max_degree is not None:
         top = min(top, max_degree)
@@ -744,18 +807,24 @@ def fit_calibration_curve(
                 f"degree {degree} needs {2 * (degree + 1)} points at two per coefficient; "
                 f"{n} points allow degrees 1–{maximum_degree(n)}"
             )
-        candidates = [degree]
-    else:
-        if top < 1:
-            raise CalibrationFitError(f"{n} points are too few for any curve")
-        candidates = list(range(1, top + 1))
-    if residual_scaling not in ("never", "if_larger"):
-        raise ValueError(
-            f"residual_scaling must be 'never' or 'if_larger', got {residual_scaling!r}"
-        )
-    if criterion not in ("aicc", "loo"):
-        raise ValueError(f"criterion must be 'aicc' or 'loo', got {criterion!r}")
+        return [degree], top
+    if top < 1:
+        raise CalibrationFitError(f"{n} points are too few for any curve")
+    return list(range(1, top + 1)), top
 
+
+def _score_degrees(
+    x: np.ndarray,
+    y: np.ndarray,
+    data: CalibrationData,
+    candidates: list[int],
+    half_span: float,
+    criterion: Criterion,
+) -> tuple[list[DegreeScore], dict[int, tuple[LeastSquaresResult, np.ndarray, list, int]]]:
+    """Fit every candidate degree and score it: χ², AICc = χ² + 2p + 2p(p+1)/(n−p−1) (Hurvich &
+    Tsai, Biometrika 76, 297 (1989), from memory), the leave-one-out error when that is the
+    criterion, and whether the curve is monotonic."""
+    n = data.n_points
     fits = {}
     scores = []
     for d in candidates:
@@ -766,6 +835,11 @@ def fit_calibration_curve(
         mono = _is_monotonic(ls.coefficients)
         scores.append(DegreeScore(d, ls.chi_squared, ls.degrees_of_freedom, aicc, loo, mono))
         fits[d] = (ls, slope, parts, its)
+    return scores, fits
+
+
+def _choose_degree(scores: list[DegreeScore], criterion: Criterion) -> DegreeScore:
+    """The monotonic candidate with the lowest score; refuses when none is monotonic."""
     acceptable = [s for s in scores if s.monotonic]
     if not acceptable:
         raise CalibrationFitError(
@@ -773,12 +847,17 @@ def fit_calibration_curve(
             "a mislabelled resistance or temperature"
         )
     key = (lambda s: s.aicc) if criterion == "aicc" else (lambda s: s.loo)
-    best = min(acceptable, key=key)
-    ls, slope, parts, its = fits[best.degree]
+    return min(acceptable, key=key)
 
-    # Split Cov(β̂) = M V Mᵀ into one share per input (exact: the parts of V add up to V).
+
+def _coefficient_covariance_parts(
+    ls: LeastSquaresResult,
+    parts: list[tuple[str, np.ndarray, CorrelatedComponent | None]],
+    data: CalibrationData,
+) -> tuple[list[CovariancePart], np.ndarray]:
+    """Split Cov(β̂) = M V Mᵀ into one share M V_k Mᵀ per input (exact: the parts V_k of V add up
+    to V; linear propagation, GUM 5.2.2), and the sum of the independent shares."""
     m = ls.gain
-    warnings: list[str] = []
     cov_parts: list[CovariancePart] = []
     independent = np.zeros_like(ls.covariance)
     for name, v, comp in parts:
@@ -806,62 +885,59 @@ def fit_calibration_curve(
             cov_parts.append(
                 CovariancePart(name, c, kind="B", correlated_across_points=True, note=comp.note)
             )
+    return cov_parts, independent
+
+
+def _excess_scatter(
+    ls: LeastSquaresResult, independent: np.ndarray, residual_scaling: CurveScaling
+) -> tuple[CovariancePart | None, str | None]:
+    """The Type A part (B² − 1) × (independent shares) for a Birge ratio B > 1 (Birge, Phys. Rev.
+    40, 207 (1932), from memory), when scaling is asked for, and a warning when the excess is
+    significant at the 5 % level (χ² test, common practice, no source)."""
     birge = ls.birge_ratio
     dof = ls.degrees_of_freedom
-    if dof > 0 and birge > 1:
-        # The enlargement applies whenever B > 1 (conservative); a warning only when the excess
-        # is significant at the 5 % level (chi-squared test, common practice).
-        significant = ls.chi_squared > 2.0 * special.gammaincinv(0.5 * dof, 0.95)  # χ²₀.₉₅(dof)
-        if residual_scaling == "if_larger":
-            cov_parts.append(
-                CovariancePart(
-                    "excess scatter of the points about the curve",
-                    (birge**2 - 1.0) * independent,
-                    kind="A",
-                    degrees_of_freedom=float(dof),
-                    note=f"Birge ratio {birge:.3g}: independent parts scaled by its square",
-                )
-            )
-        if significant:
-            warnings.append(
-                f"the points scatter more than their uncertainties allow (Birge ratio "
-                f"{birge:.3g}, chi2 = {ls.chi_squared:.3g} for {dof} degrees of freedom)"
-                + (
-                    "; the curve's uncertainty is enlarged accordingly"
-                    if residual_scaling == "if_larger"
-                    else ""
-                )
-            )
-    if best.degree == top and degree is None and top > 1:
-        warnings.append(
-            f"the criterion chose the highest degree allowed ({top}); more points "
-            "would let the curve follow the data more freely"
+    if not (dof > 0 and birge > 1):
+        return None, None
+    # The enlargement applies whenever B > 1 (conservative); a warning only when the excess
+    # is significant at the 5 % level (chi-squared test, common practice).
+    significant = ls.chi_squared > 2.0 * special.gammaincinv(0.5 * dof, 0.95)  # χ²₀.₉₅(dof)
+    part = None
+    if residual_scaling == "if_larger":
+        part = CovariancePart(
+            "excess scatter of the points about the curve",
+            (birge**2 - 1.0) * independent,
+            kind="A",
+            degrees_of_freedom=float(dof),
+            note=f"Birge ratio {birge:.3g}: independent parts scaled by its square",
         )
-    if not all(s.monotonic for s in scores):
-        rejected = [s.degree for s in scores if not s.monotonic]
-        warnings.append(f"degrees {rejected} rejected: their curves are not monotonic")
+    warning = None
+    if significant:
+        warning = (
+            f"the points scatter more than their uncertainties allow (Birge ratio "
+            f"{birge:.3g}, chi2 = {ls.chi_squared:.3g} for {dof} degrees of freedom)"
+            + (
+                "; the curve's uncertainty is enlarged accordingly"
+                if residual_scaling == "if_larger"
+                else ""
+            )
+        )
+    return part, warning
 
-    curve = CalibrationCurve(ls.coefficients, lo, hi, tuple(cov_parts))
-    design = chebyshev_design(x, best.degree)
+
+def _normalised_residuals(
+    x: np.ndarray,
+    degree: int,
+    parts: list[tuple[str, np.ndarray, CorrelatedComponent | None]],
+    ls: LeastSquaresResult,
+) -> np.ndarray:
+    """Residuals over their own standard deviation, leverage included: Var(e) = V − X (XᵀV⁻¹X)⁻¹ Xᵀ
+    (generalised least squares; common practice, no source)."""
+    n = x.size
+    design = chebyshev_design(x, degree)
     v_total = sum((v for _, v, _ in parts), np.zeros((n, n)))
     unscaled = np.linalg.inv(design.T @ np.linalg.solve(v_total, design))
     resid_var = np.diag(v_total - design @ unscaled @ design.T)
-    normalised = ls.residuals / np.sqrt(np.maximum(resid_var, 1e-300))
-    hop = _hopping_check(data, curve, slope) if hopping_check else None
-    return CalibrationFit(
-        curve=curve,
-        data=data,
-        criterion=criterion if degree is None else "fixed degree",
-        scores=tuple(scores),
-        residuals_ln_T=ls.residuals,
-        normalised_residuals=normalised,
-        chi_squared=ls.chi_squared,
-        degrees_of_freedom=dof,
-        birge_ratio=birge,
-        iterations=its,
-        hopping=hop,
-        warnings=tuple(warnings),
-    )
+    return ls.residuals / np.sqrt(np.maximum(resid_var, 1e-300))
 
 
 def _hopping_check(

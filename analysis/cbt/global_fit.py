@@ -140,6 +140,10 @@ def fit_global(
     centre the grids and serve as the comparison for the tightening factor. Grid spacing is
     about 0.5 (energy) and 0.6 (temperature) conditional standard deviations, where the trapezoid
     rule's error on near-Gaussian integrands is below 1e-12 of the integral.
+
+    The steps: combine the independent ΔE estimates to centre the energy grid; integrate each
+    sweep's temperature out on a grid that widens until the posterior's tails fit; mix the
+    conditionals into moments and credible intervals.
     """
     if len(datas) != len(fits) or len(datas) < 2:
         raise ValueError("a global fit needs at least two sweeps, each with its independent fit")
@@ -147,84 +151,161 @@ def fit_global(
     # Each sweep as its own fit used it (outliers left out, noise model, background), if recorded.
     datas = [getattr(f, "fitted_data", None) or d for d, f in zip(datas, fits, strict=True)]
     shapes = list(shape) if isinstance(shape, Sequence) else [shape] * len(fits)
-    lines = [(m.a, m.b, m.conditional_std, m.energy_mean, m.energy_std) for m in summaries]
-    mE = np.array([ln[3] for ln in lines])
-    sE = np.array([ln[4] for ln in lines])
-    prec = 1.0 / sE**2
-    e_hat = float(np.sum(prec * mE) / prec.sum())
-    e_sd = float(prec.sum() ** -0.5)
-    chi2 = float(np.sum(prec * (mE - e_hat) ** 2))
+    independent = _IndependentEnergies.of(summaries)
+    posterior = _shared_energy_posterior(
+        datas, summaries, shapes, independent, energy_points, temperature_points, span_sigmas
+    )
+    e_mean, t_mean, cov = _mixture_moments(posterior)
+    K = len(fits)
+    t_std = np.sqrt(np.diag(cov)[:K])
+    return GlobalFit(
+        charging_energy=e_mean,
+        charging_energy_std=math.sqrt(cov[K, K]),
+        temperatures=t_mean,
+        temperature_std=t_std,
+        temperature_intervals95=_credible_intervals95(posterior, t_mean, t_std),
+        covariance=cov,
+        independent_temperature_std=np.array([m.temperature_std for m in summaries]),
+        independent_charging_energy=independent.means,
+        independent_charging_energy_std=independent.stds,
+        grid_points=(posterior.energy.size, temperature_points),
+        consistency_chi2=independent.chi2,
+        consistency_dof=K - 1,
+    )
 
-    lo, hi = e_hat - span_sigmas * e_sd, e_hat + span_sigmas * e_sd
+
+@dataclass(frozen=True)
+class _IndependentEnergies:
+    """The sweeps' own ΔE estimates and their precision-weighted mean (Gaussian product rule;
+    common practice, no source): it centres the energy grid and tests their consistency."""
+
+    means: np.ndarray
+    stds: np.ndarray
+    combined: float
+    combined_std: float
+    chi2: float  #: Σ (ΔE_k − ΔE)²/σ_k²
+
+    @classmethod
+    def of(cls, summaries: Sequence[SweepSummary]) -> _IndependentEnergies:
+        means = np.array([m.energy_mean for m in summaries])
+        stds = np.array([m.energy_std for m in summaries])
+        prec = 1.0 / stds**2
+        combined = float(np.sum(prec * means) / prec.sum())
+        chi2 = float(np.sum(prec * (means - combined) ** 2))
+        return cls(means, stds, combined, float(prec.sum() ** -0.5), chi2)
+
+
+@dataclass(frozen=True)
+class _EnergyPosterior:
+    """The shared-ΔE posterior on its grid, with each sweep's conditional moments of T_k."""
+
+    energy: np.ndarray  #: (nE,) grid of ΔE/k_B, K
+    weights: np.ndarray  #: (nE,) normalised trapezoid weights of p(ΔE | all data)
+    conditional_mean: np.ndarray  #: (K, nE) E[T_k | ΔE]
+    conditional_var: np.ndarray  #: (K, nE) Var[T_k | ΔE]
+
+
+def _shared_energy_posterior(
+    datas: Sequence[SweepData],
+    summaries: Sequence[SweepSummary],
+    shapes: Sequence[DipShape],
+    independent: _IndependentEnergies,
+    energy_points: int,
+    temperature_points: int,
+    span_sigmas: float,
+) -> _EnergyPosterior:
+    """p(ΔE | data) ∝ Π_k m_k(ΔE) on a grid of ``span_sigmas`` combined standard deviations about
+    the combined estimate, widened by half on a side whose end still carries 1e-9 of the
+    posterior (at most six times), with trapezoid weights (module docstring)."""
+    lo = independent.combined - span_sigmas * independent.combined_std
+    hi = independent.combined + span_sigmas * independent.combined_std
     for _ in range(6):
         E = np.linspace(max(lo, 0.0), hi, energy_points)
         log_m = np.zeros(E.size)
-        cond_mean = np.empty((len(fits), E.size))
-        cond_var = np.empty((len(fits), E.size))
-        for k, (data, summ, (a, b, sc, _, _)) in enumerate(zip(datas, summaries, lines, strict=True)):
-            shape = shapes[k]
-            centre = a + b * E
-            T = centre[:, None] + sc * np.linspace(-span_sigmas, span_sigmas, temperature_points)[None, :]
-            ll = _log_like_grid(shape, data, summ.bias_offset, E, T)
-            peak = np.argmax(ll, axis=1)
-            if np.any((peak == 0) | (peak == temperature_points - 1)):
-                raise ValueError(
-                    f"sweep {k + 1}: its likelihood peaks at the edge of the temperature grid for some "
-                    "charging energies; the sweeps may not share one charging energy"
-                )
-            dT = T[:, 1] - T[:, 0]
-            w = np.exp(ll - ll.max(axis=1, keepdims=True))
-            w[:, [0, -1]] *= 0.5  # trapezoid rule
-            norm = w.sum(axis=1)
-            log_m += ll.max(axis=1) + np.log(norm * dT)
-            p = w / norm[:, None]
-            cond_mean[k] = np.sum(p * T, axis=1)
-            cond_var[k] = np.sum(p * (T - cond_mean[k][:, None]) ** 2, axis=1)
+        cond_mean = np.empty((len(summaries), E.size))
+        cond_var = np.empty((len(summaries), E.size))
+        for k, (data, summ) in enumerate(zip(datas, summaries, strict=True)):
+            log_mk, cond_mean[k], cond_var[k] = _integrate_temperature(
+                k, shapes[k], data, summ, E, temperature_points, span_sigmas
+            )
+            log_m += log_mk
         wE = np.exp(log_m - log_m.max())
         wE[[0, -1]] *= 0.5
         wE /= wE.sum()
         tail_lo = wE[0] if E[0] > 0 else 0.0
         if tail_lo < 1e-9 and wE[-1] < 1e-9:
-            break
+            return _EnergyPosterior(E, wE, cond_mean, cond_var)
         width = hi - lo
         lo = lo - 0.5 * width if tail_lo >= 1e-9 else lo
         hi = hi + 0.5 * width if wE[-1] >= 1e-9 else hi
-    else:
-        raise ValueError("the shared charging-energy posterior did not fit inside a finite grid")
+    raise ValueError("the shared charging-energy posterior did not fit inside a finite grid")
 
+
+def _integrate_temperature(
+    k: int,
+    shape: DipShape,
+    data: SweepData,
+    summary: SweepSummary,
+    E: np.ndarray,
+    temperature_points: int,
+    span_sigmas: float,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """For sweep k at each ΔE of the grid: log m_k(ΔE) = log ∫ L_k dT_k and the conditional mean
+    and variance of T_k, by the trapezoid rule on a T grid centred on the regression line
+    a + b ΔE (module docstring). Refuses a likelihood that peaks at the grid's edge."""
+    centre = summary.a + summary.b * E
+    offsets = np.linspace(-span_sigmas, span_sigmas, temperature_points)
+    T = centre[:, None] + summary.conditional_std * offsets[None, :]
+    ll = _log_like_grid(shape, data, summary.bias_offset, E, T)
+    peak = np.argmax(ll, axis=1)
+    if np.any((peak == 0) | (peak == temperature_points - 1)):
+        raise ValueError(
+            f"sweep {k + 1}: its likelihood peaks at the edge of the temperature grid for some "
+            "charging energies; the sweeps may not share one charging energy"
+        )
+    dT = T[:, 1] - T[:, 0]
+    w = np.exp(ll - ll.max(axis=1, keepdims=True))
+    w[:, [0, -1]] *= 0.5  # trapezoid rule
+    norm = w.sum(axis=1)
+    log_m = ll.max(axis=1) + np.log(norm * dT)
+    p = w / norm[:, None]
+    mean = np.sum(p * T, axis=1)
+    var = np.sum(p * (T - mean[:, None]) ** 2, axis=1)
+    return log_m, mean, var
+
+
+def _mixture_moments(posterior: _EnergyPosterior) -> tuple[float, np.ndarray, np.ndarray]:
+    """Mean of ΔE, means of T_1 … T_K and the covariance of (T_1 … T_K, ΔE) by mixing the conditionals over
+    p(ΔE | data): the law of total expectation and of total covariance (common practice, no
+    source). The temperatures correlate through ΔE."""
+    wE, E = posterior.weights, posterior.energy
+    cond_mean, cond_var = posterior.conditional_mean, posterior.conditional_var
     e_mean = float(np.sum(wE * E))
     e_var = float(np.sum(wE * (E - e_mean) ** 2))
     t_mean = cond_mean @ wE
-    K = len(fits)
+    K = cond_mean.shape[0]
     cov = np.empty((K + 1, K + 1))
     centred = cond_mean - t_mean[:, None]
     cov[:K, :K] = (centred * wE) @ centred.T + np.diag(cond_var @ wE)
     cov[:K, K] = cov[K, :K] = centred @ (wE * (E - e_mean))
     cov[K, K] = e_var
-    t_std = np.sqrt(np.diag(cov)[:K])
+    return e_mean, t_mean, cov
 
+
+def _credible_intervals95(posterior: _EnergyPosterior, t_mean: np.ndarray, t_std: np.ndarray) -> np.ndarray:
+    """Equal-tailed 95 % intervals of each T_k from its marginal CDF, a mixture of the Gaussian
+    conditionals over p(ΔE | data), inverted by Brent's method (scipy.optimize.brentq)."""
+    wE = posterior.weights
+    K = t_mean.size
     intervals = np.empty((K, 2))
     for k in range(K):
-        sd = np.sqrt(cond_var[k])
+        sd = np.sqrt(posterior.conditional_var[k])
+        mean_k = posterior.conditional_mean[k]
 
-        def cdf(t, k=k, sd=sd):
-            return float(np.sum(wE * special.ndtr((t - cond_mean[k]) / sd)))
+        def cdf(t, mean_k=mean_k, sd=sd):
+            return float(np.sum(wE * special.ndtr((t - mean_k) / sd)))
 
         span = 10 * t_std[k]
         intervals[k, 0] = optimize.brentq(lambda t: cdf(t) - 0.025, t_mean[k] - span, t_mean[k] + span)
         intervals[k, 1] = optimize.brentq(lambda t: cdf(t) - 0.975, t_mean[k] - span, t_mean[k] + span)
-
-    return GlobalFit(
-        charging_energy=e_mean,
-        charging_energy_std=math.sqrt(e_var),
-        temperatures=t_mean,
-        temperature_std=t_std,
-        temperature_intervals95=intervals,
-        covariance=cov,
-        independent_temperature_std=np.array([m.temperature_std for m in summaries]),
-        independent_charging_energy=mE,
-        independent_charging_energy_std=sE,
-        grid_points=(E.size, temperature_points),
-        consistency_chi2=chi2,
-        consistency_dof=K - 1,
-    )
+    return intervals

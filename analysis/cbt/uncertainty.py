@@ -129,27 +129,61 @@ def temperature_budget(
     1 + 0.7343 σ_R² on T; its standard uncertainty is taken as the whole correction divided by √3
     (rectangular on [0, 2 × correction]), because σ_R is itself an estimate. With no stated
     spread no correction is applied and the row covers ±0.7343 σ_default² (rectangular).
+
+    The rows, in the order the certificate lists them, come from one helper each below.
     """
-    T = fit.temperature
-    c_post = 1.0
+    T, c_post = _measurand(fit, setup)
+    rows = _posterior_rows(fit, c_post, posterior_note)
+    rows.append(_bias_scale_row(inputs, T))
+    rows.append(_excitation_row(fit, shape, setup, inputs, T))
+    non_uniformity, correction = _non_uniformity_row(inputs, T)
+    rows.append(non_uniformity)
+    rows.append(_series_resistance_row(fit, inputs, T))
+    heating = _heating_row(fit, shape, setup, inputs, data)
+    if heating is not None:
+        rows.append(heating)
+    rows.append(_truncation_row(fit, shape, T))
+    corrected = T * (1.0 + correction)
+    budget = combine(
+        "electron temperature", "K", corrected, rows,
+        coverage_probability=inputs.coverage_probability,
+    )
+    return budget, 1.0 + correction
+
+
+def _measurand(fit: SweepFit, setup: SweepSetup) -> tuple[float, float]:
+    """The temperature the budget is for, and the sensitivity of it to the fitted T.
+
+    Without a heating model that is the fitted T itself (sensitivity 1). With one it is
+    T_e(0) = (T_p⁵ + P₀/ΣΩ)^(1/5) (Wellstood, Urbina & Clarke, Phys. Rev. B 49, 5942 (1994),
+    from memory; docs/physics.md 1.4), whose derivative with respect to T_p is (T_p/T_e(0))⁴.
+    """
     if setup.heating is not None and fit.electron_temperature_zero_bias is not None:
         T = fit.electron_temperature_zero_bias
-        c_post = (fit.temperature / T) ** 4  # dT_e(0)/dT_p
-    rows: list[BudgetRow] = []
+        return T, (fit.temperature / T) ** 4
+    return fit.temperature, 1.0
+
+
+def _posterior_rows(fit: SweepFit, c_post: float, posterior_note: str | None) -> list[BudgetRow]:
+    """Type A: the posterior standard deviation of T, and the Newey–West inflation of it when the
+    residuals are not white (Newey & West, Econometrica 55, 703 (1987); analysis.cbt.robust).
+
+    Both rows take ν = n − 4 for a sweep of n points (common practice, no source).
+    """
     n_post = fit.posterior.effective_sample_size
     nu_fit = max(1.0, fit.corrected_bias.size - 4.0)
     diagnosis = fit.diagnosis
     noise_words = ""
     if diagnosis is not None and diagnosis.noise_model != "white":
         noise_words = f"; noise model {diagnosis.noise_model}"
-    rows.append(
+    rows = [
         BudgetRow(
             "temperature from the fit (posterior)", fit.temperature, fit.temperature_std, "K", "A", "posterior",
             c_post, degrees_of_freedom=nu_fit, sensitivity_unit="1",
             note=posterior_note or f"posterior standard deviation, {fit.posterior.walkers} walkers, "
             f"effective sample size {n_post:.0f}{noise_words}",
         )
-    )
+    ]
     if diagnosis is not None and not diagnosis.noise_is_white:
         f = diagnosis.structure_inflation
         rows.append(
@@ -162,14 +196,28 @@ def temperature_budget(
                 f"{diagnosis.lag1_after_whitening:.2f} after the noise model",
             )
         )
-    rows.append(
-        BudgetRow(
-            "bias-voltage scale factor", 1.0, inputs.bias_scale_relative_u, "1", "B",
-            "normal" if inputs.bias_scale_stated else "rectangular", T, sensitivity_unit="K",
-            degrees_of_freedom=_default_nu(inputs.bias_scale_stated),
-            note=_default_note(inputs.bias_scale_stated, "uncertainty"),
-        )
+    return rows
+
+
+def _bias_scale_row(inputs: TypeBInputs, T: float) -> BudgetRow:
+    """A gain error δ of the bias voltage stretches the voltage axis and T from the width with it:
+    ∂T/∂δ = T (V_1/2 ∝ T; Pekola et al., Phys. Rev. Lett. 73, 2903 (1994), from memory)."""
+    return BudgetRow(
+        "bias-voltage scale factor", 1.0, inputs.bias_scale_relative_u, "1", "B",
+        "normal" if inputs.bias_scale_stated else "rectangular", T, sensitivity_unit="K",
+        degrees_of_freedom=_default_nu(inputs.bias_scale_stated),
+        note=_default_note(inputs.bias_scale_stated, "uncertainty"),
     )
+
+
+def _excitation_row(fit: SweepFit, shape: DipShape, setup: SweepSetup, inputs: TypeBInputs, T: float) -> BudgetRow:
+    """The lock-in excitation broadens the dip (docs/physics.md 1.4).
+
+    A stated amplitude a is in the model; its uncertainty enters with c = −(∂w/∂a)/(∂w/∂T), both
+    width derivatives by central differences of the model's FWHM (implicit-function rule, GUM
+    5.1.3). A DC sweep, or an amplitude nobody stated, gets a rectangular row bounding the shift
+    of T that an rms amplitude up to :data:`DEFAULT_EXCITATION_BOUND_FRACTION` V_1/2 would cause.
+    """
     dT = 1e-4 * T
     dw_dT = (fwhm_volts(shape, setup, T + dT, fit.u) - fwhm_volts(shape, setup, T - dT, fit.u)) / (2 * dT)
     if setup.excitation_rms_V > 0:
@@ -179,120 +227,135 @@ def temperature_budget(
         dn = SweepSetup(setup.junctions_in_series, a - da)
         dw_da = (fwhm_volts(shape, up, T, fit.u) - fwhm_volts(shape, dn, T, fit.u)) / (2 * da)
         c = -dw_da / dw_dT
-        rows.append(
-            BudgetRow(
-                "lock-in excitation amplitude (rms)", a, inputs.excitation_relative_u * a, "V", "B",
-                "normal" if inputs.excitation_stated else "rectangular", c, sensitivity_unit="K/V",
-                degrees_of_freedom=_default_nu(inputs.excitation_stated),
-                note="excitation averaging is in the model; this row is its amplitude's uncertainty"
-                + ("" if inputs.excitation_stated else "; " + _default_note(False, "its uncertainty")),
-            )
+        return BudgetRow(
+            "lock-in excitation amplitude (rms)", a, inputs.excitation_relative_u * a, "V", "B",
+            "normal" if inputs.excitation_stated else "rectangular", c, sensitivity_unit="K/V",
+            degrees_of_freedom=_default_nu(inputs.excitation_stated),
+            note="excitation averaging is in the model; this row is its amplitude's uncertainty"
+            + ("" if inputs.excitation_stated else "; " + _default_note(False, "its uncertainty")),
         )
-    else:
-        # DC, or an excitation nobody stated: an unknown excitation would broaden the dip, so the
-        # row bounds the T shift an rms amplitude up to the default bound would cause.
-        w0 = fwhm_volts(shape, setup, T, fit.u)
-        a_max = 0.0 if inputs.excitation_amplitude_stated else DEFAULT_EXCITATION_BOUND_FRACTION * w0
-        shift = 0.0
-        if a_max > 0:
-            shift = (fwhm_volts(shape, SweepSetup(setup.junctions_in_series, a_max), T, fit.u) - w0) / dw_dT
-        rows.append(
-            BudgetRow(
-                "lock-in excitation amplitude (rms)", 0.0, standard_uncertainty_from_half_width(abs(shift), "rectangular"),
-                "K", "B", "rectangular", 1.0, sensitivity_unit="1",
-                degrees_of_freedom=_default_nu(inputs.excitation_amplitude_stated),
-                note="DC sweep (no excitation), stated" if inputs.excitation_amplitude_stated else
-                f"excitation not stated, taken as 0; an rms amplitude up to {a_max:.3g} V would read T "
-                f"{shift:.2g} K higher; " + _default_note(False, "amplitude"),
-            )
-        )
+    # DC, or an excitation nobody stated: an unknown excitation would broaden the dip, so the
+    # row bounds the T shift an rms amplitude up to the default bound would cause.
+    w0 = fwhm_volts(shape, setup, T, fit.u)
+    a_max = 0.0 if inputs.excitation_amplitude_stated else DEFAULT_EXCITATION_BOUND_FRACTION * w0
+    shift = 0.0
+    if a_max > 0:
+        shift = (fwhm_volts(shape, SweepSetup(setup.junctions_in_series, a_max), T, fit.u) - w0) / dw_dT
+    return BudgetRow(
+        "lock-in excitation amplitude (rms)", 0.0, standard_uncertainty_from_half_width(abs(shift), "rectangular"),
+        "K", "B", "rectangular", 1.0, sensitivity_unit="1",
+        degrees_of_freedom=_default_nu(inputs.excitation_amplitude_stated),
+        note="DC sweep (no excitation), stated" if inputs.excitation_amplitude_stated else
+        f"excitation not stated, taken as 0; an rms amplitude up to {a_max:.3g} V would read T "
+        f"{shift:.2g} K higher; " + _default_note(False, "amplitude"),
+    )
+
+
+def _non_uniformity_row(inputs: TypeBInputs, T: float) -> tuple[BudgetRow, float]:
+    """Junction-resistance spread σ_R narrows the dip, FWHM × (1 − 0.7343 σ_R²) (docs/physics.md
+    1.4, after Pekola et al., arXiv:2112.13830 (2021)); the row and the relative correction of T
+    (1 + 0.7343 σ_R² applied for a stated spread, none for a default one)."""
     sigma = inputs.resistance_spread
     full = NON_UNIFORMITY_WIDTH_COEFFICIENT * sigma**2
-    corr = full if inputs.resistance_spread_stated else 0.0
-    rows.append(
-        BudgetRow(
-            "junction-resistance non-uniformity correction", corr,
-            standard_uncertainty_from_half_width(full, "rectangular"), "1", "B", "rectangular", T,
-            sensitivity_unit="K", degrees_of_freedom=_default_nu(inputs.resistance_spread_stated),
-            note=f"relative spread {sigma:g} (stated); correction applied" if inputs.resistance_spread_stated
-            else f"spread not stated: no correction applied, ±{full:.2g} relative for a spread up to {sigma:g}; "
-            + _default_note(False, "spread"),
-        )
+    correction = full if inputs.resistance_spread_stated else 0.0
+    row = BudgetRow(
+        "junction-resistance non-uniformity correction", correction,
+        standard_uncertainty_from_half_width(full, "rectangular"), "1", "B", "rectangular", T,
+        sensitivity_unit="K", degrees_of_freedom=_default_nu(inputs.resistance_spread_stated),
+        note=f"relative spread {sigma:g} (stated); correction applied" if inputs.resistance_spread_stated
+        else f"spread not stated: no correction applied, ±{full:.2g} relative for a spread up to {sigma:g}; "
+        + _default_note(False, "spread"),
     )
+    return row, correction
+
+
+def _series_resistance_row(fit: SweepFit, inputs: TypeBInputs, T: float) -> BudgetRow:
+    """A series (lead) resistance R_s left in the data reads T high by about R_s G_T, so
+    ∂T/∂R_s = T G_T (circuit theory, derived; docs/physics.md 1.4). Not stated: a four-terminal measurement is assumed,
+    with a rectangular bound R_s G_T ≤ :data:`DEFAULT_SERIES_RESISTANCE_BOUND_RELATIVE`."""
     if inputs.series_resistance_stated or inputs.series_resistance_ohm > 0 or inputs.series_resistance_u_ohm > 0:
-        rows.append(
-            BudgetRow(
-                "series (lead) resistance", inputs.series_resistance_ohm,
-                inputs.series_resistance_u_ohm, "ohm", "B", "normal",
-                T * fit.asymptotic_conductance, sensitivity_unit="K/ohm",
-                note="corrected in the data; T shifts by about R_s G_T when R_s is wrong"
-                if inputs.series_resistance_ohm > 0 else "stated by the lab (four-terminal or negligible leads)",
-            )
+        return BudgetRow(
+            "series (lead) resistance", inputs.series_resistance_ohm,
+            inputs.series_resistance_u_ohm, "ohm", "B", "normal",
+            T * fit.asymptotic_conductance, sensitivity_unit="K/ohm",
+            note="corrected in the data; T shifts by about R_s G_T when R_s is wrong"
+            if inputs.series_resistance_ohm > 0 else "stated by the lab (four-terminal or negligible leads)",
         )
-    else:
-        bound = DEFAULT_SERIES_RESISTANCE_BOUND_RELATIVE / fit.asymptotic_conductance
-        rows.append(
-            BudgetRow(
-                "series (lead) resistance", 0.0, standard_uncertainty_from_half_width(bound, "rectangular"),
-                "ohm", "B", "rectangular", T * fit.asymptotic_conductance, sensitivity_unit="K/ohm",
-                degrees_of_freedom=_default_nu(False),
-                note=f"not stated: four-terminal assumed, R_s up to {bound:.3g} ohm; " + _default_note(False, "bound"),
-            )
-        )
+    bound = DEFAULT_SERIES_RESISTANCE_BOUND_RELATIVE / fit.asymptotic_conductance
+    return BudgetRow(
+        "series (lead) resistance", 0.0, standard_uncertainty_from_half_width(bound, "rectangular"),
+        "ohm", "B", "rectangular", T * fit.asymptotic_conductance, sensitivity_unit="K/ohm",
+        degrees_of_freedom=_default_nu(False),
+        note=f"not stated: four-terminal assumed, R_s up to {bound:.3g} ohm; " + _default_note(False, "bound"),
+    )
+
+
+def _heating_row(
+    fit: SweepFit, shape: DipShape, setup: SweepSetup, inputs: TypeBInputs, data: SweepData | None
+) -> BudgetRow | None:
+    """Self-heating: the coupling ΣΩ's row with a heating model, the data's own heating
+    signature without one, or no row (a heating model whose coupling has no stated uncertainty,
+    or no data to refit)."""
     if setup.heating is not None and data is not None and inputs.coupling_relative_u > 0:
-        hm = setup.heating
-        start = np.array([fit.temperature, fit.u, fit.bias_offset])
-        fitted = fit.fitted_data if fit.fitted_data is not None else data
-        te = []
-        for f in (1.01, 0.99):
-            h2 = replace(hm, coupling_W_per_K5=hm.coupling_W_per_K5 * f)
-            d2 = replace(fitted, setup=replace(fitted.setup, heating=h2))
-            tp = least_squares_fit(shape, d2, start)["theta"][0]
-            te.append(float(h2.electron_temperature(0.0, tp, setup.junctions_in_series)))
-        c = (te[0] - te[1]) / 0.02
-        rows.append(
-            BudgetRow(
-                "electron-phonon coupling ΣΩ (relative)", 1.0, inputs.coupling_relative_u, "1", "B", "normal", c,
-                sensitivity_unit="K",
-                note=f"heating model: T_e rises {100 * fit.heating_at_half_width:.2g} % at the half-depth bias",
-            )
+        return _coupling_row(fit, shape, setup, inputs, data)
+    if setup.heating is None:
+        return _heating_signature_row(fit)
+    return None
+
+
+def _coupling_row(fit: SweepFit, shape: DipShape, setup: SweepSetup, inputs: TypeBInputs, data: SweepData) -> BudgetRow:
+    """Sensitivity of T_e(0) to the relative coupling ΣΩ from two least-squares refits at
+    ΣΩ (1 ± 1 %), each giving T_p and from it T_e(0) by the heat balance of Wellstood, Urbina &
+    Clarke, Phys. Rev. B 49, 5942 (1994) (from memory; docs/physics.md 1.4)."""
+    hm = setup.heating
+    start = np.array([fit.temperature, fit.u, fit.bias_offset])
+    fitted = fit.fitted_data if fit.fitted_data is not None else data
+    te = []
+    for f in (1.01, 0.99):
+        h2 = replace(hm, coupling_W_per_K5=hm.coupling_W_per_K5 * f)
+        d2 = replace(fitted, setup=replace(fitted.setup, heating=h2))
+        tp = least_squares_fit(shape, d2, start)["theta"][0]
+        te.append(float(h2.electron_temperature(0.0, tp, setup.junctions_in_series)))
+    c = (te[0] - te[1]) / 0.02
+    return BudgetRow(
+        "electron-phonon coupling ΣΩ (relative)", 1.0, inputs.coupling_relative_u, "1", "B", "normal", c,
+        sensitivity_unit="K",
+        note=f"heating model: T_e rises {100 * fit.heating_at_half_width:.2g} % at the half-depth bias",
+    )
+
+
+def _heating_signature_row(fit: SweepFit) -> BudgetRow:
+    """No heating model: the shift of T that the residual template "self-heating"
+    (analysis.cbt.robust) implies, carried when significant (|t| ≥ 4), else zero with the
+    detection limit in the note."""
+    diagnosis = fit.diagnosis
+    test = diagnosis.template("self-heating") if diagnosis is not None else None
+    if test is None:
+        return BudgetRow(
+            "self-heating (no heating model)", 0.0, 0.0, "K", "B", "normal", 1.0, sensitivity_unit="1",
+            note="not evaluated: the fit ran without residual diagnostics",
         )
-    elif setup.heating is None:
-        test = diagnosis.template("self-heating") if diagnosis is not None else None
-        if test is not None:
-            # A significant heating signature: its shift of T is carried in full. Below the detection
-            # limit the data show no heating, the row is zero and says how large a shift would have
-            # been seen (counting an insignificant estimate would only pad U on clean sweeps).
-            limit = 4.0 * test.temperature_shift_std
-            rows.append(
-                BudgetRow(
-                    "self-heating (no heating model)", 0.0, abs(test.temperature_shift) if test.significant else 0.0,
-                    "K", "B", "normal", 1.0, sensitivity_unit="1",
-                    note=(f"residuals show self-heating (t = {test.t_statistic:.1f}): fitting a first-order heating "
-                          f"term would shift T by {test.temperature_shift:.2g} K, carried here; give the coupling "
-                          "to model it") if test.significant else
-                    (f"tested, not seen: heating signature t = {test.t_statistic:.1f}; a heating shift of T larger "
-                     f"than about {limit:.2g} K would have been detected"),
-                )
-            )
-        else:
-            rows.append(
-                BudgetRow(
-                    "self-heating (no heating model)", 0.0, 0.0, "K", "B", "normal", 1.0, sensitivity_unit="1",
-                    note="not evaluated: the fit ran without residual diagnostics",
-                )
-            )
+    # A significant heating signature: its shift of T is carried in full. Below the detection
+    # limit the data show no heating, the row is zero and says how large a shift would have
+    # been seen (counting an insignificant estimate would only pad U on clean sweeps).
+    limit = 4.0 * test.temperature_shift_std
+    return BudgetRow(
+        "self-heating (no heating model)", 0.0, abs(test.temperature_shift) if test.significant else 0.0,
+        "K", "B", "normal", 1.0, sensitivity_unit="1",
+        note=(f"residuals show self-heating (t = {test.t_statistic:.1f}): fitting a first-order heating "
+              f"term would shift T by {test.temperature_shift:.2g} K, carried here; give the coupling "
+              "to model it") if test.significant else
+        (f"tested, not seen: heating signature t = {test.t_statistic:.1f}; a heating shift of T larger "
+         f"than about {limit:.2g} K would have been detected"),
+    )
+
+
+def _truncation_row(fit: SweepFit, shape: DipShape, T: float) -> BudgetRow:
+    """The dip model's own width error at the fitted u (``shape.relative_width_error``), as a
+    rectangular bound on T."""
     bound = shape.relative_width_error(fit.u)
-    rows.append(
-        BudgetRow(
-            "model truncation", 0.0, standard_uncertainty_from_half_width(bound * T, "rectangular"),
-            "K", "B", "rectangular", 1.0, sensitivity_unit="1",
-            note=f"{shape.name}: width error bound {bound:.2e} relative at u = {fit.u:.3f}",
-        )
+    return BudgetRow(
+        "model truncation", 0.0, standard_uncertainty_from_half_width(bound * T, "rectangular"),
+        "K", "B", "rectangular", 1.0, sensitivity_unit="1",
+        note=f"{shape.name}: width error bound {bound:.2e} relative at u = {fit.u:.3f}",
     )
-    corrected = T * (1.0 + corr)
-    budget = combine(
-        "electron temperature", "K", corrected, rows,
-        coverage_probability=inputs.coverage_probability,
-    )
-    return budget, 1.0 + corr
