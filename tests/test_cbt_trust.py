@@ -346,3 +346,27 @@ def test_long_array_at_the_audit_u_is_refused_by_the_service_not_certified(u):
     f = parse_csv("deep.csv", text.encode())
     with pytest.raises(CertificationRefused, match=r"deep\.csv: .*(validated range|bound)"):
         fit_file(f, 1, QUICK, None)
+
+
+@pytest.mark.parametrize(("t", "carried"), [(1.5, False), (2.5, True), (-3.0, True), (5.0, True)])
+def test_heating_shift_is_carried_from_weak_evidence_on(t, carried):
+    # The heating template's shift of T is carried in the budget from |t| = 2 (TEMPLATE_T_CARRY)
+    # and named from |t| = 4; below 2 the row is zero. Only the rule is checked here (the t and
+    # shift are set by hand); the campaign (benchmarks/bench_cbt_trust.py, heating family) shows
+    # why: an unnamed heating at t ≈ 3 moved T by 4 u(T).
+    from dataclasses import replace
+
+    from analysis.cbt.robust import TEMPLATE_T_LIMIT, TemplateTest
+    from analysis.cbt.uncertainty import TypeBInputs, temperature_budget
+
+    bias, g, setup = noisy_exact(1.0, seed=12)
+    shape = FullTunnellingShape(3)
+    fit = fit_sweep(SweepData(bias, g, setup), seed=1, shape=shape, settings=QUICK)
+    shift = 2.5 * fit.temperature_std
+    test = TemplateTest("self-heating", t, shift, abs(shift / t), abs(t) >= TEMPLATE_T_LIMIT, "")
+    others = tuple(x for x in fit.diagnosis.templates if x.cause != "self-heating")
+    fit = replace(fit, diagnosis=replace(fit.diagnosis, templates=others + (test,)))
+    budget, _ = temperature_budget(fit, shape, setup, TypeBInputs())
+    (row,) = [r for r in budget.rows if r.quantity.startswith("self-heating")]
+    assert row.standard_uncertainty == (pytest.approx(shift) if carried else 0.0)
+    assert ("weak sign" in row.note) == (carried and abs(t) < TEMPLATE_T_LIMIT)

@@ -35,6 +35,7 @@ from analysis.budget import (
 )
 from analysis.cbt.fit import SweepData, SweepFit, fwhm_volts, least_squares_fit
 from analysis.cbt.models import NON_UNIFORMITY_WIDTH_COEFFICIENT, DipShape, SweepSetup
+from analysis.cbt.robust import TEMPLATE_T_CARRY, TEMPLATE_T_LIMIT
 
 #: Relative uncertainty of a defaulted Type B uncertainty (GUM G.4.2: 25 % gives ν = 8).
 DEFAULT_RELIABILITY = 0.25
@@ -326,8 +327,8 @@ def _coupling_row(fit: SweepFit, shape: DipShape, setup: SweepSetup, inputs: Typ
 
 def _heating_signature_row(fit: SweepFit) -> BudgetRow:
     """No heating model: the shift of T that the residual template "self-heating"
-    (analysis.cbt.robust) implies, carried when significant (|t| ≥ 4), else zero with the
-    detection limit in the note."""
+    (analysis.cbt.robust) implies, carried from |t| ≥ 2 (named as heating from |t| ≥ 4), else zero
+    with the detection limit in the note."""
     diagnosis = fit.diagnosis
     test = diagnosis.template("self-heating") if diagnosis is not None else None
     if test is None:
@@ -335,18 +336,27 @@ def _heating_signature_row(fit: SweepFit) -> BudgetRow:
             "self-heating (no heating model)", 0.0, 0.0, "K", "B", "normal", 1.0, sensitivity_unit="1",
             note="not evaluated: the fit ran without residual diagnostics",
         )
-    # A significant heating signature: its shift of T is carried in full. Below the detection
-    # limit the data show no heating, the row is zero and says how large a shift would have
-    # been seen (counting an insignificant estimate would only pad U on clean sweeps).
+    # A significant heating signature (|t| ≥ 4): its shift of T is carried in full and the cause is
+    # named. A weak one (2 ≤ |t| < 4) is carried too, unnamed: the template is so correlated with T
+    # that a heating seen only at t = 3 can move T by several u(T). Below |t| = 2 the row is zero
+    # and says how large a shift would have been seen (counting a shift that is noise would only
+    # pad U on clean sweeps).
     limit = 4.0 * test.temperature_shift_std
+    carried = abs(test.t_statistic) >= TEMPLATE_T_CARRY
+    if test.significant:
+        note = (f"residuals show self-heating (t = {test.t_statistic:.1f}): fitting a first-order heating "
+                f"term would shift T by {test.temperature_shift:.2g} K, carried here; give the coupling "
+                "to model it")
+    elif carried:
+        note = (f"weak sign of self-heating (t = {test.t_statistic:.1f}, named from t = "
+                f"{TEMPLATE_T_LIMIT:g}): fitting a first-order heating term would shift T by "
+                f"{test.temperature_shift:.2g} K, carried here")
+    else:
+        note = (f"tested, not seen: heating signature t = {test.t_statistic:.1f}; a heating shift of T "
+                f"larger than about {limit:.2g} K would have been detected")
     return BudgetRow(
-        "self-heating (no heating model)", 0.0, abs(test.temperature_shift) if test.significant else 0.0,
-        "K", "B", "normal", 1.0, sensitivity_unit="1",
-        note=(f"residuals show self-heating (t = {test.t_statistic:.1f}): fitting a first-order heating "
-              f"term would shift T by {test.temperature_shift:.2g} K, carried here; give the coupling "
-              "to model it") if test.significant else
-        (f"tested, not seen: heating signature t = {test.t_statistic:.1f}; a heating shift of T larger "
-         f"than about {limit:.2g} K would have been detected"),
+        "self-heating (no heating model)", 0.0, abs(test.temperature_shift) if carried else 0.0,
+        "K", "B", "normal", 1.0, sensitivity_unit="1", note=note,
     )
 
 
