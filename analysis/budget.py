@@ -20,7 +20,7 @@ from dataclasses import dataclass, field
 from decimal import ROUND_CEILING, ROUND_HALF_EVEN, Decimal
 
 import numpy as np
-from scipy import stats
+from scipy import special
 
 #: Divisors that turn a half-width a into a standard uncertainty (GUM 4.3.7, 4.3.9, 4.3.10 and
 #: the arcsine (U-shaped) case of JCGM 101 6.4.6).
@@ -113,11 +113,11 @@ def coverage_factor(degrees_of_freedom: float, coverage_probability: float = 0.9
         raise ValueError("coverage probability must lie strictly between 0 and 1")
     tail = 0.5 * (1.0 + coverage_probability)
     if math.isinf(degrees_of_freedom):
-        return float(stats.norm.ppf(tail))
+        return float(special.ndtri(tail))  # the normal quantile
     nu = math.floor(degrees_of_freedom)
     if nu < 1:
         raise ValueError(f"degrees of freedom must be at least 1, got {degrees_of_freedom}")
-    return float(stats.t.ppf(tail, nu))
+    return float(special.stdtrit(nu, tail))  # Student t quantile
 
 
 def degrees_of_freedom_from_reliability(relative_uncertainty_of_u: float) -> float:
@@ -184,6 +184,27 @@ class Budget:
             else [list(map(float, row)) for row in self.correlation],
             "notes": list(self.notes),
         }
+
+
+def sensitivity_coefficients(
+    model: Callable[..., float], estimates: Mapping[str, float], **fixed: object
+) -> tuple[float, dict[str, float]]:
+    """The model's value and its sensitivity coefficients c_i = ∂f/∂x_i at the input estimates
+    (GUM 5.1.3), taken from the model function itself.
+
+    The derivatives are exact first-order ones (automatic differentiation by the `uncertainties`
+    package, which follows every arithmetic operation of the model), so a budget's sensitivities
+    cannot drift apart from the measurement equation it states. The model must be written with
+    operators (and ``uncertainties.umath`` for functions); ``fixed`` are keyword arguments that
+    are not inputs of the budget. An input the model does not depend on has c_i = 0.
+    """
+    from uncertainties import ufloat  # here, not at the top: most budgets do not need it
+
+    variables = {name: ufloat(float(x), 1.0, tag=name) for name, x in estimates.items()}
+    y = model(**variables, **fixed)
+    derivatives = getattr(y, "derivatives", {})
+    value = float(getattr(y, "nominal_value", y))
+    return value, {name: float(derivatives.get(v, 0.0)) for name, v in variables.items()}
 
 
 def combine(

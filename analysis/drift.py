@@ -40,7 +40,7 @@ from dataclasses import dataclass, field
 from typing import Literal
 
 import numpy as np
-from scipy import optimize, stats
+from scipy import optimize, special
 
 from analysis import budget as gum
 
@@ -393,7 +393,7 @@ def analyse_drift(history: CalibrationHistory) -> DriftAnalysis:
         notes.append(f"{h.n} calibration(s): drift cannot be judged from fewer than three")
     stable = candidates[0]
     dof = h.n - 1
-    p = float(stats.chi2.sf(stable.chi_squared, dof)) if dof > 0 else math.nan
+    p = float(special.chdtrc(dof, stable.chi_squared)) if dof > 0 else math.nan
     return DriftAnalysis(
         h, tuple(candidates), chosen, criterion, stable.chi_squared, p, tuple(notes)
     )

@@ -32,7 +32,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
-from scipy import optimize, stats
+from scipy import optimize, special
 
 from analysis.drift import DriftModel, HistoryError
 
@@ -65,8 +65,8 @@ def in_tolerance_probability(
     if s == 0.0:
         return 1.0 if abs(m) <= max_permissible_change else 0.0
     return float(
-        stats.norm.cdf((max_permissible_change - m) / s)
-        - stats.norm.cdf((-max_permissible_change - m) / s)
+        special.ndtr((max_permissible_change - m) / s)
+        - special.ndtr((-max_permissible_change - m) / s)
     )
 
 
@@ -103,7 +103,7 @@ def drift_interval(
         return in_tolerance_probability(model, tau, delta) - reliability_target
 
     if model.kind == "random_walk" and model.diffusion_per_day > 0:
-        z = stats.norm.ppf(0.5 * (1.0 + reliability_target))
+        z = special.ndtri(0.5 * (1.0 + reliability_target))
         unlimited = (delta / z) ** 2 / model.diffusion_per_day
     elif shortfall(maximum_interval_days) >= 0:
         unlimited = math.inf

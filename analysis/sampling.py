@@ -19,13 +19,43 @@ from __future__ import annotations
 
 import logging
 import math
+import sys
+import types
 from collections.abc import Callable
 from dataclasses import dataclass
 
-import emcee
 import numpy as np
 
 log = logging.getLogger(__name__)
+
+
+def _import_emcee() -> types.ModuleType:
+    """emcee, imported without its KDE move.
+
+    emcee's package imports every move it offers, and its KDE move imports scipy.stats (for
+    gaussian_kde) at import time: 0.4–1 s of start-up on the 2-core reference machine, in every
+    process that samples, for a move we never use. Unless emcee or scipy.stats is already
+    loaded, a placeholder stands in for ``emcee.moves.kde`` while emcee is first imported; its
+    ``KDEMove`` refuses to be built, saying why. Every other move is emcee's own.
+    """
+    if "emcee" not in sys.modules and "scipy.stats" not in sys.modules:
+        placeholder = types.ModuleType("emcee.moves.kde")
+
+        class KDEMove:
+            def __init__(self, *args, **kwargs):
+                raise RuntimeError("emcee's KDE move is not loaded in coldcert (it would import "
+                                   "scipy.stats at start-up); use a move set of "
+                                   "analysis.sampling.MOVE_SETS")
+
+        placeholder.KDEMove = KDEMove
+        placeholder.__all__ = ["KDEMove"]
+        sys.modules.setdefault("emcee.moves.kde", placeholder)
+    import emcee  # noqa: PLC0415
+
+    return emcee
+
+
+emcee = _import_emcee()
 
 ProgressCallback = Callable[[float, str], None]
 

@@ -35,7 +35,7 @@ from typing import Literal
 
 import numpy as np
 from numpy.polynomial import chebyshev as cheb
-from scipy import optimize, stats
+from scipy import optimize, special
 from scipy.linalg import solve_triangular
 
 from analysis import budget as gum
@@ -811,7 +811,7 @@ def fit_calibration_curve(
     if dof > 0 and birge > 1:
         # The enlargement applies whenever B > 1 (conservative); a warning only when the excess
         # is significant at the 5 % level (chi-squared test, common practice).
-        significant = ls.chi_squared > stats.chi2.ppf(0.95, dof)
+        significant = ls.chi_squared > 2.0 * special.gammaincinv(0.5 * dof, 0.95)  # χ²₀.₉₅(dof)
         if residual_scaling == "if_larger":
             cov_parts.append(
                 CovariancePart(

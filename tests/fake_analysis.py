@@ -8,7 +8,8 @@ section (as the sensor calibration adds its table and section), "unstable_output
 (``[run] test_work`` rounds of a 200 x 200 eigenvalue problem; the queue benchmark's job) on a
 stand-in record, "instant" returns a stand-in record at once (for
 tests of the job queue, not of the science), "slow" reports progress for about ten seconds and
-then does the same (time to kill its worker mid-fit), "hang" never finishes; anything else runs
+then does the same (time to kill its worker mid-fit), "hang" never finishes, "stubborn" never
+finishes and ignores being asked to stop (as a fit stuck inside a C library would); anything else runs
 the real analysis.
 """
 
@@ -39,6 +40,12 @@ def misbehaving_certify(run, seed, progress=None, **options):
     if behaviour == "hang":
         while True:
             time.sleep(0.1)
+    if behaviour == "stubborn":
+        while True:
+            try:
+                time.sleep(0.1)
+            except BaseException:  # noqa: S110 - the point: the soft time limit is swallowed
+                pass
     if behaviour == "slow":
         for step in range(40):
             if progress:

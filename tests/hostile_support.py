@@ -3,7 +3,7 @@ certificates taken to any lifecycle state through the archive directly, and raw 
 made the way an intruder with file access would make them (append-only triggers dropped first).
 
 The canned analysis is not science: it returns the bundled pump example's record with its first
-value shifted by the seed, one SVG plot, one HTML section and one output file, so that every
+value shifted by the seed, one SVG plot and one output file, so that every
 stored part a rendering reads exists and differs between certificates.
 """
 
@@ -30,7 +30,6 @@ class CannedOutput:
     record: dict[str, Any]
     plots: dict[str, str] = field(default_factory=dict)
     extra_files: dict[str, bytes] = field(default_factory=dict)
-    html_sections: list[str] = field(default_factory=list)
 
 
 def canned_output(seed: int) -> CannedOutput:
@@ -46,7 +45,6 @@ def canned_output(seed: int) -> CannedOutput:
         record=record,
         plots={"fit": svg},
         extra_files={"table.csv": f"seed,value\n{seed},{record['results'][0]['value']!r}\n".encode()},
-        html_sections=[f'<section id="canned"><h2>Canned section</h2><p>{marker}</p></section>'],
     )
 
 
@@ -95,7 +93,6 @@ def draft(services, submitter: dict, seed: int, files: list[tuple[str, bytes]]) 
             options={"fast": True},
             plots=output.plots,
             extra_files=output.extra_files,
-            html_sections=output.html_sections,
         )
 
 

@@ -106,8 +106,8 @@ class LiveServer:
     """The real app on the production server (waitress, as `coldcert serve` runs it) on
     127.0.0.1, a free port, in a thread."""
 
-    def __init__(self, app) -> None:
-        self.server = production_server(app, "127.0.0.1", 0, threads=8)
+    def __init__(self, app, proxy: str | None = None) -> None:
+        self.server = production_server(app, "127.0.0.1", 0, threads=8, proxy=proxy)
         self.url = f"http://127.0.0.1:{self.server.effective_port}"
         self.thread = threading.Thread(target=self.server.run, daemon=True)
 

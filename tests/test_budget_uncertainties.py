@@ -14,11 +14,10 @@ import math
 
 import numpy as np
 import pytest
+import uncertainties as unc
+from uncertainties import umath
 
-from analysis.budget import BudgetRow, combine
-
-unc = pytest.importorskip("uncertainties")
-umath = pytest.importorskip("uncertainties.umath")
+from analysis.budget import BudgetRow, combine, sensitivity_coefficients
 
 # GUM H.2, Table H.2 (from memory): means and standard uncertainties of the means, and the
 # correlation coefficients between them.
@@ -48,16 +47,34 @@ def _reference(model, **functions):
 def _our_budget(model, **functions):
     """Our rows, with sensitivities taken from the same model function (as the pump budget does)."""
     y, _ = _reference(model, **functions)
-    # Sensitivities ∂f/∂x_i: automatic derivatives of the model at independent inputs.
-    inputs = [unc.ufloat(V, U_V), unc.ufloat(I, U_I), unc.ufloat(PHI, U_PHI)]
-    derivatives = model(*inputs, **functions).derivatives
+
+    def by_name(v, i, phi):
+        return model(v, i, phi, **functions)
+
+    estimate, c = sensitivity_coefficients(by_name, {"v": V, "i": I, "phi": PHI})
     rows = [
-        BudgetRow(name, x, u, unit, "A", "normal", derivatives.get(var, 0.0), 4)
-        for (name, x, u, unit), var in zip(
-            [("V", V, U_V, "V"), ("I", I, U_I, "A"), ("phi", PHI, U_PHI, "rad")], inputs, strict=True
-        )
+        BudgetRow(name, x, u, unit, "A", "normal", c[name], 4)
+        for name, x, u, unit in [("v", V, U_V, "V"), ("i", I, U_I, "A"), ("phi", PHI, U_PHI, "rad")]
     ]
-    return combine(model.__name__, "ohm", y.nominal_value, rows, CORRELATION), y
+    return combine(model.__name__, "ohm", estimate, rows, CORRELATION), y
+
+
+def test_sensitivities_are_the_hand_derived_partial_derivatives():
+    # R = (V/I) cos φ: ∂R/∂V = cos φ / I, ∂R/∂I = −V cos φ / I², ∂R/∂φ = −(V/I) sin φ (derived;
+    # GUM 5.1.3 defines c_i = ∂f/∂x_i at the estimates).
+    def by_name(v, i, phi):
+        return resistance(v, i, phi, cos=umath.cos)
+
+    estimate, c = sensitivity_coefficients(by_name, {"v": V, "i": I, "phi": PHI})
+    assert estimate == resistance(V, I, PHI)
+    assert c["v"] == pytest.approx(math.cos(PHI) / I, rel=1e-13)
+    assert c["i"] == pytest.approx(-V * math.cos(PHI) / I**2, rel=1e-13)
+    assert c["phi"] == pytest.approx(-V / I * math.sin(PHI), rel=1e-13)
+    # An input the model ignores has no sensitivity; a model constant in every input still works.
+    _, c = sensitivity_coefficients(lambda v, i, phi: v / i, {"v": V, "i": I, "phi": PHI})
+    assert c["phi"] == 0.0
+    estimate, c = sensitivity_coefficients(lambda v: 2.0, {"v": V})
+    assert (estimate, c) == (2.0, {"v": 0.0})
 
 
 @pytest.mark.parametrize(

@@ -281,3 +281,68 @@ def test_service_warns_with_the_outlier_lines():
     f = _sweep_file(bias, g)
     work = fit_file(f, 1, QUICK, FullTunnellingShape(3))
     assert any(f"line {f.line_of_row(137)}" in w for w in work.warnings)
+
+
+def test_named_outliers_and_findings_reach_the_certificate_renderings():
+    """The record → render path: the outlier lines and each named finding of the residual checks
+    appear as warnings in the HTML page and in the PDF, next to that sweep's budget."""
+    import copy
+    import io
+    import json
+    import re
+    from pathlib import Path
+
+    from analysis.cbt.uncertainty import TypeBInputs
+    from service.calibrations.cbt import fit_file, sweep_result
+    from service.render.html import render_html
+    from service.render.pdf import render_pdf
+
+    pypdf = pytest.importorskip("pypdf")
+    bias, g, _ = noisy_exact(1.0, seed=4)
+    g[137] *= 1.25
+    g[290] *= 0.8
+    f = _sweep_file(bias, g)
+    work = fit_file(f, 1, QUICK, FullTunnellingShape(3))
+    entry, _ = sweep_result(work, TypeBInputs())
+    lines = entry["diagnostics"]["residual_checks"]["outlier_lines"]
+    assert sorted(lines) == sorted([f.line_of_row(137), f.line_of_row(290)])
+
+    example = Path(__file__).resolve().parents[1] / "example_runs" / "sensor-larkspur-certificate"
+    record = copy.deepcopy(json.loads((example / "certificate.json").read_text()))
+    record["job"] = "cbt_thermometry"
+    record["sections"].pop("sensor_calibration")
+    record["results"] = [entry]
+    html = render_html(record)
+    pdf = "".join(p.extract_text() for p in pypdf.PdfReader(io.BytesIO(render_pdf(record))).pages)
+    squash = lambda s: re.sub(r"\s+", "", s)  # noqa: E731 - PDF text breaks lines anywhere
+    warnings = entry["diagnostics"]["warnings"]
+    outlier_warning = next(w for w in warnings if w.startswith("outliers left out"))
+    for line in lines:
+        assert str(line) in outlier_warning
+    for w in warnings:  # every finding, the outlier lines among them
+        assert f"Warning: {w}" in html.replace("&#39;", "'").replace("&#34;", '"').replace("&amp;", "&")
+        assert squash(f"Warning: {w}") in squash(pdf)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("u", [3.05, 3.1, 3.3])
+def test_long_array_at_the_audit_u_is_refused_by_the_service_not_certified(u):
+    # The audit's u = 3.05, 3.1, 3.3 lay just beyond the full model's limit when it was 3. Short
+    # arrays are now validated to u = 5 (exact tables to N = 6; the slow tests above probe that
+    # edge), but a long array's full model stops at u = 2 and the series at u = 1: a 10-junction
+    # sweep this deep must be refused, with a message, not certified or crashed. The dip is the
+    # exact N = 3 master-equation curve on the N = 10 voltage scale (x = eV/(N k_B T)); its depth
+    # differs from a true N = 10 array's by well under 1e-3 at u ≈ 3 (docs/physics.md 1.3: the
+    # depth has converged by N = 4-6), far less than the gap to the deepest u = 2 dip (0.277).
+    from analysis.cbt.full_model import FullTunnellingShape as Full
+    from service.calibrations.cbt import fit_file
+    from service.calibrations.outcome import CertificationRefused
+    from service.intake import parse_csv
+
+    assert Full(10).max_u < 3.0
+    bias, g, _ = noisy_exact(u, seed=9)
+    text = "# junctions_in_series: 10\nbias_V,conductance_S\n" + "".join(
+        f"{float(v) * 10 / 3!r},{float(c)!r}\n" for v, c in zip(bias, g, strict=True))
+    f = parse_csv("deep.csv", text.encode())
+    with pytest.raises(CertificationRefused, match=r"deep\.csv: .*(validated range|bound)"):
+        fit_file(f, 1, QUICK, None)

@@ -235,18 +235,26 @@ def test_worker_killed_mid_fit_loses_nothing_and_drafts_once(cluster):
 
 
 def test_jobs_that_kill_their_worker_or_overrun_the_time_limit_are_failed(cluster):
-    c = cluster(JOB_TIME_LIMIT=3)
+    c = cluster(JOB_TIME_LIMIT=3, JOB_STOP_GRACE=2)
     c.start_worker("worker-a")
     lab, client = c.lab, c.lab.client()
     crashing = lab.upload(client, files=_behaving("crash_always")).get_json()
     hanging = lab.upload(client, files=_behaving("hang")).get_json()
+    stubborn = lab.upload(client, files=_behaving("stubborn")).get_json()
     job = lab.wait(client, crashing["job_id"], timeout=180)
     assert job["status"] == "failed"
     assert "interrupted 3 times" in job["error"]  # bounded attempts, then the reason
     job = lab.wait(client, hanging["job_id"], timeout=120)
     assert job["status"] == "failed"
     assert "time limit" in job["error"]
-    assert c.drafts_of(crashing["run_id"]) == c.drafts_of(hanging["run_id"]) == 0
+    # A fit that ignores the soft limit has its process ended at the hard one, and the job is
+    # failed then, on its first attempt, not left "running" and re-queued to be killed again.
+    job = lab.wait(client, stubborn["job_id"], timeout=120)
+    assert job["status"] == "failed"
+    assert "did not stop when asked" in job["error"]
+    assert c.job_row(stubborn["job_id"]).attempts == 1
+    runs = (crashing["run_id"], hanging["run_id"], stubborn["run_id"])
+    assert [c.drafts_of(run) for run in runs] == [0, 0, 0]
 
 
 def _broker_folder(url: str) -> str:

@@ -207,6 +207,35 @@ def test_sensitivities_are_the_derivatives_of_the_measurement_equation():
         assert row.sensitivity == pytest.approx(float(f(up) - f(dn)) / (2 * h), rel=1e-5)
 
 
+def test_sensitivities_equal_the_hand_derived_partial_derivatives():
+    # D = [(I_ind − b_s)(1 + c_V)/(1 + c_G + d_G) − I_leak] / [n e f (1 + c_f)] − 1, in ppm, with
+    # c_G, d_G, c_V, c_f in ppm. Its partial derivatives, worked out by hand (derived; GUM 5.1.3
+    # defines c_i = ∂f/∂x_i at the estimates), with v = 1 + 1e-6 c_V, g = 1 + 1e-6 (c_G + d_G),
+    # f = 1 + 1e-6 c_f and I = (I_ind − b_s) v/g − I_leak:
+    #   ∂D/∂I_ind = 1e6 v/(g I0 f) = −∂D/∂b_s      ∂D/∂c_G = ∂D/∂d_G = −(I_ind − b_s) v/(g² I0 f)
+    #   ∂D/∂c_V = (I_ind − b_s)/(g I0 f)            ∂D/∂c_f = −I/(I0 f²)      ∂D/∂I_leak = −1e6/(I0 f)
+    ta = R.TypeA(I0 * (1 + 3e-6), 1e-15, 100, 80.0, 1e-16, 79.0, 1, 1e-16, 0.5, 2, True)
+    chain = R.AmmeterChain(
+        "transresistance",
+        gain_correction=R.ChainInput(5.0, 0.2),
+        gain_drift=R.ChainInput(0.7, 0.3),
+        voltmeter_correction=R.ChainInput(-1.0, 0.1),
+        frequency_correction=R.ChainInput(0.4, 0.001),
+        leakage_current=R.ChainInput(2e-18, 0.02e-15),
+    )
+    bias = R.ChainInput(3e-17, 1e-17, "normal", math.inf, "settling")
+    res = R.precision_budget(ta, chain, 1.0e9, 1, seed=1, monte_carlo_draws=10_000,
+                             settling_bias=bias)
+    x = ta.mean - bias.estimate
+    v, g, f = 1 - 1e-6, 1 + 5.7e-6, 1 + 0.4e-6
+    current = x * v / g - 2e-18
+    hand = [1e6 * v / (g * I0 * f), -x * v / (g * g * I0 * f), -x * v / (g * g * I0 * f),
+            x / (g * I0 * f), -current / (I0 * f * f), -1e6 / (I0 * f), -1e6 * v / (g * I0 * f)]
+    assert [row.sensitivity for row in res.budget.rows] == pytest.approx(hand, rel=1e-12)
+    assert res.current_a == pytest.approx(current, rel=1e-15)
+    assert res.deviation_ppm == pytest.approx((current / (I0 * f) - 1) * 1e6, rel=1e-9)
+
+
 def test_monte_carlo_validates_the_near_linear_budget():
     # JCGM 101:2008 clause 8: for a model this close to linear the GUM interval agrees with the
     # Monte Carlo one within half a unit of the second significant digit.

@@ -165,3 +165,31 @@ def test_unresolved_transient_that_dominates_the_uncertainty_is_refused():
     t, i, on = _record(8, 30, transient=slow, noise=100e-15, seed=2)
     with pytest.raises(R.RecordError, match="cannot be resolved.*record longer segments or more"):
         R.analyse_record(t, i, on, 1.0e9, 1, seed=1, monte_carlo_draws=20_000)
+
+
+def test_a_step_confined_to_the_first_reading_is_no_resolvable_transient():
+    # A 5 pA step in the first reading after each switch and nothing after it: the fit's τ runs
+    # to the bottom of its search, so neither τ nor a shape is measured. It must be reported as
+    # "no resolvable transient", not as a fitted τ and amplitude, and still not bias the result
+    # (the record is built here, so the truth is known exactly; derived).
+    truth = 0.3
+
+    def first_reading(since, state):
+        return np.where(since == 1, np.where(state == 1, 5e-12, -5e-12), 0.0)
+
+    t, i, on = _record(60, 30, deviation_ppm=truth, transient=first_reading, noise=2e-15, seed=6)
+    res = R.analyse_record(t, i, on, 1.0e9, 1, seed=2, monte_carlo_draws=20_000)
+    first = res.settling.components[0]
+    assert first.at_floor and first.fit.tau_s <= 1.05 * first.tau_floor_s
+    shown = first.as_dict()
+    assert shown["resolved"] is False and shown["time_constant_below_reading_resolution"] is True
+    assert "no transient resolved beyond the first reading" in res.settling.describe()
+    b = res.precision.budget
+    assert abs(b.estimate - truth) <= b.expanded_uncertainty
+
+
+def test_a_resolved_transient_is_not_taken_for_one_below_the_reading_resolution():
+    t, i, on = _record(60, 30, transient=_overshoot, noise=1e-15, seed=3)
+    res = R.analyse_record(t, i, on, 1.0e9, 1, seed=1, monte_carlo_draws=20_000)
+    first = res.settling.components[0]
+    assert first.resolved and not first.at_floor and first.as_dict()["resolved"] is True

@@ -191,3 +191,36 @@ def test_temperatures_below_one_kelvin_read_in_millikelvin_with_the_same_digits(
     html = render_html(record)
     assert as_millikelvin(first["reported"])["value"] in html and ">mK<" in html
     assert label("frequency_Hz") == "frequency (Hz)" and label("electrons_per_cycle") == "electrons per cycle"
+
+
+def _settling_record() -> tuple[dict, dict]:
+    record = _record("pump-quillfen")
+    entry = next(r for r in record["results"] if (r.get("record") or {}).get("settling_transient"))
+    return record, entry["record"]["settling_transient"]
+
+
+def test_settling_fits_read_in_a_unit_that_fits_them_and_as_a_share_of_the_step():
+    # The demo's first fit is the ammeter following the whole 160 pA step (A ≈ −e⁻¹ n·e·f one
+    # time constant after the switch): it reads in pA and as a share of n·e·f, not as 1e4 fA.
+    record, st = _settling_record()
+    st["components"][0].update(amplitude_after_switch_on_A=-5.894e-11,
+                               amplitude_after_switch_on_u_A=8.6e-16)
+    html = render_html(record)
+    assert "-58.9 ± 0.00086 pA (-36.8 % of n·e·f)" in html
+    assert "e+04" not in html
+    st["components"][0].update(amplitude_after_switch_on_A=-8.99e-16)  # a small one stays in fA
+    assert "-0.899 ± 0.86 fA" in render_html(record)
+
+
+def test_a_fit_below_the_reading_resolution_is_reported_as_no_resolvable_transient():
+    record, st = _settling_record()
+    c = st["components"][0]
+    c.update(amplitude_after_switch_on_A=-7.77e-13, time_constant_s=0.3,
+             time_constant_below_reading_resolution=True, time_constant_search_floor_s=0.3)
+    html = render_html(record)
+    pdf_text = _pdf_text(render_pdf(record), record["certificate_id"])
+    for text in (html, pdf_text):
+        flat = _squash(text)
+        assert _squash("no resolvable transient") in flat
+        assert _squash("no: faster than the readings") in flat
+        assert "-777" not in flat and "-0.777" not in flat  # the degenerate amplitude is not shown

@@ -98,9 +98,10 @@ class GridDip:
         p = np.arange(k, -1, -1)
         taylor_xu = taylor_xu * (self.u_step ** p)[:, None, None, None]
         taylor_xu = taylor_xu * (self.x_step ** p)[None, :, None, None]
-        #: (u cell, power of u, power of x × x cell); powers descending as in scipy PPoly.
-        self._cells = np.ascontiguousarray(np.transpose(taylor_xu, (3, 0, 1, 2))).reshape(nu, k + 1, -1)
+        #: (u cell, power of x, power of u, x cell); powers descending as in scipy PPoly.
+        self._cells = np.ascontiguousarray(np.transpose(taylor_xu, (3, 1, 0, 2)))
         self._nx, self._nu = nx, nu
+        self._u_powers = np.arange(k, -1, -1)
         # Own error at the cell centres in both x and u, weighted by u as in G/G_T = 1 − u D.
         xm = x_nodes[:-1] + 0.5 * self.x_step
         um = u_nodes[:-1] + 0.5 * self.u_step
@@ -113,7 +114,7 @@ class GridDip:
 
     def _u_cell(self, u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         s = (u - self.u_lo) * (1.0 / self.u_step)
-        iu = np.clip(s.astype(np.intp), 0, self._nu - 1)
+        iu = np.minimum(np.maximum(s.astype(np.intp), 0), self._nu - 1)
         return iu, s - iu
 
     def _tail(self, ax: np.ndarray, reduced: np.ndarray) -> np.ndarray:
@@ -128,50 +129,50 @@ class GridDip:
         u = np.asarray(u, dtype=float)
         shape = np.broadcast_shapes(x.shape, u.shape)
         if u.size * 8 <= math.prod(shape):
-            return self._look_up(self._curves(u), np.abs(x), u.shape, shape)
+            return self._look_up(np.abs(x), u, shape)
         return self._per_point(np.abs(x), u, shape)
 
-    def _curves(self, u: np.ndarray) -> np.ndarray:
-        """Sum the u polynomial of every cell: one piecewise polynomial in x per value of u."""
-        k, nx = self.degree, self._nx
-        iu, su = self._u_cell(u.ravel())
-        powers = np.vander(su, k + 1)  # (u value, power of u), descending
+    def _curves(self, u: np.ndarray, cells: int) -> np.ndarray:
+        """Sum the u polynomial of the first ``cells`` x cells for every value of u.
+
+        Returns the piecewise polynomials in x as rows (power of x, value of u × x cell).
+        """
+        k = self.degree
+        iu, su = self._u_cell(u)
+        powers = su[:, None] ** self._u_powers  # (u value, power of u), descending
         first = int(iu[0])
         if (iu == first).all():  # the walkers of one sweep usually share one u cell
-            curves = powers @ self._cells[first]
+            rows = np.matmul(powers, self._cells[first][:, :, :cells])
         else:
-            curves = np.empty((u.size, (k + 1) * nx))
+            rows = np.empty((k + 1, u.size, cells))
             for cell in np.unique(iu):
-                rows = iu == cell
-                curves[rows] = powers[rows] @ self._cells[cell]
-        return curves.reshape(u.size, k + 1, nx)
+                at = iu == cell
+                rows[:, at] = np.matmul(powers[at], self._cells[cell][:, :, :cells])
+        return rows.reshape(k + 1, -1)
 
-    def _look_up(self, curves: np.ndarray, ax: np.ndarray, u_shape: tuple[int, ...],
-                 shape: tuple[int, ...]) -> np.ndarray:
-        """Evaluate curve m at the |x| that broadcast against position m of ``u_shape``."""
-        k, nx = self.degree, self._nx
-        count = curves.shape[0]
-        # (power of x, curve × x cell): one contiguous row per power for the look-ups.
-        rows = np.ascontiguousarray(curves.transpose(1, 0, 2)).reshape(k + 1, -1)
-        ax = np.broadcast_to(ax, shape)
+    def _look_up(self, ax: np.ndarray, u: np.ndarray, shape: tuple[int, ...]) -> np.ndarray:
+        """Curve m (one per value of u) evaluated at the |x| that broadcast against position m of u."""
         top = float(np.max(ax, initial=0.0))
         if math.isnan(top):  # a NaN bias or temperature gives NaN, never a number from the grid
-            return np.where(np.isnan(ax), np.nan, self._look_up(curves, np.nan_to_num(ax), u_shape, shape))
+            return np.where(np.isnan(ax), np.nan, self._look_up(np.nan_to_num(ax), u, shape))
         far = top >= self.x_end
-        # Cell index and local coordinate in one pass: the curve's offset (a whole number of
-        # cells) is added before the floor, so floor(s + m nx) = floor(s) + m nx.
-        s = np.minimum(ax, self.x_end * (1.0 - 1e-15)) if far else ax
+        # Only the x cells up to the largest |x| are summed (one spare against rounding).
+        cells = self._nx if far else min(self._nx, int(top * (1.0 / self.x_step)) + 2)
+        rows = self._curves(u.ravel(), cells)
+        s = np.minimum(ax, self.x_end) if far else ax
         s = s * (1.0 / self.x_step)
-        s += np.arange(count, dtype=float).reshape(u_shape) * nx
-        cell = np.floor(s)
-        t = (s - cell).ravel()
-        flat = cell.astype(np.intp).ravel()
-        out = rows[0].take(flat, mode="clip")  # indices are in range by construction
-        for q in range(1, k + 1):
+        cell = s.astype(np.intp)  # floor, s >= 0
+        if far:
+            np.minimum(cell, self._nx - 1, out=cell)
+        t = np.broadcast_to(s - cell, shape).ravel()
+        # Each curve's cells follow the previous curve's: an integer offset per value of u.
+        flat = (cell + np.arange(0, u.size * cells, cells).reshape(u.shape)).ravel()
+        out = rows[0].take(flat)
+        for q in range(1, self.degree + 1):
             out *= t
-            out += rows[q].take(flat, mode="clip")
+            out += rows[q].take(flat)
         out = out.reshape(shape)
-        return self._tail(ax, out) if far else out
+        return self._tail(np.broadcast_to(ax, shape), out) if far else out
 
     def _per_point(self, ax: np.ndarray, u: np.ndarray, shape: tuple[int, ...]) -> np.ndarray:
         """Any (x, u) pairs: the full bivariate polynomial of each point's cell."""
@@ -191,7 +192,7 @@ class GridDip:
             row = np.zeros(ax.shape)
             for q in range(k + 1):
                 row *= t
-                row += flat_cells.take(base + (p * (k + 1) + q) * nx)
+                row += flat_cells.take(base + (q * (k + 1) + p) * nx)
             out *= su
             out += row
         return self._tail(ax, out).reshape(shape)

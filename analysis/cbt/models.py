@@ -292,25 +292,46 @@ def forward_conductance(
     evaluated at the electron temperature of every bias point (:class:`HeatingModel`).
     """
     bias = np.asarray(bias, dtype=float)
-    T = np.asarray(temperature, dtype=float)[..., None]
-    u = np.asarray(charging_energy, dtype=float)[..., None] / T
+    T = np.asarray(temperature, dtype=float)
     gt = np.asarray(asymptotic_conductance, dtype=float)[..., None]
     v0 = np.asarray(bias_offset, dtype=float)[..., None]
     beta = np.asarray(background_slope, dtype=float)[..., None]
+    centred = bias - v0
+    u = np.asarray(charging_energy, dtype=float) / T
+    return gt * (1.0 + beta * centred) * averaged_shape(shape, centred, setup, T, u, lockin_nodes)
+
+
+def averaged_shape(
+    shape: DipShape,
+    centred: np.ndarray,
+    setup: SweepSetup,
+    temperature: np.ndarray,
+    u: np.ndarray,
+    lockin_nodes: int | None = None,
+) -> np.ndarray:
+    """The dip shape G/G_T as the instrument reads it, at offset-corrected biases V − V₀ (V).
+
+    ``centred`` has shape B + (n,), ``temperature`` (K) and ``u`` = ΔE/(k_B T) shape B. The
+    lock-in average of docs/physics.md 1.4 by Gauss–Chebyshev quadrature (:func:`lockin_nodes_for`
+    nodes) and, with ``setup.heating``, the electron temperature of every bias point; the part of
+    :func:`forward_conductance` a fit evaluates for every walker (the amplitudes are linear).
+    """
+    T = np.asarray(temperature, dtype=float)[..., None]
+    u = np.asarray(u, dtype=float)[..., None]
     scale = ELEMENTARY_CHARGE / (setup.junctions_in_series * BOLTZMANN * T)
     a = setup.excitation_peak_V
-    centred = bias - v0
     if setup.heating is not None:
-        return gt * (1.0 + beta * centred) * _heated_shape(shape, centred, setup, T, u * T, a, lockin_nodes)
+        return _heated_shape(shape, centred, setup, T, u * T, a, lockin_nodes)
     if a > 0:
-        alpha_max = float(np.max(a * scale))
+        alpha_max = a * float(np.max(scale))
         n_nodes = lockin_nodes if lockin_nodes is not None else lockin_nodes_for(alpha_max)
         t, w = chebyshev_u_nodes(n_nodes)
-        xs = (centred[..., None] + a * t) * scale[..., None]
-        shape_avg = shape(xs, u[..., None]) @ w
-    else:
-        shape_avg = shape(centred * scale, u)
-    return gt * (1.0 + beta * centred) * shape_avg
+        # Nodes on a new first axis, so that each node's biases stay contiguous for the shape.
+        x0 = centred * scale
+        offsets = (a * t).reshape((-1,) + (1,) * max(np.ndim(centred), scale.ndim)) * scale
+        s = shape(x0 + offsets, u)
+        return (w @ s.reshape(n_nodes, -1)).reshape(s.shape[1:])
+    return shape(centred * scale, u)
 
 
 def _heated_shape(shape, centred, setup, T, ec, a, lockin_nodes):

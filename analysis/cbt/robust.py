@@ -32,7 +32,7 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import stats
+from scipy import special
 
 #: Normal consistency factor of the median absolute deviation (Hampel 1974).
 MAD_TO_SIGMA = 1.4826
@@ -96,7 +96,7 @@ def difference_noise_scale(values_in_order: np.ndarray) -> float:
 
 def outlier_threshold(n: int) -> float:
     """z_n = Φ⁻¹(1 − 0.0025/n): the screen flags any of n clean Gaussian points with ~0.5 % chance."""
-    return float(stats.norm.isf(0.5 * OUTLIER_FAMILY_RATE / max(n, 1)))
+    return float(-special.ndtri(0.5 * OUTLIER_FAMILY_RATE / max(n, 1)))
 
 
 def flag_outliers(residuals_in_order: np.ndarray) -> tuple[np.ndarray, float]:

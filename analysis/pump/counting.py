@@ -13,7 +13,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
-from scipy import stats
+from scipy import special
 
 
 @dataclass(frozen=True)
@@ -49,5 +49,6 @@ def error_rate(errors: int, cycles: int, confidence: float = 0.95) -> ErrorRate:
     k, n = int(errors), int(cycles)
     p = k / n
     u = math.sqrt(p * (1 - p) / n)
-    upper = min(1.0, float(stats.chi2.ppf(confidence, 2 * k + 2)) / (2 * n))
+    chi2_quantile = 2.0 * float(special.gammaincinv(k + 1, confidence))  # χ² quantile, 2k + 2 dof
+    upper = min(1.0, chi2_quantile / (2 * n))
     return ErrorRate(k, n, p, u, upper, confidence)

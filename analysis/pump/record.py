@@ -35,7 +35,7 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import stats
+from scipy import special
 
 from analysis import budget as gum
 from analysis.pump import settling as S
@@ -374,7 +374,7 @@ def type_a_autocorrelated(
     if h >= first:
         lags = np.arange(first, h + 1)
         q = n * (n + 2) * float(np.sum(rho[lags] ** 2 / (n - lags)))
-        p = float(stats.chi2.sf(q, lags.size))
+        p = float(special.chdtrc(lags.size, q))
     else:
         p = math.nan
     white = not (p < significance)
@@ -462,9 +462,19 @@ def deviation_ppm_model(
     (the measurement equation of :class:`AmmeterChain`; b_s the settling transient left in the
     mean cycle difference after the discard, :mod:`analysis.pump.settling` eq. 2)."""
     i0 = nominal_current(frequency_hz, electrons_per_cycle)
-    current = (indicated - settling_bias) * (1 + 1e-6 * voltmeter_correction) / (
-        1 + 1e-6 * (gain_correction + gain_drift)) - leakage
+    current = corrected_current(indicated, gain_correction, gain_drift, voltmeter_correction,
+                                leakage, settling_bias)
     return (current / (i0 * (1 + 1e-6 * frequency_correction)) - 1.0) * 1e6
+
+
+def corrected_current(
+    indicated: np.ndarray, gain_correction: np.ndarray, gain_drift: np.ndarray,
+    voltmeter_correction: np.ndarray, leakage: np.ndarray, settling_bias: np.ndarray | float = 0.0,
+) -> np.ndarray:
+    """The pump current I = (I_ind − b_s)(1 + c_V)/(1 + c_G + d_G) − I_leak, in A (the
+    numerator of :func:`deviation_ppm_model`)."""
+    return (indicated - settling_bias) * (1 + 1e-6 * voltmeter_correction) / (
+        1 + 1e-6 * (gain_correction + gain_drift)) - leakage
 
 
 def _sampler(x: ChainInput):
@@ -505,8 +515,9 @@ def interval_end_numerical_u(mc: gum.MonteCarloResult) -> float:
     the Gaussian of the Monte Carlo standard uncertainty u, g(y_p) = φ(z_p)/u. Used to tell whether
     trial count resolves the validation tolerance."""
     p = (1.0 - mc.coverage_probability) / 2.0
-    z = stats.norm.ppf(p)
-    return mc.standard_uncertainty * math.sqrt(p * (1 - p) / mc.draws) / stats.norm.pdf(z)
+    z = float(special.ndtri(p))
+    density = math.exp(-0.5 * z * z) / math.sqrt(2.0 * math.pi)  # standard normal φ(z)
+    return mc.standard_uncertainty * math.sqrt(p * (1 - p) / mc.draws) / density
 
 
 @dataclass(frozen=True)
@@ -577,6 +588,29 @@ class PrecisionResult:
     chain: AmmeterChain
 
 
+def _samplers(type_a: TypeA, ch: AmmeterChain, settling_bias: ChainInput | None) -> dict:
+    """The Monte Carlo draw of each input of :func:`deviation_ppm_model` (JCGM 101 6.4)."""
+    ta = ChainInput(type_a.mean, type_a.standard_uncertainty, "t", type_a.degrees_of_freedom)
+    samplers = {
+        "indicated": _sampler(ta),
+        "gain_correction": _sampler(ch.gain_correction),
+        "gain_drift": _sampler(ch.gain_drift),
+        "voltmeter_correction": _sampler(ch.voltmeter_correction),
+        "frequency_correction": _sampler(ch.frequency_correction),
+        "leakage": _sampler(ch.leakage_current),
+    }
+    if settling_bias is not None:
+        samplers["settling_bias"] = _sampler(settling_bias)
+    return samplers
+
+
+def _chain_row(quantity: str, x: ChainInput, unit: str, sensitivity: float,
+               sensitivity_unit: str) -> gum.BudgetRow:
+    """A Type B row of the budget for one input of the measurement equation."""
+    return gum.BudgetRow(quantity, x.estimate, x.standard_uncertainty, unit, "B", x.distribution,
+                         sensitivity, x.degrees_of_freedom, sensitivity_unit, x.note)
+
+
 def precision_budget(
     type_a: TypeA, chain: AmmeterChain, frequency_hz: float, electrons_per_cycle: int, seed: int,
     coverage_probability: float = 0.95, monte_carlo_draws: int | None = None,
@@ -593,52 +627,50 @@ def precision_budget(
     check_operating_point(frequency_hz, electrons_per_cycle)
     i0 = nominal_current(frequency_hz, electrons_per_cycle)
     ch = chain
-    x_ind = type_a.mean
-    cg, dg, cv, cf, leak = (ch.gain_correction.estimate, ch.gain_drift.estimate,
-                            ch.voltmeter_correction.estimate, ch.frequency_correction.estimate,
-                            ch.leakage_current.estimate)
-    g = 1 + 1e-6 * (cg + dg)
-    v = 1 + 1e-6 * cv
-    f = 1 + 1e-6 * cf
-    sb = settling_bias.estimate if settling_bias is not None else 0.0
-    current = (x_ind - sb) * v / g - leak
-    d = (current / (i0 * f) - 1.0) * 1e6
+
+    def model(**inputs):
+        return deviation_ppm_model(frequency_hz=frequency_hz,
+                                   electrons_per_cycle=electrons_per_cycle, **inputs)
+
+    estimates = {
+        "indicated": type_a.mean,
+        "gain_correction": ch.gain_correction.estimate,
+        "gain_drift": ch.gain_drift.estimate,
+        "voltmeter_correction": ch.voltmeter_correction.estimate,
+        "frequency_correction": ch.frequency_correction.estimate,
+        "leakage": ch.leakage_current.estimate,
+    }
+    if settling_bias is not None:
+        estimates["settling_bias"] = settling_bias.estimate
+    # D and c_i = ∂D/∂x_i from the measurement equation itself (GUM 5.1.3).
+    d, c = gum.sensitivity_coefficients(model, estimates)
+    current = corrected_current(
+        type_a.mean, ch.gain_correction.estimate, ch.gain_drift.estimate,
+        ch.voltmeter_correction.estimate, ch.leakage_current.estimate,
+        estimates.get("settling_bias", 0.0))
     gain_name = _GAIN_NAME[ch.kind]
     rows = [
         gum.BudgetRow(
-            "mean on−off cycle difference (indicated current)", x_ind, type_a.standard_uncertainty,
-            "A", "A", "t", 1e6 * v / (g * i0 * f), type_a.degrees_of_freedom, "ppm/A",
+            "mean on−off cycle difference (indicated current)", type_a.mean,
+            type_a.standard_uncertainty, "A", "A", "t", c["indicated"], type_a.degrees_of_freedom,
+            "ppm/A",
             f"{type_a.n} cycles, n_eff = {type_a.effective_n:.1f}"
             + ("" if type_a.white else "; noise not white"),
         ),
-        gum.BudgetRow(f"{gain_name}: calibration correction", cg,
-                      ch.gain_correction.standard_uncertainty, "ppm", "B",
-                      ch.gain_correction.distribution, -x_ind * v / (g * g * i0 * f),
-                      ch.gain_correction.degrees_of_freedom, "ppm/ppm", ch.gain_correction.note),
-        gum.BudgetRow(f"{gain_name}: drift since calibration", dg,
-                      ch.gain_drift.standard_uncertainty, "ppm", "B", ch.gain_drift.distribution,
-                      -x_ind * v / (g * g * i0 * f), ch.gain_drift.degrees_of_freedom, "ppm/ppm",
-                      ch.gain_drift.note),
-        gum.BudgetRow("voltmeter calibration correction", cv,
-                      ch.voltmeter_correction.standard_uncertainty, "ppm", "B",
-                      ch.voltmeter_correction.distribution, x_ind / (g * i0 * f),
-                      ch.voltmeter_correction.degrees_of_freedom, "ppm/ppm",
-                      ch.voltmeter_correction.note),
-        gum.BudgetRow("frequency reference relative error", cf,
-                      ch.frequency_correction.standard_uncertainty, "ppm", "B",
-                      ch.frequency_correction.distribution, -current / (i0 * f * f),
-                      ch.frequency_correction.degrees_of_freedom, "ppm/ppm",
-                      ch.frequency_correction.note),
-        gum.BudgetRow("leakage current following the pump state", leak,
-                      ch.leakage_current.standard_uncertainty, "A", "B",
-                      ch.leakage_current.distribution, -1e6 / (i0 * f),
-                      ch.leakage_current.degrees_of_freedom, "ppm/A", ch.leakage_current.note),
+        _chain_row(f"{gain_name}: calibration correction", ch.gain_correction, "ppm",
+                   c["gain_correction"], "ppm/ppm"),
+        _chain_row(f"{gain_name}: drift since calibration", ch.gain_drift, "ppm",
+                   c["gain_drift"], "ppm/ppm"),
+        _chain_row("voltmeter calibration correction", ch.voltmeter_correction, "ppm",
+                   c["voltmeter_correction"], "ppm/ppm"),
+        _chain_row("frequency reference relative error", ch.frequency_correction, "ppm",
+                   c["frequency_correction"], "ppm/ppm"),
+        _chain_row("leakage current following the pump state", ch.leakage_current, "A",
+                   c["leakage"], "ppm/A"),
     ]
     if settling_bias is not None:
-        rows.append(gum.BudgetRow(
-            "settling transient left after the discard", settling_bias.estimate,
-            settling_bias.standard_uncertainty, "A", "B", settling_bias.distribution,
-            -1e6 * v / (g * i0 * f), settling_bias.degrees_of_freedom, "ppm/A", settling_bias.note))
+        rows.append(_chain_row("settling transient left after the discard", settling_bias, "A",
+                               c["settling_bias"], "ppm/A"))
     notes = []
     if ch.is_ideal:
         notes.append("ideal ammeter assumed: no calibration data for the ammeter chain were given, "
@@ -646,26 +678,11 @@ def precision_budget(
     notes.extend(type_a.notes)
     budget = gum.combine("(I − n·e·f)/(n·e·f)", "ppm", d, rows,
                          coverage_probability=coverage_probability, notes=notes)
-    ta = ChainInput(x_ind, type_a.standard_uncertainty, "t", type_a.degrees_of_freedom)
-    samplers = {
-        "indicated": _sampler(ta),
-        "gain_correction": _sampler(ch.gain_correction),
-        "gain_drift": _sampler(ch.gain_drift),
-        "voltmeter_correction": _sampler(ch.voltmeter_correction),
-        "frequency_correction": _sampler(ch.frequency_correction),
-        "leakage": _sampler(ch.leakage_current),
-    }
-    if settling_bias is not None:
-        samplers["settling_bias"] = _sampler(settling_bias)
-
-    def model(**kw: np.ndarray) -> np.ndarray:
-        return deviation_ppm_model(frequency_hz=frequency_hz,
-                                   electrons_per_cycle=electrons_per_cycle, **kw)
-
     uc = budget.combined_standard_uncertainty
     tol = validation_tolerance(uc) if uc > 0 else None
-    mc = gum.monte_carlo(model, samplers, seed, coverage_probability, draws=monte_carlo_draws,
-                         tolerance=tol, batch=100_000, max_draws=5_000_000)
+    mc = gum.monte_carlo(model, _samplers(type_a, ch, settling_bias), seed, coverage_probability,
+                         draws=monte_carlo_draws, tolerance=tol, batch=100_000,
+                         max_draws=5_000_000)
     return PrecisionResult(d, current, i0, budget, validate_with_monte_carlo(budget, mc), type_a, ch)
 
 

@@ -48,10 +48,13 @@ the discard, and a late window follows the slowest component there.
 Correction and choice of the discard (the correction variant of "fit the asymptotic levels with
 the shared transient"). At a discard d — never less than the operator's stated settling time, nor
 than the start of the last fit's window — each resolved fit predicts b̂(d) with a jackknife
-uncertainty; an unresolved fit predicts nothing (τ is not fixed) and contributes an allowance of
-estimate zero whose standard uncertainty is the largest fixed-τ jackknife u(b̂_τ(d)) over its τ
-range. The fit allowing the largest |b̂| + t_{0.975,G−1} u sets the correction and its budget row;
-d is the candidate that minimises the combined u(d)² + u(b̂(d))².
+uncertainty; the resolved fit allowing the largest |b̂| + t_{0.975,G−1} u sets the correction.
+An unresolved fit predicts nothing (τ is not fixed): its allowance is the largest fixed-τ
+jackknife u(b̂_τ(d)) over its τ range, and when that exceeds the correction's own uncertainty it
+becomes the uncertainty of the budget row, the estimate staying the resolved fits' b̂ (the late
+window saw no significant transient, which is evidence about the size of the tail, not that it is
+zero; taking it as zero under-corrected a tail the earlier fits had measured). d is the
+candidate that minimises the combined u(d)² + u(b̂(d))².
 
 Refusals: a resolved fit whose τ reaches the top of its range (a quarter of the segment, at most
 half the window): the transient may be slower still and the segments cannot outlast it; or an
@@ -317,8 +320,14 @@ class TransientComponent:
     tau_u_s: float
     resolved: bool
     at_limit: bool  # τ̂ at the top of the searched range: the transient may be slower still
+    # τ̂ at the bottom of the searched range: the transient is over within one reading interval,
+    # so its shape (τ, and the amplitude, which is only the first reading's step) is not
+    # resolved; the fit still marks where the readings are clear of it, and its tail beyond
+    # that is below the noise of one stacked position.
+    at_floor: bool = False
     # For an unresolved fit: fits at fixed τ across the searched range, each with its jackknife.
     alternatives: tuple[tuple[TransientFit, tuple[TransientFit, ...]], ...] = ()
+    tau_floor_s: float = 0.0  # the smallest τ searched
 
     @property
     def hypotheses(self) -> tuple[tuple[TransientFit, tuple[TransientFit, ...]], ...]:
@@ -333,7 +342,10 @@ class TransientComponent:
             "amplitude_after_switch_off_A": f.amplitude_off_a,
             "amplitude_after_switch_off_u_A": self.amplitude_off_u_a,
             "time_constant_s": f.tau_s, "time_constant_u_s": self.tau_u_s,
-            "resolved": self.resolved, "time_constant_at_search_limit": self.at_limit,
+            "resolved": self.resolved and not self.at_floor,
+            "time_constant_at_search_limit": self.at_limit,
+            "time_constant_below_reading_resolution": self.at_floor,
+            "time_constant_search_floor_s": self.tau_floor_s,
         }
 
 
@@ -363,10 +375,12 @@ class SettlingAnalysis:
         return self.components[0].resolved
 
     def describe(self) -> str:
-        f = self.fit
+        shaped = [c for c in self.components if c.resolved and not c.at_floor]
+        first = (f"first resolved fit: τ = {shaped[0].fit.tau_s:.3g} s" if shaped else
+                 "no transient resolved beyond the first reading")
         return (f"readings within {self.discard_s:g} s after each pump switch dropped, the discard "
-                f"chosen from the settling transient measured in the record (first fit: τ = "
-                f"{f.tau_s:.3g} s; {len(self.components)} fit(s) in all)")
+                f"chosen from the settling transient measured in the record ({first}; "
+                f"{len(self.components)} fit(s) in all)")
 
     def as_dict(self) -> dict:
         return {
@@ -433,7 +447,9 @@ def _component(rec: StackedRecord, start: float) -> TransientComponent | None:
         alternatives = tuple((full[k], tuple(r[k] for r in reps_by_block))
                              for k in range(taus.size))
     return TransientComponent(fit, reps, ua, uo, ut, resolved,
-                              bool(fit.tau_s >= 0.95 * grid[-1]), alternatives)
+                              bool(fit.tau_s >= 0.95 * grid[-1]),
+                              at_floor=bool(fit.tau_s <= 1.05 * grid[0]),
+                              alternatives=alternatives, tau_floor_s=float(grid[0]))
 
 
 def _fixed(sums: list[_Sums], taus: np.ndarray, leave_out: int | None, start: float
@@ -457,16 +473,17 @@ def choose_discard(
     practice, no source); peeling stops at the first fit that is not resolved. The discard is
     never shorter than the start of the last fit's window, so that every kept reading lies
     inside every window used. At each discard d the fit that allows the largest residual bias
-    |b̂(d)| + t u(b̂(d)) (eq. 2, jackknife u) sets the correction: a fast component fitted over the
+    |b̂(d)| + t u(b̂(d)) (eq. 2, jackknife u) among the resolved ones sets the correction: a fast
+    component fitted over the
     whole segment cannot hide a slower one a later window saw, and a later window whose fit
     wandered to a short τ cannot hide the slow tail an earlier fit measured. Among the discards
     allowed, the one chosen minimises the standard uncertainty of the corrected result,
     u(d)² + u(b̂(d))², u(d) the Type A (and chain) uncertainty with readings before d dropped.
     The mean difference is corrected by b̂(d).
 
-    A fit that is not resolved leaves τ open and is not corrected for: each τ of the searched
-    range (at fixed τ the fit is linear) is a hypothesis, and the largest jackknife u(b̂_τ) over
-    them is the standard uncertainty of its allowance (estimate zero).
+    A fit that is not resolved leaves τ open and corrects nothing: each τ of the searched range
+    (at fixed τ the fit is linear) is a hypothesis, and the largest jackknife u(b̂_τ) over them is
+    its allowance, which replaces the correction's uncertainty when it is larger.
 
     Refused (SettlingError) when a resolved fit's τ reaches the top of the searched range (the
     transient may be slower still), or when, at the chosen discard, the transient's uncertainty exceeds the
@@ -516,21 +533,26 @@ def choose_discard(
     def evaluate(d: float) -> tuple[float, float, float, float, float]:
         weights, u = weights_and_u(d)
         sw = _stack_weights(rec, weights)
-        # The component that allows the largest residual bias sets the correction.
+        # The resolved fit that allows the largest residual bias sets the correction; an
+        # unresolved fit widens its uncertainty to its allowance but does not move its estimate.
         worst = None
         for c in used:
-            if c.resolved:
-                bs = residual_biases(rec, [c.fit, *c.replicates], d, sw)
-                b, ub = float(bs[0]), _jackknife_u(bs[1:])
-            else:
-                # Not resolved: no correction, an allowance as large as the worst τ allows.
-                b = 0.0
-                ub = 0.0
-                for _, reps in c.alternatives:
-                    ub = max(ub, _jackknife_u(residual_biases(rec, list(reps), d, sw)))
+            if not c.resolved:
+                continue
+            bs = residual_biases(rec, [c.fit, *c.replicates], d, sw)
+            b, ub = float(bs[0]), _jackknife_u(bs[1:])
             if worst is None or abs(b) + tq * ub > abs(worst[0]) + tq * worst[1]:
                 worst = (b, ub, c)
-        b, ub, c = worst
+        b, ub, c = worst if worst is not None else (0.0, 0.0, None)
+        for a in used:
+            if a.resolved:
+                continue
+            # Not resolved: τ is open, so every τ of the range is a hypothesis; the largest
+            # jackknife u over them is the allowance.
+            allowance = max(_jackknife_u(residual_biases(rec, list(reps), d, sw))
+                            for _, reps in a.alternatives)
+            if allowance > ub:
+                ub, c = allowance, a
         return (d, b, ub, u, c, math.hypot(u, ub))
 
     # Every candidate when there are few; else every k-th, then all between the best one's

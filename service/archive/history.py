@@ -40,7 +40,7 @@ from analysis import curve_comparison as cc
 from analysis import drift
 from analysis import intervals as iv
 from analysis.sensors import CalibrationCurve
-from service.calibrations.sensor import CertificateError, curve_from_record
+from service.record.sensor_curve import CertificateError, curve_from_record
 
 KIND_CBT = "cbt_thermometry"
 KIND_SENSOR = "sensor_calibration"
@@ -307,30 +307,16 @@ def _max_change(policy: Mapping[str, Any], key: str, reference: float) -> float 
 def _analyse_series(
     series: Series, policy: Mapping[str, Any], today: date, departures: bool = True
 ) -> dict[str, Any]:
+    """One tracked quantity: its points, drift models, departures and trend, the prediction
+    for today and the recall interval the policy gives."""
     h = series.history()
     analysis = drift.analyse_drift(h)
-    last = series.dates[-1]
     out: dict[str, Any] = {
         "key": series.key,
         "name": series.name,
         "unit": series.unit,
         "note": series.note,
-        "points": [
-            {
-                "certificate_id": cid,
-                "date": d.isoformat(),
-                "value": v,
-                "standard_uncertainty": u,
-                "expanded_uncertainty": 2.0 * u,
-            }
-            for cid, d, v, u in zip(
-                series.certificate_ids,
-                series.dates,
-                series.values,
-                series.uncertainties,
-                strict=True,
-            )
-        ],
+        "points": _points(series),
         "criterion": analysis.criterion,
         "chosen_model": analysis.chosen.kind,
         "models": [_model_dict(m) for m in analysis.candidates],
@@ -356,7 +342,7 @@ def _analyse_series(
     out["changed"] = trend.changed
     out["changed_reasons"] = list(trend.reasons)
     if h.n >= 2 and h.span_days > 0:
-        predict_at = max(today, last)
+        predict_at = max(today, series.dates[-1])
         p = analysis.chosen.predict(float(predict_at.toordinal()))
         out["prediction"] = {
             "date": predict_at.isoformat(),
@@ -366,36 +352,58 @@ def _analyse_series(
             "coverage_factor": p.coverage_factor,
             "model": analysis.chosen.kind,
         }
-    interval: dict[str, Any] | None = None
-    max_change = _max_change(policy, series.key, series.values[-1])
-    model = analysis.interval_model
-    if max_change is not None and model is not None:
-        r = iv.drift_interval(
-            model,
-            max_change,
-            reliability_target=float(policy["reliability_target"]),
-            maximum_interval_days=float(policy["maximum_interval_days"]),
-            minimum_interval_days=float(policy["minimum_interval_days"]),
-        )
-        interval = {
-            "method": r.method,
-            "interval_days": r.interval_days,
-            "limited_by": r.limited_by,
-            "unlimited_interval_days": None
-            if math.isinf(r.unlimited_interval_days)
-            else r.unlimited_interval_days,
-            "max_permissible_change": max_change,
-            "reliability_target": r.reliability_target,
-            "model": r.model,
-            "note": r.note,
-        }
-    elif max_change is None:
-        out["notes"].append("no maximum permissible change stated for this quantity")
-    else:
-        out["notes"].append("one calibration date only: no drift interval yet")
-    out["interval"] = interval
+    out["interval"] = _interval(series, analysis, policy, out["notes"])
     out["_analysis"] = analysis
     return out
+
+
+def _points(series: Series) -> list[dict[str, Any]]:
+    return [
+        {
+            "certificate_id": cid,
+            "date": d.isoformat(),
+            "value": v,
+            "standard_uncertainty": u,
+            "expanded_uncertainty": 2.0 * u,
+        }
+        for cid, d, v, u in zip(
+            series.certificate_ids, series.dates, series.values, series.uncertainties, strict=True
+        )
+    ]
+
+
+def _interval(
+    series: Series, analysis: Any, policy: Mapping[str, Any], notes: list[str]
+) -> dict[str, Any] | None:
+    """The recall interval of one quantity from its drift model and the policy's maximum
+    permissible change (None, with a note saying why, when there is none)."""
+    max_change = _max_change(policy, series.key, series.values[-1])
+    model = analysis.interval_model
+    if max_change is None:
+        notes.append("no maximum permissible change stated for this quantity")
+        return None
+    if model is None:
+        notes.append("one calibration date only: no drift interval yet")
+        return None
+    r = iv.drift_interval(
+        model,
+        max_change,
+        reliability_target=float(policy["reliability_target"]),
+        maximum_interval_days=float(policy["maximum_interval_days"]),
+        minimum_interval_days=float(policy["minimum_interval_days"]),
+    )
+    return {
+        "method": r.method,
+        "interval_days": r.interval_days,
+        "limited_by": r.limited_by,
+        "unlimited_interval_days": None
+        if math.isinf(r.unlimited_interval_days)
+        else r.unlimited_interval_days,
+        "max_permissible_change": max_change,
+        "reliability_target": r.reliability_target,
+        "model": r.model,
+        "note": r.note,
+    }
 
 
 def _sensor_series(
@@ -555,40 +563,15 @@ def build_history(
     for kind in kinds:
         of_kind = [e for e in in_force if e.kind == kind]
         if kind == KIND_CBT:
-            ec = Series("charging_energy", "charging energy E_C", "K")
-            gt = Series("asymptotic_conductance", "asymptotic conductance G_T", "S")
-            for e in of_kind:
-                q = _cbt_quantities(e.record)
-                if "charging_energy" in q:
-                    ec.add(e.certificate_id, e.calibration_date, *q["charging_energy"])
-                if "asymptotic_conductance" in q:
-                    gt.add(e.certificate_id, e.calibration_date, *q["asymptotic_conductance"])
-            series += [s for s in (ec, gt) if s.values]
+            series += _cbt_series(of_kind)
         elif kind == KIND_SENSOR:
-            curves: dict[str, CalibrationCurve] = {}
-            for e in of_kind:
-                try:
-                    curves[e.certificate_id] = curve_from_record(dict(e.record), e.certificate_id)
-                except CertificateError as exc:
-                    notes.append(f"{exc}; left out of the curve comparison")
+            curves = _sensor_curves(of_kind, notes)
             sensor_series, sensor_notes = _sensor_series(of_kind, curves)
             series += sensor_series
             notes += sensor_notes
             differences += _curve_differences(of_kind, curves, policy)
         elif kind == KIND_PUMP:
-            found: dict[str, Series] = {}
-            for e in of_kind:
-                for key, (v, u, label) in _pump_quantities(e.record).items():
-                    base = key.split("|", 1)[0]
-                    if key not in found:
-                        name = (
-                            f"relative deviation from n·e·f, {label}"
-                            if base == "deviation"
-                            else f"working-point gate voltage, {label}"
-                        )
-                        found[key] = Series(base, name, "ppm" if base == "deviation" else "V")
-                    found[key].add(e.certificate_id, e.calibration_date, v, u)
-            series += list(found.values())
+            series += _pump_series(of_kind)
     analysed = [_analyse_series(s, policy, today, departures) for s in series if s.values]
     last_date = max((e.calibration_date for e in in_force), default=None)
     recall = _recall(analysed, policy, last_date, today, bool(in_force))
@@ -606,6 +589,50 @@ def build_history(
         "changed": any(q["changed"] for q in analysed) or any(d.get("differ") for d in differences),
     }
 
+
+
+def _cbt_series(entries: list[CertificateEntry]) -> list[Series]:
+    """A CBT's charging energy and asymptotic conductance over its certificates."""
+    ec = Series("charging_energy", "charging energy E_C", "K")
+    gt = Series("asymptotic_conductance", "asymptotic conductance G_T", "S")
+    for e in entries:
+        q = _cbt_quantities(e.record)
+        if "charging_energy" in q:
+            ec.add(e.certificate_id, e.calibration_date, *q["charging_energy"])
+        if "asymptotic_conductance" in q:
+            gt.add(e.certificate_id, e.calibration_date, *q["asymptotic_conductance"])
+    return [s for s in (ec, gt) if s.values]
+
+
+def _sensor_curves(
+    entries: list[CertificateEntry], notes: list[str]
+) -> dict[str, CalibrationCurve]:
+    """Each sensor certificate's curve; one that cannot be rebuilt is noted and left out."""
+    curves: dict[str, CalibrationCurve] = {}
+    for e in entries:
+        try:
+            curves[e.certificate_id] = curve_from_record(dict(e.record), e.certificate_id)
+        except CertificateError as exc:
+            notes.append(f"{exc}; left out of the curve comparison")
+    return curves
+
+
+def _pump_series(entries: list[CertificateEntry]) -> list[Series]:
+    """A pump's deviation from n·e·f and working-point gate voltage, one series per
+    operating point."""
+    found: dict[str, Series] = {}
+    for e in entries:
+        for key, (v, u, label) in _pump_quantities(e.record).items():
+            base = key.split("|", 1)[0]
+            if key not in found:
+                name = (
+                    f"relative deviation from n·e·f, {label}"
+                    if base == "deviation"
+                    else f"working-point gate voltage, {label}"
+                )
+                found[key] = Series(base, name, "ppm" if base == "deviation" else "V")
+            found[key].add(e.certificate_id, e.calibration_date, v, u)
+    return list(found.values())
 
 def _recall(
     analysed: list[dict[str, Any]],

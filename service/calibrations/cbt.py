@@ -11,7 +11,7 @@ from __future__ import annotations
 from collections.abc import Callable
 from dataclasses import dataclass, replace
 
-from scipy import stats
+from scipy import special
 
 from analysis.cbt.choice import ModelChoice, fit_sweep_chosen
 from analysis.cbt.fit import (
@@ -307,7 +307,8 @@ def _fit_piece(piece, report: Progress) -> SweepWork:
 
 
 def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = False) -> CalibrationOutcome:
-    """Analyse every sweep of a thermometry run independently (each with its own derived seed)."""
+    """Analyse every sweep of a thermometry run independently (each with its own derived seed),
+    then, for sweeps of one device, fit them together with a shared charging energy."""
     manifest = run.manifest
     p = manifest_number(manifest, "run.coverage_probability", 0.95)
     inputs = type_b_inputs(manifest, p)
@@ -319,33 +320,8 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
     settings = fit_settings(manifest, fast)
     sweeps = [f for f in run.files if is_cbt_sweep(f)]
     outcome = CalibrationOutcome(results=[])
-    # Sweeps are independent (each with its own seed, seed + k): fitted side by side on worker
-    # processes, with identical results whatever their number (service/calibrations/parallel.py).
-    done = [0.0] * len(sweeps)
-
-    def sub(k: int, frac: float, step: str) -> None:
-        done[k] = frac
-        if progress:
-            progress(0.95 * sum(done) / len(sweeps), f"{sweeps[k].name}: {step}")
-
-    pieces = [(f, seed + k, settings, heating, background) for k, f in enumerate(sweeps)]
-    works = run_pieces(_fit_piece, pieces, sub)
-    notes: list[str | None] = [None] * len(works)
-    if one_device(works):
-        if progress:
-            progress(0.96, "global fit with a shared charging energy")
-        try:
-            g, notes = apply_global(works)
-        except ValueError as exc:
-            outcome.deviations.append(f"global fit not applied ({exc}); temperatures are from independent fits")
-        else:
-            outcome.sections["global_fit"] = global_section(g, works)
-            p_val = float(stats.chi2.sf(g.consistency_chi2, g.consistency_dof))
-            if p_val < 1e-3:
-                outcome.deviations.append(
-                    f"the independent charging energies disagree (chi2 = {g.consistency_chi2:.1f} for "
-                    f"{g.consistency_dof} degrees of freedom, p = {p_val:.1e}); ΔE may have drifted between sweeps"
-                )
+    works = _fit_sweeps(sweeps, seed, settings, heating, background, progress)
+    notes = _global_fit(works, outcome, progress)
     for w, note in zip(works, notes, strict=True):
         if w.fit.u > w.shape.max_u:
             raise CertificationRefused(
@@ -361,6 +337,72 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
         "walkers": settings.walkers,
         "max_steps": settings.max_steps,
     }
+    _state_deviations(outcome, sweeps, inputs, heating, fast)
+    outcome.method = {**METHOD, "models": sorted({r["model"] for r in outcome.results})}
+    outcome.conditions = {
+        "sweeps": [
+            {"file": f.name, **{k: v for k, v in f.metadata.items()}} for f in sweeps
+        ]
+    }
+    return outcome
+
+
+METHOD = {
+    "name": "Coulomb-blockade primary thermometry",
+    "description": (
+        "Each conductance-versus-bias sweep is fitted with the weak-blockade dip of Pekola et al., "
+        "PRL 73, 2903 (1994) with the higher-order corrections of Farhangfar et al., J. Low Temp. "
+        "Phys. 108, 191 (1997) or, where the charging energy is too large for that series, with the "
+        "full orthodox sequential-tunnelling model (master equation), averaged over the lock-in "
+        "excitation. The temperature follows from the dip's width; its posterior is sampled by MCMC "
+        "(emcee) and combined with Type B inputs "
+        "in a GUM budget (JCGM 100:2008)."
+    ),
+}
+
+
+def _fit_sweeps(sweeps, seed: int, settings, heating, background: bool, progress: Progress | None):
+    """Each sweep fitted on its own, with seed + k for the k-th sweep.
+
+    Sweeps are independent: fitted side by side on worker processes, with identical results
+    whatever their number (service/calibrations/parallel.py)."""
+    done = [0.0] * len(sweeps)
+
+    def sub(k: int, frac: float, step: str) -> None:
+        done[k] = frac
+        if progress:
+            progress(0.95 * sum(done) / len(sweeps), f"{sweeps[k].name}: {step}")
+
+    pieces = [(f, seed + k, settings, heating, background) for k, f in enumerate(sweeps)]
+    return run_pieces(_fit_piece, pieces, sub)
+
+
+def _global_fit(works, outcome: CalibrationOutcome, progress: Progress | None) -> list[str | None]:
+    """For sweeps of one device, the fit with a shared charging energy (its section and any
+    deviation go into ``outcome``); returns each sweep's note on it (None: not applied)."""
+    notes: list[str | None] = [None] * len(works)
+    if not one_device(works):
+        return notes
+    if progress:
+        progress(0.96, "global fit with a shared charging energy")
+    try:
+        g, notes = apply_global(works)
+    except ValueError as exc:
+        outcome.deviations.append(f"global fit not applied ({exc}); temperatures are from independent fits")
+        return [None] * len(works)
+    outcome.sections["global_fit"] = global_section(g, works)
+    p_val = float(special.chdtrc(g.consistency_dof, g.consistency_chi2))
+    if p_val < 1e-3:
+        outcome.deviations.append(
+            f"the independent charging energies disagree (chi2 = {g.consistency_chi2:.1f} for "
+            f"{g.consistency_dof} degrees of freedom, p = {p_val:.1e}); ΔE may have drifted between sweeps"
+        )
+    return notes
+
+
+def _state_deviations(outcome: CalibrationOutcome, sweeps, inputs, heating, fast: bool) -> None:
+    """What the certificate must say was not the standard procedure: a quick-look convergence
+    rule, every defaulted budget input with the value assumed, a differentiated DC I–V."""
     if fast:
         outcome.deviations.append(
             "quick-look convergence rule (chain ≥ 20 autocorrelation times) used; not for issue"
@@ -372,22 +414,3 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
                 outcome.deviations.append(text)
     if any("current_A" in f.columns and "conductance_S" not in f.columns for f in sweeps):
         outcome.deviations.append("conductance obtained by numerical differentiation of a DC I–V")
-    outcome.method = {
-        "name": "Coulomb-blockade primary thermometry",
-        "description": (
-            "Each conductance-versus-bias sweep is fitted with the weak-blockade dip of Pekola et al., "
-            "PRL 73, 2903 (1994) with the higher-order corrections of Farhangfar et al., J. Low Temp. "
-            "Phys. 108, 191 (1997) or, where the charging energy is too large for that series, with the "
-            "full orthodox sequential-tunnelling model (master equation), averaged over the lock-in "
-            "excitation. The temperature follows from the dip's width; its posterior is sampled by MCMC "
-            "(emcee) and combined with Type B inputs "
-            "in a GUM budget (JCGM 100:2008)."
-        ),
-        "models": sorted({r["model"] for r in outcome.results}),
-    }
-    outcome.conditions = {
-        "sweeps": [
-            {"file": f.name, **{k: v for k, v in f.metadata.items()}} for f in sweeps
-        ]
-    }
-    return outcome

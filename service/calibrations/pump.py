@@ -516,17 +516,59 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
         outcome.results.append(entry)
         outcome.plots.update(plots)
         conditions.append(cond)
-        buf = io.StringIO()
-        buf.write("# cycle differences of " + f.name + "; times are the mean times of the on readings\n")
-        buf.write("cycle,time_s,delta_current_A,off_weight\n")
-        for j, (tj, dj, wj) in enumerate(zip(res.cycles.times, res.cycles.differences,
-                                             res.cycles.weights, strict=True), start=1):
-            buf.write(f"{j},{tj!r},{dj!r},{wj!r}\n")
-        outcome.extra_files[f"cycles_{f.name}"] = buf.getvalue().encode("utf-8")
+        outcome.extra_files[f"cycles_{f.name}"] = cycles_csv(f.name, res.cycles)
     if progress:
         progress(1.0, "done")
-
     item = manifest.get("item", {}).get("identifier") or manifest.get("item", {}).get("description") or "(not named)"
+    pump_info = _pump_information(item, manifest, chain, conditions)
+    stmt = statement(str(item), outcome.results, scan_sections, rate, chain.is_ideal, conditions)
+    outcome.sections = {"statement": stmt, "pump": pump_info, "plateau_scans": scan_sections,
+                        "error_counting": None if rate is None else rate.as_dict()}
+    scan_conditions = [{"file": s["file"], "kind": s["kind"], "frequency_Hz": s["frequency_Hz"],
+                        "electrons_per_cycle": s["electrons_per_cycle"]} for s in scan_sections]
+    # "sweeps" is the list the certificate renders under conditions of measurement.
+    outcome.conditions = {"pump": pump_info, "records": conditions,
+                          "sweeps": conditions + scan_conditions}
+    _state_deviations(outcome, chain, fast)
+    outcome.method = {**METHOD, "models": [P.DECAY_CASCADE, P.THERMAL] if scans else []}
+    return outcome
+
+
+METHOD = {
+    "name": "Electron-pump verification",
+    "description": (
+        "Precision records: the pump is switched on and off; the settling transient after each "
+        "switch is fitted to the segments stacked on their switch, readings within the discard "
+        "it calls for are dropped, the transient left in the kept readings is corrected for with "
+        "its own uncertainty, and each on segment is compared with the off segments "
+        "on either side, which cancels a linear offset drift (Giblin et al., Nat. Commun. 3, 930 "
+        "(2012)). The mean cycle difference, with a Type A uncertainty that allows for "
+        "autocorrelation (Zhang, Metrologia 43, S276 (2006)), passes through the ammeter chain's "
+        "measurement equation; the relative deviation from n·e·f (e exact in the SI) is "
+        "budgeted by the GUM (JCGM 100:2008) and validated by a Monte Carlo propagation "
+        "(JCGM 101:2008). Plateau scans are fitted with the decay-cascade model (Kashcheyevs & "
+        "Kaestner, PRL 104, 186805 (2010)) and a thermal step model (Fricke et al., PRL 110, "
+        "126803 (2013)), compared by the Bayesian information criterion, sampled by MCMC "
+        "(emcee), and the flattest point of the plateau is reported as the working point."
+    ),
+}
+
+
+def cycles_csv(name: str, cycles) -> bytes:
+    """The per-cycle differences of one record, as the certificate's extra file keeps them."""
+    buf = io.StringIO()
+    buf.write("# cycle differences of " + name + "; times are the mean times of the on readings\n")
+    buf.write("cycle,time_s,delta_current_A,off_weight\n")
+    for j, (tj, dj, wj) in enumerate(zip(cycles.times, cycles.differences,
+                                         cycles.weights, strict=True), start=1):
+        buf.write(f"{j},{float(tj)!r},{float(dj)!r},{float(wj)!r}\n")
+    return buf.getvalue().encode("utf-8")
+
+
+def _pump_information(
+    item: str, manifest: dict, chain: R.AmmeterChain, conditions: list[dict]
+) -> dict:
+    """The pump section: item, the manifest's [pump] values, operating point, ammeter chain."""
     pump_info = {"item": item}
     pump_info.update({k: v for k, v in manifest.get("pump", {}).items()
                       if isinstance(v, str | int | float)})
@@ -536,14 +578,11 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
         pump_info.setdefault("electrons_per_cycle", first["electrons_per_cycle"])
     pump_info["ammeter chain"] = (chain.description or chain.kind) if not chain.is_ideal else \
         "ideal ammeter assumed (no [ammeter] calibration data in run.toml)"
-    stmt = statement(str(item), outcome.results, scan_sections, rate, chain.is_ideal, conditions)
-    outcome.sections = {"statement": stmt, "pump": pump_info, "plateau_scans": scan_sections,
-                        "error_counting": None if rate is None else rate.as_dict()}
-    scan_conditions = [{"file": s["file"], "kind": s["kind"], "frequency_Hz": s["frequency_Hz"],
-                        "electrons_per_cycle": s["electrons_per_cycle"]} for s in scan_sections]
-    # "sweeps" is the list the certificate renders under conditions of measurement.
-    outcome.conditions = {"pump": pump_info, "records": conditions,
-                          "sweeps": conditions + scan_conditions}
+    return pump_info
+
+
+def _state_deviations(outcome: CalibrationOutcome, chain: R.AmmeterChain, fast: bool) -> None:
+    """An ideal ammeter, quick-look settings and every record's warnings, as deviations."""
     if chain.is_ideal:
         outcome.deviations.append(
             "ideal ammeter assumed: run.toml has no [ammeter] calibration data, so the budget "
@@ -555,23 +594,3 @@ def analyse(run: Run, seed: int, progress: Progress | None = None, fast: bool = 
     for r in outcome.results:
         for w in r["diagnostics"]["warnings"]:
             outcome.deviations.append(f"{r['sweep']}: {w}")
-    outcome.method = {
-        "name": "Electron-pump verification",
-        "description": (
-            "Precision records: the pump is switched on and off; the settling transient after each "
-            "switch is fitted to the segments stacked on their switch, readings within the discard "
-            "it calls for are dropped, the transient left in the kept readings is corrected for with "
-            "its own uncertainty, and each on segment is compared with the off segments "
-            "on either side, which cancels a linear offset drift (Giblin et al., Nat. Commun. 3, 930 "
-            "(2012)). The mean cycle difference, with a Type A uncertainty that allows for "
-            "autocorrelation (Zhang, Metrologia 43, S276 (2006)), passes through the ammeter chain's "
-            "measurement equation; the relative deviation from n·e·f (e exact in the SI) is "
-            "budgeted by the GUM (JCGM 100:2008) and validated by a Monte Carlo propagation "
-            "(JCGM 101:2008). Plateau scans are fitted with the decay-cascade model (Kashcheyevs & "
-            "Kaestner, PRL 104, 186805 (2010)) and a thermal step model (Fricke et al., PRL 110, "
-            "126803 (2013)), compared by the Bayesian information criterion, sampled by MCMC "
-            "(emcee), and the flattest point of the plateau is reported as the working point."
-        ),
-        "models": [P.DECAY_CASCADE, P.THERMAL] if scans else [],
-    }
-    return outcome

@@ -23,7 +23,7 @@ from datetime import datetime
 from pathlib import Path
 
 import numpy as np
-from scipy import stats
+from scipy import special
 
 from analysis import scales, sensors
 from service.calibrations import cbt as thermometry
@@ -39,6 +39,7 @@ from service.intake import (
 )
 from service.intake.table import iso_datetime
 from service.record.results import result_entry
+from service.record.sensor_curve import CertificateError, curve_from_record, curve_record
 from service.record.terms import CALIBRATION_TABLE_HEADER, CRITERION_NAMES
 
 Progress = Callable[[float, str], None]
@@ -278,73 +279,6 @@ def points_from_cbt(
     )
 
 
-# --------------------------------------------------------------------------------------------
-# Curve <-> record
-
-
-def curve_record(curve: sensors.CalibrationCurve) -> dict:
-    """The curve as plain data: everything needed to rebuild it for secondary use."""
-    return {
-        "form": "ln(T/K) = sum_j c_j T_j(x), x = [2 ln R - (ln R_max + ln R_min)] / (ln R_max - ln R_min)",
-        "basis": "Chebyshev polynomials of the first kind (numpy.polynomial.chebyshev)",
-        "degree": curve.degree,
-        "coefficients": [float(c) for c in curve.coefficients],
-        "ln_resistance_min": curve.ln_resistance_min,
-        "ln_resistance_max": curve.ln_resistance_max,
-        "covariance": curve.covariance.tolist(),
-        "covariance_parts": [
-            {
-                "name": p.name,
-                "type": p.kind,
-                "degrees_of_freedom": None
-                if math.isinf(p.degrees_of_freedom)
-                else p.degrees_of_freedom,
-                "correlated_across_points": p.correlated_across_points,
-                "note": p.note,
-                "covariance": p.covariance.tolist(),
-            }
-            for p in curve.covariance_parts
-        ],
-    }
-
-
-class CertificateError(ValueError):
-    """A certificate that does not hold a usable sensor calibration curve."""
-
-
-def curve_from_record(record: dict, source: str = "certificate.json") -> sensors.CalibrationCurve:
-    """Rebuild the calibration curve stored in a sensor-calibration certificate record."""
-    if record.get("job") != "sensor_calibration":
-        raise CertificateError(
-            f"{source}: this certificate is for job {record.get('job')!r}, not a sensor calibration"
-        )
-    try:
-        c = record["sections"]["sensor_calibration"]["curve"]
-        parts = tuple(
-            sensors.CovariancePart(
-                name=p["name"],
-                covariance=np.array(p["covariance"], dtype=float),
-                kind=p["type"],
-                degrees_of_freedom=math.inf
-                if p["degrees_of_freedom"] is None
-                else float(p["degrees_of_freedom"]),
-                correlated_across_points=bool(p["correlated_across_points"]),
-                note=p.get("note", ""),
-            )
-            for p in c["covariance_parts"]
-        )
-        return sensors.CalibrationCurve(
-            np.array(c["coefficients"], dtype=float),
-            float(c["ln_resistance_min"]),
-            float(c["ln_resistance_max"]),
-            parts,
-        )
-    except (KeyError, TypeError, ValueError) as exc:
-        raise CertificateError(
-            f"{source}: the sensor-calibration curve is missing or malformed ({exc})"
-        ) from None
-
-
 def _table_bytes(resistance: np.ndarray, temperature: np.ndarray, expanded: np.ndarray) -> bytes:
     out = io.StringIO()
     out.write(CALIBRATION_TABLE_HEADER + "\n")
@@ -580,7 +514,7 @@ def _fit_curve(data, settings: SensorSettings):
     except sensors.CalibrationFitError as exc:
         raise CertificationRefused(f"calibration curve: {exc}") from None
     if fit.degrees_of_freedom > 0:
-        p_value = float(stats.chi2.sf(fit.chi_squared, fit.degrees_of_freedom))
+        p_value = float(special.chdtrc(fit.degrees_of_freedom, fit.chi_squared))
         if p_value < REFUSE_CHI2_P_VALUE:
             # Enlarging by the Birge ratio covers random excess scatter, not a curve that cannot
             # follow the points: that needs more points, a fixed higher degree or a look at the

@@ -72,6 +72,12 @@ def _existing_app(args: argparse.Namespace, **config):
 
 
 def add_commands(subparsers: argparse._SubParsersAction) -> None:
+    for add in (_add_serve, _add_work, _add_add_admin, _add_new_token, _add_verify, _add_reproduce):
+        add(subparsers)
+
+
+def _add_serve(subparsers: argparse._SubParsersAction) -> None:
+    """`coldcert serve`: the web pages and JSON API on this machine."""
     p = subparsers.add_parser(
         "serve", help="run the calibration service (web pages + JSON API) on this machine"
     )
@@ -94,7 +100,7 @@ def add_commands(subparsers: argparse._SubParsersAction) -> None:
         default=None,
         metavar="ADDRESS",
         help="address of a reverse proxy in front of this server whose X-Forwarded-For/-Proto/"
-        "-Host headers are to be trusted (e.g. 127.0.0.1)",
+        "-Host headers are to be trusted (e.g. 127.0.0.1); default: the TRUSTED_PROXY setting",
     )
     p.add_argument(
         "--development-server",
@@ -109,6 +115,9 @@ def add_commands(subparsers: argparse._SubParsersAction) -> None:
     )
     p.set_defaults(handler=_serve)
 
+
+def _add_work(subparsers: argparse._SubParsersAction) -> None:
+    """`coldcert work`: analysis workers without a web server."""
     p = subparsers.add_parser(
         "work",
         help="run analysis workers only (no web server), e.g. on another machine: with a broker "
@@ -133,6 +142,9 @@ def add_commands(subparsers: argparse._SubParsersAction) -> None:
     )
     p.set_defaults(handler=_work)
 
+
+def _add_add_admin(subparsers: argparse._SubParsersAction) -> None:
+    """`coldcert add-admin`: the first (or another) administrator."""
     p = subparsers.add_parser("add-admin", help="create an administrator account")
     _add_instance(p)
     p.add_argument("username")
@@ -144,12 +156,18 @@ def add_commands(subparsers: argparse._SubParsersAction) -> None:
     )
     p.set_defaults(handler=_add_admin)
 
+
+def _add_new_token(subparsers: argparse._SubParsersAction) -> None:
+    """`coldcert new-token`: an API token for a user."""
     p = subparsers.add_parser("new-token", help="create an API token for a user (shown once)")
     _add_instance(p)
     p.add_argument("username")
     p.add_argument("--label", default="")
     p.set_defaults(handler=_new_token)
 
+
+def _add_verify(subparsers: argparse._SubParsersAction) -> None:
+    """`coldcert verify`: one certificate, an exported file, or the whole archive."""
     p = subparsers.add_parser(
         "verify",
         help="check a certificate's signature, hash chain and raw files "
@@ -167,6 +185,9 @@ def add_commands(subparsers: argparse._SubParsersAction) -> None:
     _add_read_only(p)
     p.set_defaults(handler=_verify)
 
+
+def _add_reproduce(subparsers: argparse._SubParsersAction) -> None:
+    """`coldcert reproduce`: re-run an archived analysis and compare."""
     p = subparsers.add_parser(
         "reproduce",
         help="re-run an archived certificate's analysis from its archived raw data and compare "
@@ -180,13 +201,18 @@ def add_commands(subparsers: argparse._SubParsersAction) -> None:
 
 def _serve(args: argparse.Namespace) -> int:
     options = {"fast": True} if args.quick else {}
-    app = _app(
-        args,
-        START_WORKERS=True,
-        WORKERS=args.workers,
-        ANALYSIS_OPTIONS=options,
-        READ_ONLY=args.read_only,
-    )
+    proxy = {"TRUSTED_PROXY": args.proxy} if args.proxy else {}
+    try:
+        app = _app(
+            args,
+            START_WORKERS=True,
+            WORKERS=args.workers,
+            ANALYSIS_OPTIONS=options,
+            READ_ONLY=args.read_only,
+            **proxy,
+        )
+    except ValueError as exc:
+        raise CommandError(str(exc)) from None
     services = app.extensions["coldcert"]
     print(f"coldcert: instance {app.instance_path}", file=sys.stderr)
     print(f"coldcert: lab public key {services.key.key_id}", file=sys.stderr)
@@ -210,7 +236,8 @@ def _serve(args: argparse.Namespace) -> int:
         else:
             from service.web.server import production_server
 
-            production_server(app, args.host, args.port, args.threads, args.proxy).run()
+            proxy_address = app.config.get("TRUSTED_PROXY")
+            production_server(app, args.host, args.port, args.threads, proxy_address).run()
     finally:
         services.stop_workers()
     return 0

@@ -185,7 +185,38 @@ def _parse_header(name: str, line: str, header_line: int) -> list[str]:
 
 
 def parse_csv(name: str, raw: bytes) -> DataFile:
-    """Parse one data file, refusing anything malformed with file, line and field named."""
+    """Parse one data file, refusing anything malformed with file, line and field named.
+
+    The file is: metadata lines (``# key: value``, comments and blank lines), a header row of
+    column names with their units, then rows of numbers (comment and blank lines skipped)."""
+    lines = _text_lines(name, raw)
+    metadata, metadata_lines, free, i = _parse_metadata(name, lines)
+    if i >= len(lines):
+        raise IntakeError("no header row found (expected e.g. 'bias_V,conductance_S')", file=name)
+    header_line = i + 1
+    header = _parse_header(name, lines[i], header_line)
+    if len(set(header)) != len(header):
+        dup = next(h for h in header if header.count(h) > 1)
+        raise IntakeError("column appears twice in the header", file=name, line=header_line, field=dup)
+    values, first = _parse_rows(name, lines, i + 1, header)
+    if not values:
+        raise IntakeError("the file has a header but no data rows", file=name, line=header_line)
+    arr = np.array(values, dtype=float)
+    return DataFile(
+        name=name,
+        raw=raw,
+        sha256=sha256_hex(raw),
+        metadata=metadata,
+        metadata_lines=metadata_lines,
+        columns={h: arr[:, k].copy() for k, h in enumerate(header)},
+        header_line=header_line,
+        first_data_line=first + 1,
+        free_text=free,
+    )
+
+
+def _text_lines(name: str, raw: bytes) -> list[str]:
+    """The file's lines, once it is known to be non-empty, not too large, UTF-8 text."""
     if len(raw) == 0:
         raise IntakeError("the file is empty", file=name)
     if len(raw) > MAX_FILE_BYTES:
@@ -196,7 +227,12 @@ def parse_csv(name: str, raw: bytes) -> DataFile:
         text = raw.decode("utf-8-sig")
     except UnicodeDecodeError as exc:
         raise IntakeError(f"not UTF-8 text (byte {exc.start})", file=name) from None
-    lines = text.splitlines()
+    return text.splitlines()
+
+
+def _parse_metadata(name: str, lines: list[str]) -> tuple[dict, dict, dict, int]:
+    """The ``# key: value`` lines before the header: (metadata, the line of each key, free
+    comments, index of the first line after them). Every key must be in the intake table."""
     metadata: dict = {}
     metadata_lines: dict = {}
     free: dict = {}
@@ -218,34 +254,44 @@ def parse_csv(name: str, raw: bytes) -> DataFile:
             )
         if key in metadata:
             raise IntakeError("this key is given twice", file=name, line=i, field=key)
-        spec = METADATA_KEYS.get(key)
-        if spec is None:
-            close = difflib.get_close_matches(key, METADATA_KEYS.keys(), n=1, cutoff=0.8)
-            if close:
-                raise IntakeError(f"unknown key; did you mean {close[0]!r}?", file=name, line=i, field=key)
-            # The table holds every kind's keys, so a key it lacks is a mistake, not free text.
-            raise IntakeError(
-                "unknown key; write remarks as '# note: …' or as a comment line without ':' "
-                "(the keys are listed in docs/formats.md)",
-                file=name, line=i, field=key,
-            )
+        spec = _metadata_spec(name, i, key)
         try:
             metadata[key] = spec.parse(value)
         except ValueError as exc:
             raise IntakeError(str(exc), file=name, line=i, field=key) from None
         metadata_lines[key] = i
-    if i >= len(lines):
-        raise IntakeError("no header row found (expected e.g. 'bias_V,conductance_S')", file=name)
-    header_line = i + 1
-    header = _parse_header(name, lines[i], header_line)
-    if len(set(header)) != len(header):
-        dup = next(h for h in header if header.count(h) > 1)
-        raise IntakeError("column appears twice in the header", file=name, line=header_line, field=dup)
+    return metadata, metadata_lines, free, i
+
+
+def _metadata_spec(name: str, line: int, key: str):
+    """The intake table's entry for a metadata key, or an error suggesting the closest key."""
+    spec = METADATA_KEYS.get(key)
+    if spec is not None:
+        return spec
+    close = difflib.get_close_matches(key, METADATA_KEYS.keys(), n=1, cutoff=0.8)
+    if close:
+        raise IntakeError(f"unknown key; did you mean {close[0]!r}?", file=name, line=line, field=key)
+    # The table holds every kind's keys, so a key it lacks is a mistake, not free text.
+    raise IntakeError(
+        "unknown key; write remarks as '# note: …' or as a comment line without ':' "
+        "(the keys are listed in docs/formats.md)",
+        file=name, line=line, field=key,
+    )
+
+
+def _parse_rows(
+    name: str, lines: list[str], start: int, header: list[str]
+) -> tuple[list[list[float]], int]:
+    """The data rows from line index ``start`` on: finite numbers, one per column; returns them
+    and the index of the first data line (comment and blank lines between rows are skipped)."""
     values: list[list[float]] = []
-    for j in range(i + 1, len(lines)):
+    first = None
+    for j in range(start, len(lines)):
         line = lines[j]
         if not line.strip() or line.lstrip().startswith("#"):
             continue
+        if first is None:
+            first = j
         cells = [c.strip() for c in line.split(",")]
         if len(cells) != len(header):
             raise IntakeError(
@@ -262,22 +308,7 @@ def parse_csv(name: str, raw: bytes) -> DataFile:
                 raise IntakeError(f"value must be finite, got {cell!r}", file=name, line=j + 1, field=col)
             row.append(v)
         values.append(row)
-    if not values:
-        raise IntakeError("the file has a header but no data rows", file=name, line=header_line)
-    arr = np.array(values, dtype=float)
-    # Data rows may be interleaved with skipped comment lines; record the first data line only.
-    first = next(j for j in range(i + 1, len(lines)) if lines[j].strip() and not lines[j].lstrip().startswith("#"))
-    return DataFile(
-        name=name,
-        raw=raw,
-        sha256=sha256_hex(raw),
-        metadata=metadata,
-        metadata_lines=metadata_lines,
-        columns={h: arr[:, k].copy() for k, h in enumerate(header)},
-        header_line=header_line,
-        first_data_line=first + 1,
-        free_text=free,
-    )
+    return values, (first if first is not None else start)
 
 
 # --------------------------------------------------------------------------------------------

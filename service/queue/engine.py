@@ -39,6 +39,7 @@ from sqlalchemy import func, select
 from sqlalchemy.exc import OperationalError
 
 from service import storage as st
+from service.archive import log_event
 from service.queue.jobs import (
     WorkerSettings,
     _host_id,
@@ -68,10 +69,13 @@ class EngineSettings:
     visibility_timeout: float | None = None
     #: Retries of a delivery that failed for a transient reason (database unreachable).
     max_retries: int = 3
+    #: Seconds between the soft limit (the fit is asked to stop) and the hard one (its process
+    #: is killed, for a fit stuck where it cannot be interrupted, e.g. inside a C library).
+    hard_grace: float = 30.0
 
     @property
     def hard_time_limit(self) -> float:
-        return self.time_limit + 30.0
+        return self.time_limit + self.hard_grace
 
     @property
     def effective_visibility_timeout(self) -> float:
@@ -120,8 +124,19 @@ def make_celery(engine: EngineSettings, worker: WorkerSettings) -> Any:
         coldcert_worker=asdict(worker),
     )
 
+    limit = engine.time_limit
+
+    class JobTask(app.Task):  # type: ignore[name-defined,misc]
+        def on_failure(self, exc, task_id, args, kwargs, einfo):  # noqa: ANN001
+            # Celery calls this in the worker's main process when the hard limit killed the
+            # process running the fit; without it the job would stay "running" until the
+            # stale-heartbeat check re-queued it, to be killed again.
+            if type(exc).__name__ == "TimeLimitExceeded" and args:
+                fail_overrun_job(self.app, str(args[0]), limit)
+
     @app.task(
         name=TASK_NAME,
+        base=JobTask,
         bind=True,
         autoretry_for=(OperationalError,),
         max_retries=engine.max_retries,
@@ -170,6 +185,30 @@ def run_delivered_job(app: Any, job_id: str) -> str:
         return "skipped"
     execute(ctx.storage, ctx.archive, job, worker, ctx.certify, ctx.load_run, ctx.settings.options)
     return "ran"
+
+
+def fail_overrun_job(app: Any, job_id: str, limit: float) -> bool:
+    """Fail a job whose process the hard time limit killed; False if it was no longer running.
+
+    Whoever held the job is gone (the pool process was killed), so the row is failed whatever its
+    holder, but only while it is still "running": a job that finished, or was already re-queued
+    by the stale-heartbeat check, is left alone."""
+    ctx = _context(app)
+    reason = (
+        f"the analysis ran longer than the per-job time limit ({limit:g} s), did not stop when "
+        "asked, and its process was ended"
+    )
+    with ctx.storage.write() as conn:
+        result = conn.execute(
+            st.jobs.update()
+            .where((st.jobs.c.id == job_id) & (st.jobs.c.status == "running"))
+            .values(status="failed", error=reason, finished_at=utc_now(), step="stopped")
+        )
+        if result.rowcount != 1:
+            return False
+        log_event(conn, "service", "job.failed", job_id, {"error": reason})
+    logger.error("job %s: %s", job_id, reason)
+    return True
 
 
 class EngineQueue:

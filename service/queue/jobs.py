@@ -14,6 +14,7 @@ job is failed with the reason, so a run that kills its worker cannot loop for ev
 
 from __future__ import annotations
 
+import contextlib
 import importlib
 import json
 import logging
@@ -366,6 +367,28 @@ def execute(
     """Run one claimed job to the end, recording success or the reason for failure."""
     options = dict(options or {})
     progress = ProgressReporter(storage, job["id"], worker)
+    with _heartbeat(progress):
+        try:
+            with storage.read() as conn:
+                run = conn.execute(select(st.runs).where(st.runs.c.id == job["run_id"])).one()
+                requester = conn.execute(
+                    select(st.users).where(st.users.c.id == job["requested_by"])
+                ).one()
+            if job["purpose"] == "certify":
+                _draft(storage, archive, job, worker, run, requester, certify, load_run, options,
+                       progress)
+            elif job["purpose"] == "reproduce":
+                _reproduce(storage, archive, job, worker, requester, certify, load_run, progress)
+            else:
+                raise ValueError(f"unknown job purpose {job['purpose']!r}")
+        except Exception as exc:
+            _record_failure(storage, job, worker, exc, progress.latest[1])
+
+
+@contextlib.contextmanager
+def _heartbeat(progress: ProgressReporter):
+    """Re-write the job's progress (and so its heartbeat) every HEARTBEAT_SECONDS meanwhile,
+    so that a long fit is not taken for a dead worker."""
     beat_stop = threading.Event()
 
     def heartbeat() -> None:
@@ -375,67 +398,92 @@ def execute(
     beater = threading.Thread(target=heartbeat, daemon=True)
     beater.start()
     try:
-        with storage.read() as conn:
-            run = conn.execute(select(st.runs).where(st.runs.c.id == job["run_id"])).one()
-            files = archive.run_files(conn, run.id)
-            requester = conn.execute(
-                select(st.users).where(st.users.c.id == job["requested_by"])
-            ).one()
-        if job["purpose"] == "certify":
-            progress(0.0, "loading the archived raw files")
-            with storage.blobs.scratch("job") as tmp:
-                folder = archive.materialise_run(files, Path(tmp) / "run")
-                loaded = load_run(folder)
-                output = analysis_output(certify(loaded, run.seed, progress, **options))
-            progress(1.0, "writing the draft certificate")
-            with storage.write() as conn:
-                cert_id = archive.create_draft(
-                    conn,
-                    run_id=run.id,
-                    record=output.record,
-                    seed=run.seed,
-                    software=software_versions(),
-                    submitter=dict(requester._mapping),
-                    replaces=run.replaces,
-                    amendment_reason=run.amendment_reason,
-                    options=options,
-                    plots=output.plots,
-                    extra_files=output.extra_files,
-                    html_sections=output.html_sections,
-                    job_id=job["id"],
-                )
-                _finish(conn, job["id"], worker, {"certificate_id": cert_id}, cert_id)
-        elif job["purpose"] == "reproduce":
-            report = archive.reproduce(job["certificate_id"], certify, load_run, progress)
-            with storage.write() as conn:
-                _finish(conn, job["id"], worker, report.as_dict(), job["certificate_id"])
-                log_event(
-                    conn,
-                    requester.username,
-                    "certificate.reproduced",
-                    job["certificate_id"],
-                    {"identical": report.identical, "mismatches": len(report.mismatches)},
-                )
-        else:
-            raise ValueError(f"unknown job purpose {job['purpose']!r}")
-    except Exception as exc:
-        logger.warning("job %s failed: %s", job["id"], exc)
-        reason = _failure_reason(exc)
-        with storage.write() as conn:
-            conn.execute(
-                st.jobs.update()
-                .where(and_(st.jobs.c.id == job["id"], st.jobs.c.claimed_by == worker))
-                .values(
-                    status="failed",
-                    error=reason,
-                    finished_at=utc_now(),
-                    step=f"failed during: {progress.latest[1]}",
-                )
-            )
-            log_event(conn, "service", "job.failed", job["id"], {"error": reason})
+        yield
     finally:
         beat_stop.set()
         beater.join(timeout=5)
+
+
+def _draft(
+    storage: Storage,
+    archive: Archive,
+    job: Mapping[str, Any],
+    worker: str,
+    run: Any,
+    requester: Any,
+    certify: Callable[..., Any],
+    load_run: Callable[[Path], Any],
+    options: dict[str, Any],
+    progress: ProgressReporter,
+) -> None:
+    """A certify job: analyse the run's archived raw files and store the draft certificate."""
+    with storage.read() as conn:
+        files = archive.run_files(conn, run.id)
+    progress(0.0, "loading the archived raw files")
+    with storage.blobs.scratch("job") as tmp:
+        folder = archive.materialise_run(files, Path(tmp) / "run")
+        loaded = load_run(folder)
+        output = analysis_output(certify(loaded, run.seed, progress, **options))
+    progress(1.0, "writing the draft certificate")
+    with storage.write() as conn:
+        cert_id = archive.create_draft(
+            conn,
+            run_id=run.id,
+            record=output.record,
+            seed=run.seed,
+            software=software_versions(),
+            submitter=dict(requester._mapping),
+            replaces=run.replaces,
+            amendment_reason=run.amendment_reason,
+            options=options,
+            plots=output.plots,
+            extra_files=output.extra_files,
+            job_id=job["id"],
+        )
+        _finish(conn, job["id"], worker, {"certificate_id": cert_id}, cert_id)
+
+
+def _reproduce(
+    storage: Storage,
+    archive: Archive,
+    job: Mapping[str, Any],
+    worker: str,
+    requester: Any,
+    certify: Callable[..., Any],
+    load_run: Callable[[Path], Any],
+    progress: ProgressReporter,
+) -> None:
+    """A reproduce job: re-run an archived analysis and keep the comparison as the result."""
+    report = archive.reproduce(job["certificate_id"], certify, load_run, progress)
+    with storage.write() as conn:
+        _finish(conn, job["id"], worker, report.as_dict(), job["certificate_id"])
+        log_event(
+            conn,
+            requester.username,
+            "certificate.reproduced",
+            job["certificate_id"],
+            {"identical": report.identical, "mismatches": len(report.mismatches)},
+        )
+
+
+def _record_failure(
+    storage: Storage, job: Mapping[str, Any], worker: str, exc: Exception, step: str
+) -> None:
+    """Mark the job failed with the reason and the step it failed in (if it is still ours)."""
+    logger.warning("job %s failed: %s", job["id"], exc)
+    reason = _failure_reason(exc)
+    with storage.write() as conn:
+        conn.execute(
+            st.jobs.update()
+            .where(and_(st.jobs.c.id == job["id"], st.jobs.c.claimed_by == worker))
+            .values(
+                status="failed",
+                error=reason,
+                finished_at=utc_now(),
+                step=f"failed during: {step}",
+            )
+        )
+        log_event(conn, "service", "job.failed", job["id"], {"error": reason})
 
 
 def _failure_reason(exc: BaseException) -> str:

@@ -86,6 +86,9 @@ RELATES_ONLY = "The results relate only to the item calibrated, as received and 
 
 
 def software_versions() -> dict:
+    """Versions of everything that decides the numbers of an analysis (recorded in every
+    certificate and with every archived draft, so a reproduction can say what differs)."""
+
     def v(name: str) -> str:
         try:
             return importlib_metadata.version(name)
@@ -98,6 +101,7 @@ def software_versions() -> dict:
         "numpy": v("numpy"),
         "scipy": v("scipy"),
         "emcee": v("emcee"),
+        "uncertainties": v("uncertainties"),
     }
 
 

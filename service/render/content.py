@@ -527,14 +527,28 @@ _VALIDATION_WORDS = {True: "validated", False: "NOT validated",
 def _settling_blocks(st: Mapping[str, Any], i0: float) -> list[Block]:
     """The settling transient measured from the record: fits, discard, correction
     (analysis.pump.settling)."""
-    rows = tuple(
-        (f"{c['fit_window_start_s']:g}",
-         f"{c['amplitude_after_switch_on_A'] * 1e15:.3g} ± {c['amplitude_after_switch_on_u_A'] * 1e15:.2g}",
-         f"{c['amplitude_after_switch_off_A'] * 1e15:.3g} ± {c['amplitude_after_switch_off_u_A'] * 1e15:.2g}",
-         f"{c['time_constant_s']:.3g} ± {c['time_constant_u_s']:.2g}",
-         "yes" if c["resolved"] else "no")
-        for c in st["components"]
-    )
+    comps = st["components"]
+
+    def amp(c: Mapping[str, Any], key: str) -> str:
+        # Each amplitude in a unit that fits it: a fit that follows the whole step (the ammeter's
+        # own response just after a switch) reads in pA and as a share of n·e·f, not as 1e4 fA.
+        a, u = c[key], c[key.replace("_A", "_u_A")]
+        if abs(a) < 1e-12:
+            return f"{a * 1e15:.3g} ± {u * 1e15:.2g} fA"
+        return f"{a * 1e12:.3g} ± {u * 1e12:.2g} pA ({100 * a / i0:+.3g} % of n·e·f)"
+
+    def row(c: Mapping[str, Any]) -> tuple[str, ...]:
+        w = f"{c['fit_window_start_s']:g}"
+        if c.get("time_constant_below_reading_resolution"):
+            # τ at the bottom of the search: only the first reading's step is seen, no shape.
+            floor_s = c.get("time_constant_search_floor_s", 0.0)
+            return (w, "no resolvable transient", "(over within one reading)",
+                    f"< {floor_s:.2g}" if floor_s else "—", "no: faster than the readings")
+        return (w, amp(c, "amplitude_after_switch_on_A"), amp(c, "amplitude_after_switch_off_A"),
+                f"{c['time_constant_s']:.3g} ± {c['time_constant_u_s']:.2g}",
+                "yes" if c["resolved"] else "no")
+
+    rows = tuple(row(c) for c in comps)
     b, ub = st["residual_bias_A"], st["residual_bias_u_A"]
     floor = (f" (at least the stated {st['minimum_discard_s']:g} s)"
              if st["minimum_discard_s"] > 0 else "")
@@ -543,10 +557,11 @@ def _settling_blocks(st: Mapping[str, Any], i0: float) -> list[Block]:
         Text(f"Readings within {st['discard_s']:g} s after each switch were dropped{floor}. The "
              f"transient left in the kept readings, {b * 1e15:+.3g} ± {ub * 1e15:.2g} fA "
              f"({b / i0 * 1e6:+.3g} ± {ub / i0 * 1e6:.2g} ppm of n·e·f), is corrected for and its "
-             "uncertainty is a row of the budget (a fit that is not resolved is not corrected for; "
-             "it gives an allowance). Each fit is A·exp(−(t − w)/τ) after switch-on and after "
+             "uncertainty is a row of the budget (the correction comes from the resolved fits; a fit "
+             "that is not resolved corrects nothing and widens that uncertainty to its "
+             "allowance). Each fit is A·exp(−(t − w)/τ) after switch-on and after "
              "switch-off with a shared τ, fitted to the segments stacked on their switch from w "
              f"on; uncertainties by jackknife over {st['jackknife_blocks']} blocks of segments."),
-        Grid(("fitted from w (s)", "A after switch-on at w (fA)", "A after switch-off at w (fA)",
+        Grid(("fitted from w (s)", "A after switch-on at w", "A after switch-off at w",
               "τ (s)", "resolved"), rows, frozenset({0, 1, 2, 3})),
     ]

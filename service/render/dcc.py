@@ -258,12 +258,32 @@ def _location(parent, address: Any) -> None:
 
 
 def render_dcc(record: Mapping[str, Any]) -> bytes:
-    """The DCC 3.3.0 XML document of an issued certificate record (UTF-8 bytes)."""
+    """The DCC 3.3.0 XML document of an issued certificate record (UTF-8 bytes).
+
+    The administrative data come in the schema's order (software, core data, items,
+    laboratory, responsible persons, customer, statements), then the measurement results."""
     check_complete(record)
     root = etree.Element(f"{{{DCC_NS}}}digitalCalibrationCertificate", nsmap=NSMAP)
     root.set("schemaVersion", SCHEMA_VERSION)
     admin = _el(root, "dcc:administrativeData")
+    _software(admin)
+    _core_data(admin, record)
+    _item(admin, record.get("item") or {})
+    lab = record.get("laboratory") or {}
+    contact = _el(_el(admin, "dcc:calibrationLaboratory"), "dcc:contact")
+    _text(contact, "dcc:name", lab.get("name") or "not stated")
+    _location(contact, lab.get("address"))
+    _responsible_persons(admin, record.get("people") or {})
+    customer = record.get("customer") or {}
+    customer_el = _el(admin, "dcc:customer")
+    _text(customer_el, "dcc:name", customer.get("name") or "not stated")
+    _location(customer_el, customer.get("address"))
+    _statements(admin, record)
+    _measurement_results(root, record)
+    return etree.tostring(root, xml_declaration=True, encoding="UTF-8", pretty_print=True)
 
+
+def _software(admin) -> None:
     software = _el(_el(admin, "dcc:dccSoftware"), "dcc:software")
     _text(software, "dcc:name", "coldcert")
     try:
@@ -272,6 +292,9 @@ def render_dcc(record: Mapping[str, Any]) -> bytes:
         release = "unknown"
     _el(software, "dcc:release", release)
 
+
+def _core_data(admin, record: Mapping[str, Any]) -> None:
+    """Country, languages, identifier, dates and the revision it amends."""
     lab = record.get("laboratory") or {}
     dates = record.get("dates") or {}
     core = _el(admin, "dcc:coreData")
@@ -295,7 +318,8 @@ def render_dcc(record: Mapping[str, Any]) -> bytes:
         _el(change, "dcc:typeOfChange", "amended")
         _el(change, "dcc:replacedUniqueIdentifier", _nonempty(record["replaces"]))
 
-    item = record.get("item") or {}
+
+def _item(admin, item: Mapping[str, Any]) -> None:
     item_el = _el(_el(admin, "dcc:items"), "dcc:item")
     _text(item_el, "dcc:name", item.get("description") or item.get("name") or "not stated")
     if item.get("condition"):
@@ -307,11 +331,8 @@ def render_dcc(record: Mapping[str, Any]) -> bytes:
     _el(identification, "dcc:issuer", "customer")
     _el(identification, "dcc:value", _nonempty(item.get("identifier") or "not stated"))
 
-    contact = _el(_el(admin, "dcc:calibrationLaboratory"), "dcc:contact")
-    _text(contact, "dcc:name", lab.get("name") or "not stated")
-    _location(contact, lab.get("address"))
 
-    people = record.get("people") or {}
+def _responsible_persons(admin, people: Mapping[str, Any]) -> None:
     persons = _el(admin, "dcc:respPersons")
     approver = _el(persons, "dcc:respPerson")
     _text(_el(approver, "dcc:person"), "dcc:name", people.get("approver") or "not stated")
@@ -322,11 +343,9 @@ def render_dcc(record: Mapping[str, Any]) -> bytes:
         _text(_el(operator, "dcc:person"), "dcc:name", people["operator"])
         _el(operator, "dcc:role", "performed the measurement")
 
-    customer = record.get("customer") or {}
-    customer_el = _el(admin, "dcc:customer")
-    _text(customer_el, "dcc:name", customer.get("name") or "not stated")
-    _location(customer_el, customer.get("address"))
 
+def _statements(admin, record: Mapping[str, Any]) -> None:
+    """Traceability, the record's statements and deviations, and the lifecycle notices."""
     statements = [str(s) for s in record.get("statements") or []]
     if record.get("traceability"):
         statements.insert(0, "Traceability: " + str(record["traceability"]))
@@ -345,6 +364,8 @@ def render_dcc(record: Mapping[str, Any]) -> bytes:
             declaration = _el(_el(statement_list, "dcc:statement"), "dcc:declaration")
             _el(declaration, "dcc:content", _nonempty(text), lang="en")
 
+
+def _measurement_results(root, record: Mapping[str, Any]) -> None:
     method = record.get("method") or {}
     results_root = _el(root, "dcc:measurementResults")
     measurement = _el(results_root, "dcc:measurementResult")
@@ -359,23 +380,27 @@ def render_dcc(record: Mapping[str, Any]) -> bytes:
             _text(_el(used, "dcc:usedMethod"), "dcc:name", model)
     results_el = _el(measurement, "dcc:results")
     for result in record["results"]:
-        result_el = _el(results_el, "dcc:result")
-        label = str(result.get("name") or "result")
-        if result.get("sweep"):
-            label += f" ({result['sweep']})"
-        _text(result_el, "dcc:name", label)
-        quantity = _el(_el(result_el, "dcc:data"), "dcc:quantity")
-        real = _el(quantity, "si:real")
-        unit = result["unit"]
-        _el(real, "si:label", _nonempty(result.get("quantity") or result.get("name")))
-        # The same digits as the printed certificate (GUM 7.2.6: two significant digits of U,
-        # the value rounded to match); the unrounded numbers stay in the JSON record.
-        reported = result.get("reported") or {}
-        _el(real, "si:value", si_value(reported.get("value", result["value"]), unit))
-        _el(real, "si:unit", si_unit(unit))
-        mu = _el(_el(real, "si:measurementUncertaintyUnivariate"), "si:expandedMU")
-        expanded = reported.get("expanded_uncertainty", result["expanded_uncertainty"])
-        _el(mu, "si:valueExpandedMU", si_value(expanded, unit))
-        _el(mu, "si:coverageFactor", repr(float(result["coverage_factor"])))
-        _el(mu, "si:coverageProbability", repr(float(result["coverage_probability"])))
-    return etree.tostring(root, xml_declaration=True, encoding="UTF-8", pretty_print=True)
+        _result(results_el, result)
+
+
+def _result(results_el, result: Mapping[str, Any]) -> None:
+    """One result as a D-SI real with its expanded uncertainty."""
+    result_el = _el(results_el, "dcc:result")
+    label = str(result.get("name") or "result")
+    if result.get("sweep"):
+        label += f" ({result['sweep']})"
+    _text(result_el, "dcc:name", label)
+    quantity = _el(_el(result_el, "dcc:data"), "dcc:quantity")
+    real = _el(quantity, "si:real")
+    unit = result["unit"]
+    _el(real, "si:label", _nonempty(result.get("quantity") or result.get("name")))
+    # The same digits as the printed certificate (GUM 7.2.6: two significant digits of U,
+    # the value rounded to match); the unrounded numbers stay in the JSON record.
+    reported = result.get("reported") or {}
+    _el(real, "si:value", si_value(reported.get("value", result["value"]), unit))
+    _el(real, "si:unit", si_unit(unit))
+    mu = _el(_el(real, "si:measurementUncertaintyUnivariate"), "si:expandedMU")
+    expanded = reported.get("expanded_uncertainty", result["expanded_uncertainty"])
+    _el(mu, "si:valueExpandedMU", si_value(expanded, unit))
+    _el(mu, "si:coverageFactor", repr(float(result["coverage_factor"])))
+    _el(mu, "si:coverageProbability", repr(float(result["coverage_probability"])))

@@ -49,6 +49,9 @@ DEFAULTS: dict[str, Any] = {
     "BROKER_URL": None,
     # Distributed queue: seconds a job may run before it is stopped and failed.
     "JOB_TIME_LIMIT": 3600,
+    # Distributed queue: seconds after the time limit before a fit that does not stop when asked
+    # has its process ended (the job is then failed at once, not left "running").
+    "JOB_STOP_GRACE": 30,
     # Distributed queue: seconds before Redis re-delivers a message whose worker vanished;
     # None = JOB_TIME_LIMIT + 330 s. Must exceed the longest job.
     "BROKER_VISIBILITY_TIMEOUT": None,
@@ -75,8 +78,14 @@ DEFAULTS: dict[str, Any] = {
     # The laboratory's copy of the DCC 3.3.0 dcc.xsd; when set (here or by COLDCERT_DCC_SCHEMA),
     # every DCC rendering is validated against it before it is served.
     "DCC_SCHEMA": None,
-    # Reverse proxies in front of the service whose X-Forwarded-For/-Proto/-Host headers are
-    # believed (0: none); with TLS ending at the proxy, 1 lets cookies be marked Secure.
+    # The reverse proxy in front of `coldcert serve` (its address, e.g. "127.0.0.1"): the server
+    # believes its X-Forwarded-For/-Proto/-Host headers and removes them from anyone else.
+    # `coldcert serve --proxy ADDRESS` sets it too. With TLS ending at the proxy, cookies are
+    # then marked Secure.
+    "TRUSTED_PROXY": None,
+    # Only for another WSGI server than `coldcert serve` (which checks the proxy's address):
+    # how many proxies' X-Forwarded-* headers to believe, whoever sent them (0: none). Setting
+    # both this and TRUSTED_PROXY is refused: the headers would be applied twice.
     "TRUSTED_PROXIES": 0,
     # Open the instance for reading only (an audit copy); also chosen when the folder or the
     # database file cannot be written. Changes answer 503; nothing is created.
@@ -88,7 +97,7 @@ DEFAULTS: dict[str, Any] = {
 
 class _SessionInterface(SecureCookieSessionInterface):
     """Session cookies carry ``Secure`` whenever the request came over TLS (directly, or through
-    a reverse proxy counted in ``TRUSTED_PROXIES``), so a cookie set over https is never sent in clear."""
+    the reverse proxy of ``TRUSTED_PROXY``), so a cookie set over https is never sent in clear."""
 
     def get_cookie_secure(self, app: Flask) -> bool:
         return bool(super().get_cookie_secure(app) or (has_request_context() and request.is_secure))
@@ -192,6 +201,7 @@ def engine_settings(config: Mapping[str, Any]) -> EngineSettings:
     return EngineSettings(
         broker_url=str(config["BROKER_URL"]),
         time_limit=float(config.get("JOB_TIME_LIMIT") or 3600),
+        hard_grace=float(config.get("JOB_STOP_GRACE") or 30),
         visibility_timeout=float(timeout) if timeout is not None else None,
     )
 
@@ -278,6 +288,11 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     instance = Path(app.instance_path)
     app.config.update(load_config(instance, config))
     proxies = int(app.config.get("TRUSTED_PROXIES") or 0)
+    if proxies > 0 and app.config.get("TRUSTED_PROXY"):
+        raise ValueError(
+            "configuration: TRUSTED_PROXY (the proxy's address, for `coldcert serve`) and "
+            "TRUSTED_PROXIES (a count, for another WSGI server) are both set; set only one"
+        )
     if proxies > 0:
         from werkzeug.middleware.proxy_fix import ProxyFix
 
@@ -291,29 +306,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     if not app.config.get("SECRET_KEY"):
         app.config["SECRET_KEY"] = _secret_key(instance, read_only)
 
-    settings = worker_settings(app.config, instance)
-    storage = settings.open_storage(read_only=read_only)
-    storage.create_schema()
-    # Raw data a killed process left in temporary folders (an upload being checked, a fit).
-    storage.blobs.clean_scratch()
-    if read_only:
-        key = LabKey.load_for_reading(instance / "keys")
-    else:
-        key = LabKey.load_or_create(instance / "keys")
-    try:
-        trusted = [bytes.fromhex(h) for h in app.config.get("TRUSTED_PUBLIC_KEYS", ())]
-    except ValueError:
-        raise ValueError("TRUSTED_PUBLIC_KEYS must list Ed25519 public keys as hex") from None
-    archive = Archive(
-        storage,
-        key,
-        number_prefix=app.config["CERTIFICATE_PREFIX"],
-        trusted_public_keys=trusted,
-    )
-    settings.public_keys = [key.public_raw.hex(), *settings.public_keys]
-    services = Services(storage, archive, key, settings)
-    if app.config["BROKER_URL"]:
-        services.engine = EngineQueue(storage, settings, engine_settings(app.config))
+    services = _open_services(app.config, instance, read_only)
     app.extensions["coldcert"] = services
 
     from service.web import api, auth, history, pages, public
@@ -323,6 +316,44 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     app.register_blueprint(pages.bp)
     app.register_blueprint(history.bp)
     public.init_app(app)
+
+    _install_handlers(app, instance, read_only)
+    if app.config["START_WORKERS"] and not read_only:
+        services.start_workers(app.config["WORKERS"])
+        atexit.register(services.stop_workers)
+    return app
+
+
+def _open_services(config: Mapping[str, Any], instance: Path, read_only: bool) -> Services:
+    """Storage (schema migrated, scratch cleaned), the lab key, the archive and the queue."""
+    settings = worker_settings(config, instance)
+    storage = settings.open_storage(read_only=read_only)
+    storage.create_schema()
+    # Raw data a killed process left in temporary folders (an upload being checked, a fit).
+    storage.blobs.clean_scratch()
+    if read_only:
+        key = LabKey.load_for_reading(instance / "keys")
+    else:
+        key = LabKey.load_or_create(instance / "keys")
+    try:
+        trusted = [bytes.fromhex(h) for h in config.get("TRUSTED_PUBLIC_KEYS", ())]
+    except ValueError:
+        raise ValueError("TRUSTED_PUBLIC_KEYS must list Ed25519 public keys as hex") from None
+    archive = Archive(
+        storage,
+        key,
+        number_prefix=config["CERTIFICATE_PREFIX"],
+        trusted_public_keys=trusted,
+    )
+    settings.public_keys = [key.public_raw.hex(), *settings.public_keys]
+    services = Services(storage, archive, key, settings)
+    if config["BROKER_URL"]:
+        services.engine = EngineQueue(storage, settings, engine_settings(config))
+    return services
+
+
+def _install_handlers(app: Flask, instance: Path, read_only: bool) -> None:
+    """Error pages and JSON errors, security headers, and the read-only refusal."""
 
     @app.errorhandler(HTTPException)
     def _http_error(exc: HTTPException):
@@ -375,8 +406,3 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
                 return response
             return render_template("error.html", code=503, message=message), 503
         return None
-
-    if app.config["START_WORKERS"] and not read_only:
-        services.start_workers(app.config["WORKERS"])
-        atexit.register(services.stop_workers)
-    return app

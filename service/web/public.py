@@ -8,7 +8,7 @@ state (issued, superseded by which revision, withdrawn and why). Nothing else is
 
 Each check is throttled per client address by Flask-Limiter (in-memory counters by default;
 ``RATELIMIT_STORAGE_URI`` names a shared store such as Redis when several server processes
-answer). Behind a reverse proxy, configure werkzeug's ProxyFix so that the client address is the
+answer). Behind a reverse proxy, name it in ``TRUSTED_PROXY`` so that the client address is the
 customer's and not the proxy's. Loading the empty page is not counted.
 """
 
