@@ -2,7 +2,7 @@
 
     .venv/bin/python benchmarks/bench_cbt_models.py [--per-u K]
     .venv/bin/python benchmarks/bench_cbt_models.py --strong [--per-u 20] [--n 3]
-    .venv/bin/python benchmarks/bench_cbt_models.py --stray [--per-u 20] [--n 3]
+    .venv/bin/python benchmarks/bench_cbt_models.py --stray [--per-u 20] [--n 3] [--c0 0.1 0.2] [--u 1 3 4.5]
 
 ``--strong`` runs the recovery campaign in strong blockade instead (u = 3.5, 4, 4.5, within the
 full model's validated u <= 5 for N <= 6), reporting per u the fraction of fits whose expanded
@@ -75,16 +75,21 @@ def main() -> None:
     ap.add_argument("--strong", action="store_true", help="u = 3.5-4.5 campaign only")
     ap.add_argument("--stray", action="store_true",
                     help="C_0/C = 0.1, 0.2 campaign (u = 1, 3, 4.5) only")
+    ap.add_argument("--c0", type=float, nargs="+", default=[0.1, 0.2],
+                    help="with --stray: the C_0/C values")
+    ap.add_argument("--u", type=float, nargs="+", default=None,
+                    help="with --strong or --stray: the u values (defaults 3.5 4 4.5 / 1 3 4.5)")
     ap.add_argument("--n", type=int, default=3, help="junctions in the simulated chain")
     args = ap.parse_args()
     n, T = args.n, 0.02
     settings = FitSettings()
     if args.strong:
-        strong_campaign(n, T, args.per_u, settings)
+        strong_campaign(n, T, args.per_u, settings, us=tuple(args.u or (3.5, 4.0, 4.5)))
         return
     if args.stray:
-        for c0 in (0.1, 0.2):
-            strong_campaign(n, T, args.per_u, settings, c0_ratio=c0, us=(1.0, 3.0, 4.5))
+        for c0 in args.c0:
+            strong_campaign(n, T, args.per_u, settings, c0_ratio=c0,
+                            us=tuple(args.u or (1.0, 3.0, 4.5)))
         return
     print(f"recovery on exact master-equation sweeps, N = {n}, {args.per_u} seeds per u")
     pooled = []

@@ -9,8 +9,10 @@ tables, analysis.cbt.full_model), least-squares fits over ±5 V_1/2 read T high 
   higher order (this package):     ≈ 0.042 u   (+3.9e-4 at u = 0.01, +0.80 % at 0.2, +2.0 % at 0.48),
 for N = 3 and N = 33 alike (benchmarks/bench_cbt_models.py; docs/physics.md §1.2 quotes +1.8 % and
 +4.5 % for the first-order formula on exact N = 2 data at u = 0.2 and 0.5). So the full model is
-the default wherever it is validated; the series serves only where it is not (C₀ > 0, u > 5), with
-its measured error as a budget row.
+the default wherever it is validated (C₀ > 0 included for N ≤ 4, C₀/C ≤ 0.2: the sweep's
+``ground_capacitance_ratio`` is passed to it); the series serves only where it is not (C₀ > 0 on
+longer chains or above 0.2 C, u beyond the full model's max_u) up to its own max_u, with its
+measured error as a budget row.
 """
 
 from __future__ import annotations

@@ -4,8 +4,8 @@ Run from the repository root after the tables exist (a few seconds):
 
     .venv/bin/python docs/figures/make_model_figures.py
 
-Writes docs/figures/cbt_depth_vs_n.svg, cbt_width_vs_n.svg and cbt_model_residuals.svg from the
-committed tables (analysis/cbt/tables/*.npz): exact master-equation points, the orthodox Monte
+Writes docs/figures/cbt_depth_vs_n.svg, cbt_width_vs_n.svg, cbt_model_residuals.svg and
+cbt_stray_capacitance.svg from the committed tables (analysis/cbt/tables/*.npz): exact master-equation points, the orthodox Monte
 Carlo points and the model FullTunnellingShape(N).
 """
 
@@ -22,7 +22,11 @@ import numpy as np  # noqa: E402
 from scipy.integrate import quad  # noqa: E402
 from scipy.optimize import brentq  # noqa: E402
 
-from analysis.cbt.full_model import FullTunnellingShape, exact_long_dips  # noqa: E402
+from analysis.cbt.full_model import (  # noqa: E402
+    FullTunnellingShape,
+    exact_long_dips,
+    first_order_depth_factor,
+)
 
 OUT = Path(__file__).parent
 U_VALUES = (1.0, 2.0, 3.0, 4.0, 5.0)
@@ -128,12 +132,62 @@ def residuals() -> None:
     fig.savefig(OUT / "cbt_model_residuals.svg")
 
 
+def stray_capacitance() -> None:
+    """Depth and residuals of the C_0 > 0 model against the exact tables and held-out points."""
+    table = _load("stray_capacitance.npz")
+    held = _load("stray_held_out.npz")
+    bound = _load("stray_bound_points.npz")
+    fig, (ax_d, ax_e) = plt.subplots(1, 2, figsize=(9.6, 4.0))
+    c0s = np.linspace(0.0, 0.2, 41)
+    for n, style in ((3, "-"), (4, "--")):
+        for u in (1.0, 3.0, 5.0):
+            # The depth beyond the rescaled C_0 = 0 chain: 1 − G(0, u; C_0) − depth_0(r u).
+            def extra(c0: float, g: float | None = None, n: int = n, u: float = u) -> float:
+                r = first_order_depth_factor(n, c0)
+                g0 = float(FullTunnellingShape(n)(0.0, r * u))
+                g = float(FullTunnellingShape(n, c0)(0.0, u)) if g is None else g
+                return (g0 - g) * 1e4
+            (line,) = ax_d.plot(c0s, [extra(c) if c else 0.0 for c in c0s], style, lw=1,
+                                label=f"model N = {n}, u = {u:g}")
+            j = int(np.argmin(np.abs(table["u_nodes"] - u)))
+            ax_d.plot(table["c0_ratios"], [extra(c, g) for c, g in zip(
+                table["c0_ratios"], table[f"conductance_{n}"][:, 0, j], strict=True)], "o",
+                color=line.get_color(), ms=4)
+            sel = (held["n"] == n) & np.isclose(held["u"], u) & (held["x"] == 0.0)
+            ax_d.plot(held["c0_ratio"][sel], [extra(c, g) for c, g in zip(
+                held["c0_ratio"][sel], held["conductance"][sel], strict=True)], "^",
+                mfc="none", color=line.get_color(), ms=6)
+    ax_d.set_xlabel("C_0/C")
+    ax_d.set_ylabel("depth − depth of the rescaled C_0 = 0 chain  [1e-4]")
+    ax_d.set_title("Zero-bias depth with stray capacitance (dots: tables; triangles: held out)",
+                   fontsize=8)
+    ax_d.legend(fontsize=6)
+    for data, label, marker in ((bound, "bound (sets the error)", "o"),
+                                (held, "held out (tests only)", "^")):
+        res = [abs(float(FullTunnellingShape(int(n), float(c))(x, u)) - g) for n, c, u, x, g in
+               zip(data["n"], data["c0_ratio"], data["u"], data["x"], data["conductance"],
+                   strict=True)]
+        ax_e.semilogy(data["u"], np.maximum(res, 1e-12), marker, ms=5, mfc="none", label=label)
+    us = np.linspace(0.05, 5.0, 200)
+    for n, style in ((3, "-"), (4, "--")):
+        shape = FullTunnellingShape(n, 0.1)
+        ax_e.semilogy(us, [shape.model_error(u) for u in us], style, lw=1,
+                      label=f"model_error, N = {n}, C_0 > 0")
+    ax_e.set_xlabel("u = ΔE/k_BT (nominal, ΔE = ((N − 1)/N) e²/C)")
+    ax_e.set_ylabel("|G_model − G_exact| / G_T")
+    ax_e.set_title("C_0 > 0 model against exact solutions off its tables", fontsize=8)
+    ax_e.legend(fontsize=7)
+    fig.tight_layout()
+    fig.savefig(OUT / "cbt_stray_capacitance.svg")
+
+
 def main() -> None:
     plt.rcParams["svg.hashsalt"] = "coldcert"  # repeatable SVG ids
     plt.rcParams["svg.fonttype"] = "none"
     exact_long_dips()
     depth_and_width_vs_n()
     residuals()
+    stray_capacitance()
 
 
 if __name__ == "__main__":
