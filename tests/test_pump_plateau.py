@@ -83,6 +83,28 @@ def test_slope_is_derivative_of_mean(model, params):
     assert np.allclose(m.slope(g, params), numeric, rtol=1e-6, atol=1e-6)
 
 
+def test_working_point_is_polished_to_the_exact_minimum():
+    # Two logistic steps of equal width (Fricke et al. 2013 model) are mirror images about the
+    # midpoint of their centres, so the slope is smallest exactly there (derived); the grid alone
+    # would only find it to within a node (the centres are 0.3 V apart, 64 intervals).
+    params = np.array([[-0.7, -0.4, 0.02, 0.02], [-0.65, -0.4 + 1e-3, 0.015, 0.015]])
+    v = P.minimum_slope_gate(P.THERMAL, params, plateau=1)
+    assert v == pytest.approx([-0.55, -0.5245], abs=1e-12)
+    # Decay cascade: at the returned gate the slope's derivative (derived in closed form from
+    # Kashcheyevs & Kaestner 2010) vanishes to rounding, and a central difference of the slope
+    # agrees with that derivative (common practice, no source).
+    cascade = np.array([[50.0, -0.70, -0.42, -0.36], [35.0, -0.66, -0.40, -0.31]])
+    v = P.minimum_slope_gate(P.DECAY_CASCADE, cascade, plateau=1)
+    first, second = P._slope_derivatives(P.DECAY_CASCADE, v[:, None], cascade)
+    assert np.all(np.abs(first[:, 0]) <= 1e-9 * np.abs(second[:, 0]) * 0.3)
+    h = 1e-6
+    g = np.array([[-0.55], [-0.5]])
+    for model, p in ((P.DECAY_CASCADE, cascade), (P.THERMAL, params)):
+        slope = P.MODEL[model].slope
+        numeric = (slope(g + h, p) - slope(g - h, p)) / (2 * h)
+        assert np.allclose(P._slope_derivatives(model, g, p)[0], numeric, rtol=1e-6)
+
+
 def test_thermal_step_half_height_and_slope_at_centre():
     # Logistic step (Fricke et al. 2013): ⟨n⟩ = 1/2 at V_k and slope 1/(4w) there (derived).
     params = np.array([0.1, 0.02])
