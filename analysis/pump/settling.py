@@ -69,7 +69,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
+from scipy import special
 
 #: At least this fraction of every segment must remain after the discard.
 MIN_KEPT_FRACTION = 0.2
@@ -525,7 +525,7 @@ def choose_discard(
     # Every fit counts; an unresolved one through its fixed-τ hypotheses (its jackknife with τ
     # free, over a τ the data do not fix, is not a smooth statistic).
     used = components
-    tq = float(stats.t.ppf(0.975, rec.blocks - 1))
+    tq = float(special.stdtrit(rec.blocks - 1, 0.975))
     low = max(minimum_s, float(first[0]), used[-1].fit.window_start_s)
     candidates = positions[(positions >= low) & (positions <= latest)]
     if candidates.size == 0:
