@@ -387,10 +387,11 @@ class FullTunnellingShape:
             dip = stray_capacitance_dip(int(self.n_junctions), c0)
         else:
             dip = _table_dip(int(self.n_junctions))
-        # Not mirrored: the fast grid (analysis.cbt.dip_grid) reproduces this spline to rounding
-        # because its knots lie on the grid; the cost is the measured 1.6e-7 near x = 0.1 that
-        # MEASURED_ERROR["interpolation_short"] carries.
-        spline = RectBivariateSpline(tables["x_nodes"], tables["u_nodes"], dip, kx=5, ky=5, s=0)
+        # Mirrored to x < 0 like the N = 5, 6 corrections (dip_spline): unmirrored, the spline
+        # had a slope at x = 0 (|∂G/∂x|(0+) up to 3.8e-5 at N = 3, 1.1e-3 at N = 6, u = 5), a
+        # kink of the even dip that the few-node lock-in quadrature (lockin_nodes_for) cannot
+        # integrate (errors up to 5e-7 of G_T at N = 3). The fast grid mirrors its samples too.
+        spline = dip_spline(tables["x_nodes"], tables["u_nodes"], dip)
         object.__setattr__(self, "_spline", spline)
         if self.n_junctions > max(EXACT_LENGTHS):
             object.__setattr__(self, "max_u", LONG_ARRAY_MAX_U)
