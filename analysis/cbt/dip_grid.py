@@ -27,13 +27,19 @@ interpolation errors peak), is measured at build time and exposed as
 :attr:`GridDip.measured_error`, so a change of the reference (other tables, another continuation, a
 larger u range) needs no change here: the error is measured again and enters the model error.
 
+The samples are mirrored to x < 0 before the x spline is fitted (D is even), so the grid has no
+slope at x = 0; unmirrored, it had one (up to 1e-3 of G_T per unit x at N = 6, u = 5), a kink of
+|x| that a few-node lock-in quadrature cannot integrate.
+
 The lock-in average (analysis.cbt.models.forward_conductance) stays a quadrature outside the grid.
 It is a semicircle average over a window of half-width α = e a/(N k_B T) in x, and α changes with
 every temperature the sampler proposes. Folding it into each walker's polynomial by the moment
 expansion p + (α²/8) p″ + (α⁴/192) p⁗ (exact for a quintic) was tried and measured: against a
-dense adaptive average of today's table spline it erred by up to 5e-7 in G/G_T at |x| < α
-(the spline is not exactly even at x = 0) and the spline's rough fifth derivative (steps up to
-~0.4 per cell) limits it to α < 0.06, so the quadrature, exact to < 1e-9, was kept.
+dense adaptive average of the (then unmirrored) table spline it erred by up to 5e-7 in G/G_T at
+|x| < α, and the spline's rough fifth derivative (steps up to ~0.4 per cell) limits it to
+α < 0.06, so the Gauss–Chebyshev quadrature was kept. That roughness limits the quadrature too
+(the spline is only C⁴): its error is measured at the fitted α and u and carried in the budget
+(analysis.cbt.models.lockin_quadrature_error).
 """
 
 from __future__ import annotations
