@@ -80,6 +80,13 @@ def test_budget_rows_and_correction():
     # Excitation broadens the dip, so a larger assumed amplitude means a lower fitted T.
     row = next(r for r in budget.rows if "excitation" in r.quantity)
     assert row.sensitivity < 0
+    # The model row also carries the measured error of the few-node lock-in quadrature
+    # (analysis.cbt.models.lockin_quadrature_error) on top of the model's own bound.
+    full = full_model_for(33)
+    budget, _ = temperature_budget(fit, full, setup, inputs)
+    row = next(r for r in budget.rows if r.quantity == "model truncation")
+    assert "lock-in quadrature" in row.note
+    assert row.contribution >= full.relative_width_error(fit.u) * fit.temperature / np.sqrt(3) * (1 - 1e-12)
 
 
 def test_sampler_needs_a_seed_and_reports_nonconvergence():

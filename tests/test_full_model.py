@@ -15,6 +15,7 @@ from analysis.cbt.full_model import (
     extrapolation_weights,
     first_order_depth_factor,
 )
+from analysis.cbt.models import chebyshev_u_nodes, lockin_nodes_for, lockin_quadrature_error
 from analysis.cbt.orthodox_mc import simulate_current
 from analysis.cbt.tunnelling import ArrayDescription, solve_master_equation
 
@@ -320,3 +321,54 @@ def test_stray_capacitance_shape_is_a_dip_shape():
     assert shape.model_error(4.9) < 1e-4 and 0 < shape.relative_width_error(3.0) < 1e-4
     # C_0 screens the charging energy: a shallower dip than without it, at the same u.
     assert shape(0.0, 2.5) > FullTunnellingShape(4)(0.0, 2.5)
+
+
+def _semicircle_average(shape, x0, alpha, u):
+    """(2/π) ∫₀^π S(x0 + α cos θ) sin²θ dθ by scipy.integrate.quad, split where the argument
+    crosses x = 0: the lock-in's first-harmonic reading (docs/physics.md 1.4)."""
+    crossing = [float(np.arccos(-x0 / alpha))] if abs(x0) < alpha else None
+    value = quad(lambda th: float(shape(np.array([x0 + alpha * np.cos(th)]), u)[0]) * np.sin(th) ** 2,
+                 0.0, np.pi, points=crossing, epsabs=1e-14, epsrel=1e-13, limit=400)[0]
+    return 2.0 / np.pi * value
+
+
+@pytest.mark.parametrize("n", [2, 3, 4, 6, 33])
+def test_dip_has_no_slope_at_zero_bias(n):
+    # G(V) = G(−V) for a uniform chain (common practice, no source: the orthodox rates are
+    # symmetric under reversing the bias), so ∂G/∂x = 0 at x = 0. Before the splines were
+    # mirrored the one-sided slope was 1e-5 (N = 2) to 1.1e-3 (N = 6, u = 5): a kink.
+    shape = FullTunnellingShape(n)
+    u = np.linspace(0.25, shape.max_u, 12)
+    h = 1e-3  # one-sided second-order difference; its own error here is < 1e-10
+    slope = (4 * shape(np.full(u.size, h), u) - shape(np.full(u.size, 2 * h), u)
+             - 3 * shape(np.zeros(u.size), u)) / (2 * h)
+    assert np.max(np.abs(slope)) < 1e-8
+
+
+@pytest.mark.parametrize("n", [2, 3, 4])
+def test_small_excitation_lockin_average_of_the_full_model_against_quad(n):
+    # At α = 0.1 (3 nodes) the few-node average of the full model meets an adaptive quad of the
+    # same function to 1e-9 of G_T (before the x = 0 kink was removed: 7e-8 at N = 3, u = 3).
+    shape = FullTunnellingShape(n)
+    t, w = chebyshev_u_nodes(lockin_nodes_for(0.1))
+    for u in (1.0, 3.0):
+        for x0 in (0.0, 0.04, 0.3, 2.0):
+            fast = shape(x0 + 0.1 * t, u) @ w
+            assert fast == pytest.approx(_semicircle_average(shape, x0, 0.1, u), abs=1e-9), (u, x0)
+
+
+@pytest.mark.parametrize(("n", "u", "alpha"), [(6, 5.0, 0.29), (6, 5.0, 2.4), (4, 4.5, 0.9),
+                                               (33, 2.0, 1.5)])
+def test_measured_lockin_quadrature_error_bounds_the_true_one(n, u, alpha):
+    # The few-node average is not 1e-9-accurate everywhere (the table spline is only C⁴, and
+    # sharp at large u); the error lockin_quadrature_error measures, and the budget carries,
+    # must bound the difference from scipy's adaptive quad of the same average.
+    shape = FullTunnellingShape(n)
+    stated = lockin_quadrature_error(shape, alpha, u)
+    t, w = chebyshev_u_nodes(lockin_nodes_for(alpha))
+    worst = 0.0
+    for x0 in (0.0, 0.013, 0.5 * alpha, alpha, 1.7, 4.0):
+        fast = shape(x0 + alpha * t, u) @ w
+        worst = max(worst, abs(fast - _semicircle_average(shape, x0, alpha, u)))
+    assert worst <= stated * (1 + 1e-6) + 1e-13
+    assert stated <= 2 * worst + 1e-10  # and it is a measurement, not a padded guess

@@ -27,13 +27,19 @@ interpolation errors peak), is measured at build time and exposed as
 :attr:`GridDip.measured_error`, so a change of the reference (other tables, another continuation, a
 larger u range) needs no change here: the error is measured again and enters the model error.
 
+The samples are mirrored to x < 0 before the x spline is fitted (D is even), so the grid has no
+slope at x = 0; unmirrored, it had one (up to 1e-3 of G_T per unit x at N = 6, u = 5), a kink of
+|x| that a few-node lock-in quadrature cannot integrate.
+
 The lock-in average (analysis.cbt.models.forward_conductance) stays a quadrature outside the grid.
 It is a semicircle average over a window of half-width α = e a/(N k_B T) in x, and α changes with
 every temperature the sampler proposes. Folding it into each walker's polynomial by the moment
 expansion p + (α²/8) p″ + (α⁴/192) p⁗ (exact for a quintic) was tried and measured: against a
-dense adaptive average of today's table spline it erred by up to 5e-7 in G/G_T at |x| < α
-(the spline is not exactly even at x = 0) and the spline's rough fifth derivative (steps up to
-~0.4 per cell) limits it to α < 0.06, so the quadrature, exact to < 1e-9, was kept.
+dense adaptive average of the (then unmirrored) table spline it erred by up to 5e-7 in G/G_T at
+|x| < α, and the spline's rough fifth derivative (steps up to ~0.4 per cell) limits it to
+α < 0.06, so the Gauss–Chebyshev quadrature was kept. That roughness limits the quadrature too
+(the spline is only C⁴): its error is measured at the fitted α and u and carried in the budget
+(analysis.cbt.models.lockin_quadrature_error).
 """
 
 from __future__ import annotations
@@ -51,6 +57,11 @@ from scipy.interpolate import make_interp_spline
 X_STEP = 0.1
 U_STEP = 0.1
 DEGREE = 5
+
+#: Grid cells mirrored to x < 0 (2.0 in x at X_STEP, as many as the table spline mirrors,
+#: analysis.cbt.full_model.MIRRORED_NODES): with fewer, the spline of an even dip keeps a slope
+#: at x = 0 (measured with none: |∂G/∂x|(0+) up to 1e-3 of G_T at N = 6, u = 5).
+MIRRORED_CELLS = 20
 
 
 class GridDip:
@@ -83,12 +94,20 @@ class GridDip:
         self.degree = DEGREE
         x_nodes = np.linspace(0.0, self.x_end, nx + 1)
         u_nodes = np.linspace(u_lo, u_hi, nu + 1)
-        values = np.asarray(reference(x_nodes[:, None], u_nodes[None, :]), dtype=float)
+        # D is even in x: the samples are mirrored to x < 0 (MIRRORED_CELLS) before the x spline
+        # is fitted, so that the spline is even at x = 0 up to the faint echo of its far end
+        # conditions instead of carrying a slope there (a kink of |x| that a lock-in quadrature
+        # cannot integrate; module docstring).
+        m = min(MIRRORED_CELLS, nx)
+        # (the very node values of x_nodes, so that every cell's Taylor expansion below is taken
+        # exactly at a knot, from the right)
+        x_all = np.concatenate((-x_nodes[m:0:-1], x_nodes))
+        values = np.asarray(reference(np.abs(x_all)[:, None], u_nodes[None, :]), dtype=float)
         # Interpolate in x for every u node and re-expand the spline about the left end of every
         # uniform cell (Taylor coefficients f^(k)(x_i+)/k!), then do the same in u for every one of
         # those coefficients: both steps are linear, so the result is the tensor-product spline.
         k = self.degree
-        spline_x = make_interp_spline(x_nodes, values, k=k, axis=0)
+        spline_x = make_interp_spline(x_all, values, k=k, axis=0)
         taylor_x = np.stack([spline_x(x_nodes[:-1], nu=j) / math.factorial(j)
                              for j in range(k, -1, -1)])  # (power of x desc., x cell, u node)
         spline_u = make_interp_spline(u_nodes, taylor_x, k=k, axis=2)

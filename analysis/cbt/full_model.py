@@ -44,6 +44,7 @@ import numpy as np
 from scipy.interpolate import RectBivariateSpline
 
 from analysis.cbt.dip_grid import GridDip
+from analysis.cbt.models import relative_width_from_conductance_error
 from analysis.cbt.tunnelling import ArrayDescription
 
 logger = logging.getLogger(__name__)
@@ -104,6 +105,11 @@ LONG_ARRAY_LAW = "inverse_n"
 #: C_0/C = 0.03, 0.1, 0.125, 0.2; <= 1.1e-7 for u <= 3.75, 4.4e-7 at u = 4.9, each band doubled,
 #: empty bands taking the larger neighbour). Checked
 #: by tests/test_full_model.py against held-out points that set none of these numbers.
+#: The figures near x = 0 were measured on the unmirrored table spline; mirrored (dip_spline),
+#: max |ΔG/G_T| against the exact solver at x = 0.05–0.3, u = 1–5 fell from 2.6e-7 to 2.0e-9
+#: (N = 2), 9.5e-7 to 1.6e-8 (N = 3) and 1.1e-6 to 9.6e-8 (N = 4); the bands are kept as they
+#: were (they still bound the rest of the dip). Not in these rows: the lock-in quadrature, whose
+#: error depends on α and is measured per fit (analysis.cbt.models.lockin_quadrature_error).
 MEASURED_ERROR: dict[str, tuple[float, ...]] = {
     "u_band_upper": (0.5, 1.0, 1.5, 2.0, 2.5, 3.0, 3.5, 4.0, 4.5, 5.0),
     "interpolation_short": (3e-8, 6e-8, 1.1e-7, 1.7e-7, 2.7e-7, 4e-7, 7e-7, 1e-6, 1.3e-6, 1.5e-6),
@@ -324,10 +330,10 @@ def tail_decay() -> float:
     return float(min(rates))
 
 
-#: Nodes mirrored to x < 0 before a spline of the N = 5, 6 corrections is fitted: D is even in
-#: x, and a spline that does not know it errs between x = 0 and the first node (the fine-grid
-#: N = 2 spline, unmirrored for the fast grid's sake, by up to 1.6e-7 near x = 0.1 at u ≈ 2.5,
-#: measured against the exact solver).
+#: Nodes mirrored to x < 0 before a table spline is fitted: D is even in x, and a spline that
+#: does not know it errs between x = 0 and the first node (the fine-grid N = 2 spline, when it
+#: was unmirrored, by up to 1.6e-7 near x = 0.1 at u ≈ 2.5, measured against the exact solver)
+#: and has a slope at x = 0.
 MIRRORED_NODES = 10
 
 
@@ -387,10 +393,11 @@ class FullTunnellingShape:
             dip = stray_capacitance_dip(int(self.n_junctions), c0)
         else:
             dip = _table_dip(int(self.n_junctions))
-        # Not mirrored: the fast grid (analysis.cbt.dip_grid) reproduces this spline to rounding
-        # because its knots lie on the grid; the cost is the measured 1.6e-7 near x = 0.1 that
-        # MEASURED_ERROR["interpolation_short"] carries.
-        spline = RectBivariateSpline(tables["x_nodes"], tables["u_nodes"], dip, kx=5, ky=5, s=0)
+        # Mirrored to x < 0 like the N = 5, 6 corrections (dip_spline): unmirrored, the spline
+        # had a slope at x = 0 (|∂G/∂x|(0+) up to 3.8e-5 at N = 3, 1.1e-3 at N = 6, u = 5), a
+        # kink of the even dip that the few-node lock-in quadrature (lockin_nodes_for) cannot
+        # integrate (errors up to 5e-7 of G_T at N = 3). The fast grid mirrors its samples too.
+        spline = dip_spline(tables["x_nodes"], tables["u_nodes"], dip)
         object.__setattr__(self, "_spline", spline)
         if self.n_junctions > max(EXACT_LENGTHS):
             object.__setattr__(self, "max_u", LONG_ARRAY_MAX_U)
@@ -493,17 +500,11 @@ class FullTunnellingShape:
         """Relative error of the FWHM (so of T) implied by :meth:`model_error`.
 
         A conductance error ε shifts the half-depth point by ε/|∂G/∂x|; the slope there is taken
-        from the model itself (central difference at the half-depth point).
+        from the model itself (analysis.cbt.models.relative_width_from_conductance_error).
         """
-        u = float(u)
-        if u <= 0:
+        if float(u) <= 0:
             return 0.0
-        xs = np.linspace(0.0, 12.0, 1201)
-        g = self(xs, u)
-        depth = 1.0 - g[0]
-        i = int(np.argmax(g >= 1.0 - 0.5 * depth))
-        slope = (g[i + 1] - g[i - 1]) / (xs[i + 1] - xs[i - 1])
-        return self.model_error(u) / (abs(slope) * xs[i])
+        return relative_width_from_conductance_error(self, u, self.model_error(u))
 
 
 @lru_cache(maxsize=16)

@@ -197,9 +197,15 @@ def chebyshev_u_nodes(n: int) -> tuple[np.ndarray, np.ndarray]:
 
 
 def lockin_nodes_for(alpha_max: float) -> int:
-    """Number of quadrature nodes that keeps the lock-in average accurate to < 1e-9 of G_T.
+    """Number of Gauss–Chebyshev nodes for the lock-in average at α = e a/(N k_B T) ≤ ``alpha_max``.
 
-    Chosen from tests against a dense adaptive integration over α ≤ 4 (see tests/test_cbt_models).
+    For the smooth weak-blockade shapes (first and higher order) the average is accurate to
+    < 1e-9 of G_T over α ≤ 4 (tests/test_cbt_models, against scipy.integrate.quad). Not for
+    every shape: the full model's table spline is only C⁴ (quintic, knots every 0.2–1 in x) and
+    sharp at large u, and its few-node average was measured against a dense one up to 8e-9 (N = 2,
+    α = 0.3, 3 nodes), 5e-6 (N = 6, u = 5, α = 0.3, 3 nodes) and 1e-5 (N = 6, u = 5, α = 2.5,
+    14 nodes). That error is not bounded here but measured for the fitted α and u by
+    :func:`lockin_quadrature_error` and carried in the model row of the budget.
     """
     if alpha_max <= 0:
         return 0
@@ -210,6 +216,62 @@ def lockin_nodes_for(alpha_max: float) -> int:
     if alpha_max < 2.5:
         return 14
     return 24
+
+
+def relative_width_from_conductance_error(shape: DipShape, u: float, conductance_error: float) -> float:
+    """Relative error of the FWHM (so of T) that an error ε of G/G_T anywhere in the dip implies.
+
+    ε shifts the half-depth point by ε/|∂G/∂x|; the slope there is taken from the shape itself
+    (central difference at the half-depth point of a sampling every 0.01 in x, x ≤ 12).
+    """
+    u = float(u)
+    if u <= 0:
+        return 0.0
+    xs = np.linspace(0.0, 12.0, 1201)
+    g = shape(xs, u)
+    depth = 1.0 - g[0]
+    i = int(np.argmax(g >= 1.0 - 0.5 * depth))
+    slope = (g[i + 1] - g[i - 1]) / (xs[i + 1] - xs[i - 1])
+    return float(conductance_error) / (abs(slope) * xs[i])
+
+
+#: Reference of :func:`lockin_quadrature_error`: Gauss–Legendre points per piece, equal pieces in θ.
+_REFERENCE_POINTS = 96
+_REFERENCE_PIECES = 12
+
+
+def lockin_quadrature_error(
+    shape: DipShape, alpha: float, u: float, nodes: int | None = None, x_span: float = 20.0
+) -> float:
+    """Measured max |ΔG/G_T| of the ``nodes``-node lock-in average of ``shape`` at this α and u.
+
+    The quadrature the fit uses (:func:`averaged_shape`, :func:`lockin_nodes_for` nodes unless
+    given) against an independent dense one of the same semicircle average (2/π) ∫₀^π S(x +
+    α cos θ) sin²θ dθ (docs/physics.md 1.4): composite Gauss–Legendre in θ (Abramowitz & Stegun
+    25.4.29) on equal pieces, with a piece boundary where the argument crosses x = 0 (where a
+    tabulated dip may be least smooth), over x = 0 … α + ``x_span`` (the dip is even, its tail
+    beyond flat). Costs about one fit step; for the budget, not for the likelihood.
+    """
+    alpha = float(alpha)
+    if alpha <= 0:
+        return 0.0
+    if nodes is None:
+        nodes = lockin_nodes_for(alpha)
+    x = np.unique(np.concatenate([np.linspace(0.0, 2.0 * alpha, 65),
+                                  np.linspace(0.0, alpha + x_span, 401)]))
+    t, w = chebyshev_u_nodes(nodes)
+    fast = shape(x[:, None] + alpha * t, u) @ w
+    # Piece boundaries in θ (one row per x): equal pieces plus the crossing of x + α cos θ = 0.
+    crossing = np.where(x < alpha, np.arccos(-np.minimum(x, alpha) / alpha), np.pi)
+    cuts = np.sort(np.concatenate([np.broadcast_to(np.linspace(0.0, np.pi, _REFERENCE_PIECES + 1),
+                                                   (x.size, _REFERENCE_PIECES + 1)),
+                                   crossing[:, None]], axis=1), axis=1)
+    gl_t, gl_w = np.polynomial.legendre.leggauss(_REFERENCE_POINTS)
+    lo, hi = cuts[:, :-1, None], cuts[:, 1:, None]  # (x, piece, 1)
+    theta = 0.5 * (lo + hi) + 0.5 * (hi - lo) * gl_t
+    values = shape(x[:, None, None] + alpha * np.cos(theta), u) * np.sin(theta) ** 2
+    dense = (2.0 / np.pi) * np.sum(0.5 * (hi - lo)[..., 0] * (values @ gl_w), axis=1)
+    return float(np.max(np.abs(fast - dense)))
 
 
 def lockin_average(

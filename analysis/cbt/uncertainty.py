@@ -34,8 +34,16 @@ from analysis.budget import (
     standard_uncertainty_from_half_width,
 )
 from analysis.cbt.fit import SweepData, SweepFit, fwhm_volts, least_squares_fit
-from analysis.cbt.models import NON_UNIFORMITY_WIDTH_COEFFICIENT, DipShape, SweepSetup
+from analysis.cbt.models import (
+    NON_UNIFORMITY_WIDTH_COEFFICIENT,
+    DipShape,
+    SweepSetup,
+    lockin_nodes_for,
+    lockin_quadrature_error,
+    relative_width_from_conductance_error,
+)
 from analysis.cbt.robust import TEMPLATE_T_CARRY, TEMPLATE_T_LIMIT
+from analysis.constants import BOLTZMANN, ELEMENTARY_CHARGE
 
 #: Relative uncertainty of a defaulted Type B uncertainty (GUM G.4.2: 25 % gives ν = 8).
 DEFAULT_RELIABILITY = 0.25
@@ -143,7 +151,7 @@ def temperature_budget(
     heating = _heating_row(fit, shape, setup, inputs, data)
     if heating is not None:
         rows.append(heating)
-    rows.append(_truncation_row(fit, shape, T))
+    rows.append(_truncation_row(fit, shape, setup, T))
     corrected = T * (1.0 + correction)
     budget = combine(
         "electron temperature", "K", corrected, rows,
@@ -360,12 +368,20 @@ def _heating_signature_row(fit: SweepFit) -> BudgetRow:
     )
 
 
-def _truncation_row(fit: SweepFit, shape: DipShape, T: float) -> BudgetRow:
-    """The dip model's own width error at the fitted u (``shape.relative_width_error``), as a
-    rectangular bound on T."""
+def _truncation_row(fit: SweepFit, shape: DipShape, setup: SweepSetup, T: float) -> BudgetRow:
+    """The dip model's own width error at the fitted u (``shape.relative_width_error``), plus
+    that of the few-node lock-in quadrature the fit evaluates it with (measured at the fitted α
+    and u, analysis.cbt.models.lockin_quadrature_error), as a rectangular bound on T."""
     bound = shape.relative_width_error(fit.u)
+    note = f"{shape.name}: width error bound {bound:.2e} relative at u = {fit.u:.3f}"
+    if setup.excitation_peak_V > 0:
+        alpha = ELEMENTARY_CHARGE * setup.excitation_peak_V / (setup.junctions_in_series * BOLTZMANN * T)
+        quadrature = lockin_quadrature_error(shape, alpha, fit.u)
+        quadrature_width = relative_width_from_conductance_error(shape, fit.u, quadrature)
+        bound += quadrature_width
+        note += (f", including {quadrature_width:.1e} from the {lockin_nodes_for(alpha)}-node lock-in "
+                 f"quadrature (measured {quadrature:.1e} of G_T at α = {alpha:.3g})")
     return BudgetRow(
         "model truncation", 0.0, standard_uncertainty_from_half_width(bound * T, "rectangular"),
-        "K", "B", "rectangular", 1.0, sensitivity_unit="1",
-        note=f"{shape.name}: width error bound {bound:.2e} relative at u = {fit.u:.3f}",
+        "K", "B", "rectangular", 1.0, sensitivity_unit="1", note=note,
     )
