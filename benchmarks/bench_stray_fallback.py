@@ -1,6 +1,6 @@
 """Benchmark: how far T goes wrong when the dip model ignores a stated stray capacitance C_0.
 
-    .venv/bin/python benchmarks/bench_stray_fallback.py [--n 3 4] [--c0 0.05 0.1 0.2 0.25]
+    .venv/bin/python benchmarks/bench_stray_fallback.py [--n 3 4] [--c0 0.05 0.1 0.2] [--reach 1.5]
     .venv/bin/python benchmarks/bench_stray_fallback.py --solver --n 5 --c0 0.2 --u 1 2
 
 For a chain longer than the stray-capacitance tables (N > 4) the certificate fits a model without
@@ -51,6 +51,8 @@ def main() -> None:
     ap.add_argument("--c0", type=float, nargs="+", default=[0.05, 0.1, 0.2])
     ap.add_argument("--u", type=float, nargs="+", default=[0.1, 0.25, 0.5, 1.0, 1.5, 2.0, 2.3])
     ap.add_argument("--points", type=int, default=201, help="points over the sweep (odd: x = 0 included)")
+    ap.add_argument("--reach", type=float, default=5.0,
+                    help="sweep reach in units of the first-order FWHM V_1/2 = 5.44 N k_B T/e")
     ap.add_argument("--solver", action="store_true", help="truth with C_0 from the master equation itself")
     args = ap.parse_args()
     for n in args.n:
@@ -60,7 +62,7 @@ def main() -> None:
             print(f"N = {n}, C_0/C = {c0:g} (first-order depth factor r = {r:.4f})", flush=True)
             for u in args.u:
                 start = time.perf_counter()
-                span = 2.0 * (8.0 + 2.5 * u)  # about +-5 V_1/2, as bench_cbt_models.py
+                span = args.reach * 5.44  # first-order FWHM in x (docs/physics.md 1.1)
                 x = np.linspace(-span, span, args.points)
                 g_c0 = truth_curve(n, c0, u, x, args.solver)
                 g_0 = truth_curve(n, 0.0, r * u, x, args.solver)  # C_0 = 0 at the effective u
