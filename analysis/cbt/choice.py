@@ -61,7 +61,7 @@ STRAY_FALLBACK_MAX_U = 2.0
 #: (u rescaled by r_N) is fitted to a dip with C₀. Measured by noiseless least-squares fits to exact
 #: curves at C₀/C = 0.2 (benchmarks/bench_stray_fallback.py): T reads *low*, by nearly the same
 #: amount per unit u at u = 0.1–2.3, more for narrower sweeps: N = 3 from 0.93e-4 u (±8 V_1/2) to
-#: 1.8e-4 u (±1.5 V_1/2), N = 4 from 1.6e-4 u to 3.7e-4 u (3.1e-4 u on the exact solver's
+#: 2.1e-4 u (±1.5 V_1/2), N = 4 from 1.6e-4 u to 3.7e-4 u (3.1e-4 u on the exact solver's
 #: centre-dense bias nodes at u = 1). It grows with N: the part of the exact dip beyond the
 #: rescaling near the half-depth bias (analysis.cbt.tunnelling; it tracks the T shift, ratio N4/N3
 #: 1.70 against 1.68) is 0.93, 1.58, 2.06, 2.40e-5 at u = 1, x = 2.7 and 2.79, 4.92, 6.70,

@@ -388,6 +388,6 @@ def _stray_capacitance_row(fit: SweepFit, shape: DipShape, T: float) -> BudgetRo
         "K", "B", "rectangular", 1.0, sensitivity_unit="1",
         note=f"C_0/C = {shape.c0_ratio:g} stated, taken as the first-order rescaling of u only; the rest "
         f"of its effect bounded by {bound:.2e} relative at u = {fit.u:.3f} (measured on exact chains at "
-        "C_0/C = 0.2: T read low by up to 1.8e-4 u (N = 3) and 3.7e-4 u (N = 4), growing with N; "
+        "C_0/C = 0.2: T read low by up to 2.1e-4 u (N = 3) and 3.7e-4 u (N = 4), growing with N; "
         "bound 1.5e-3 u, linear in C_0/C; docs/models.md)",
     )
