@@ -10,9 +10,9 @@ tables, analysis.cbt.full_model), least-squares fits over ±5 V_1/2 read T high 
 for N = 3 and N = 33 alike (benchmarks/bench_cbt_models.py; docs/physics.md §1.2 quotes +1.8 % and
 +4.5 % for the first-order formula on exact N = 2 data at u = 0.2 and 0.5). So the full model is
 the default wherever it is validated (C₀ > 0 included for N ≤ 4, C₀/C ≤ 0.2: the sweep's
-``ground_capacitance_ratio`` is passed to it); the series serves only where it is not (C₀ > 0 on
-longer chains or above 0.2 C, u beyond the full model's max_u) up to its own max_u, with its
-measured error as a budget row.
+``ground_capacitance_ratio`` is passed to it); the series serves where its own error is below
+:data:`SERIES_ERROR_TARGET` and no C₀ is stated, and where no full model exists for the chain,
+up to its own max_u, with its measured error as a budget row.
 
 A stated stray capacitance (0 < C₀/C ≤ 0.2) on a chain longer than the exact tables (N > 4) is
 fitted with the C₀ = 0 full model of that N, u rescaled by the first-order depth factor r_N
