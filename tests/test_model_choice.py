@@ -203,3 +203,28 @@ def test_certified_interval_covers_T_on_an_exact_stray_sweep():
     stray = rows["stray capacitance beyond the model"]
     assert "C_0/C = 0.2" in stray.note and stray.standard_uncertainty > 0
     assert abs(budget.estimate - T) <= budget.expanded_uncertainty
+
+
+def test_long_chain_stating_c0_gets_the_row_in_its_certificate_entry():
+    # Plumbing through the certification path (no science reference here: the dip is the
+    # tabulated exact N = 5 chain, docs/physics.md 1.3, which has no C_0): a file stating
+    # C_0/C = 0.1 on N = 5 is fitted with the rescaled stand-in, and its result entry names the
+    # model and carries the stray-capacitance row with its measured note.
+    from analysis.cbt.uncertainty import TypeBInputs  # noqa: PLC0415
+    from service.calibrations.cbt import sweep_result  # noqa: PLC0415
+
+    n, T, u = 5, 0.02, 1.0
+    x = np.linspace(-30, 30, 121)
+    g = FullTunnellingShape(n)(x, u) + 1e-4 * np.random.default_rng(2).standard_normal(x.size)
+    bias = x * n * BOLTZMANN * T / ELEMENTARY_CHARGE
+    text = f"# junctions_in_series: {n}\n# ground_capacitance_ratio: 0.1\nbias_V,conductance_S\n" + "".join(
+        f"{float(b)!r},{float(2e-6 * c)!r}\n" for b, c in zip(bias, g, strict=True))
+    quick = FitSettings(walkers=12, block=100, max_steps=4000, min_tau_multiple=20.0, tau_tolerance=0.1)
+    work = fit_file(parse_csv("long.csv", text.encode()), 1, quick)
+    entry, _ = sweep_result(work, TypeBInputs())
+    assert "u scaled by r = " in entry["model"] and "C_0/C = 0.1" in entry["model"]
+    assert "no stray-capacitance table for N = 5" in entry["diagnostics"]["model_choice"]
+    rows = {r["quantity"]: r for r in entry["budget"]["rows"]}
+    stray = rows["stray capacitance beyond the model"]
+    bound = STRAY_FALLBACK_ERROR_PER_U * 0.5 * entry["fit"]["u"]
+    assert stray["standard_uncertainty"] == pytest.approx(bound * entry["fit"]["posterior_mean_temperature_K"] / np.sqrt(3), rel=1e-6)
