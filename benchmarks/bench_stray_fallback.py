@@ -2,6 +2,7 @@
 
     .venv/bin/python benchmarks/bench_stray_fallback.py [--n 3 4] [--c0 0.05 0.1 0.2] [--reach 1.5]
     .venv/bin/python benchmarks/bench_stray_fallback.py --solver --n 5 --c0 0.2 --u 1 2
+    .venv/bin/python benchmarks/bench_stray_fallback.py --trend [--n 3 4 5 6]   (~3 min)
 
 For a chain longer than the stray-capacitance tables (N > 4) the certificate fits a model without
 C_0: the weak-blockade series (u <= 1) or the full C_0 = 0 model (u <= 2 for long chains). This
@@ -12,6 +13,10 @@ model's own error), and the difference (what C_0 adds), with u_fit the fitted (e
 Truth: for N = 3, 4 the exact stray-capacitance tables (FullTunnellingShape(N, c0_ratio), which
 reproduce the orthodox master equation to <= 1e-6 of G_T, docs/models.md); with ``--solver`` the
 master equation itself (analysis.cbt.tunnelling, any N; slow beyond N = 4).
+
+``--trend`` prints instead how the part of the exact dip beyond the rescaling grows with N:
+G_0/G_T(x, r_N u) − G/G_T(x, u; C_0) from the master equation at C_0/C = 0.2, near the
+half-depth bias (x = 2.7 at u = 1, 3.1 at u = 2), for each N given.
 """
 
 from __future__ import annotations
@@ -45,6 +50,18 @@ def fitted_error(shape, n: int, x: np.ndarray, g: np.ndarray) -> tuple[float, fl
     return float(theta[0] / T_TRUE - 1.0), float(theta[1])
 
 
+def trend(ns: list[int], c0: float = 0.2) -> None:
+    for u, x in ((1.0, 2.7), (2.0, 3.1)):
+        for n in ns:
+            start = time.perf_counter()
+            r = first_order_depth_factor(n, c0)
+            with_c0 = tunnelling.solve_master_equation(tunnelling.ArrayDescription(n, c0_ratio=c0), x, u)
+            rescaled = tunnelling.solve_master_equation(tunnelling.ArrayDescription(n), x, r * u)
+            print(f"u = {u:g}, x = {x:g}, N = {n}, C_0/C = {c0:g} (r = {r:.4f}): dip beyond the rescaling "
+                  f"{rescaled.conductance - with_c0.conductance:+.3e} [{time.perf_counter() - start:.1f} s]",
+                  flush=True)
+
+
 def main() -> None:
     ap = argparse.ArgumentParser()
     ap.add_argument("--n", type=int, nargs="+", default=[3, 4])
@@ -54,7 +71,11 @@ def main() -> None:
     ap.add_argument("--reach", type=float, default=5.0,
                     help="sweep reach in units of the first-order FWHM V_1/2 = 5.44 N k_B T/e")
     ap.add_argument("--solver", action="store_true", help="truth with C_0 from the master equation itself")
+    ap.add_argument("--trend", action="store_true", help="N-trend of the dip beyond the rescaling")
     args = ap.parse_args()
+    if args.trend:
+        trend(args.n)
+        return
     for n in args.n:
         zero = FullTunnellingShape(n)
         for c0 in args.c0:
