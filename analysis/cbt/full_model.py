@@ -385,8 +385,8 @@ class FullTunnellingShape:
             raise FullModelRangeError(
                 f"c0_ratio = {self.c0_ratio!r} for N = {self.n_junctions}: the full model has "
                 f"validated stray-capacitance tables only for N = 2-4 and 0 <= C_0/C <= "
-                f"{MAX_C0_RATIO} (docs/models.md); fit an effective ΔE (docs/physics.md §1.4) or "
-                "solve short chains with analysis.cbt.tunnelling.ArrayDescription(c0_ratio=...)"
+                f"{MAX_C0_RATIO} (docs/models.md); longer arrays with 0 < C_0/C <= {MAX_C0_RATIO} are "
+                "fitted by analysis.cbt.choice with u rescaled and a measured budget row"
             )
         tables = _load_tables()
         if c0 != 0.0:
