@@ -482,7 +482,7 @@ def main() -> None:
     parser.add_argument("--long-check", action="store_true",
                         help="exact N = 7, 8 points and Monte Carlo of N = 10-30 (~15 min)")
     parser.add_argument("--stray", action="store_true",
-                        help="exact N = 2-4 tables with C_0/C = 0.1, 0.2 (one core)")
+                        help="exact N = 2-4 tables with C_0/C = 0.05, 0.1, 0.15, 0.2 (N = 4: ~40 min of CPU)")
     parser.add_argument("--stray-bound", action="store_true",
                         help="off-grid points with C_0 > 0 that set the tables' model error")
     parser.add_argument("--stray-held-out", action="store_true",
