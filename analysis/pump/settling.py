@@ -493,6 +493,32 @@ def choose_discard(
 
     ``weights_and_u(d)`` returns the per-segment weights of the mean cycle difference and the
     standard uncertainty (A, indicated) the result would have with discard d."""
+    positions, first, latest = _discard_range(rec, minimum_s)
+    since, vals, noise = _profile(rec)
+    components = _peel(rec, positions, float(first[0]), latest, noise, max_components)
+    # Every fit counts; an unresolved one through its fixed-τ hypotheses (its jackknife with τ
+    # free, over a τ the data do not fix, is not a smooth statistic).
+    tq = float(special.stdtrit(rec.blocks - 1, 0.975))
+    low = max(minimum_s, float(first[0]), components[-1].fit.window_start_s)
+    candidates = positions[(positions >= low) & (positions <= latest)]
+    if candidates.size == 0:
+        candidates = np.array([low])
+    best = _scan_discards(
+        candidates,
+        lambda d: _try_discard(rec, components, d, tq, weights_and_u))
+    d, b, ub, u = best.discard_s, best.bias_a, best.bias_u_a, best.rest_u_a
+    result = SettlingAnalysis(tuple(components), d, minimum_s, b, ub, abs(b) + tq * ub,
+                              u, since, vals, noise, rec.blocks, ub > u)
+    _refuse_unbounded(rec, components, best, result)
+    return result
+
+
+def _discard_range(rec: StackedRecord, minimum_s: float
+                   ) -> tuple[np.ndarray, np.ndarray, float]:
+    """The stacked positions, those after the switch reading, and the latest discard allowed.
+
+    Refused when the segments hold one reading or the stated settling time leaves less than
+    ``MIN_KEPT_FRACTION`` of each segment."""
     positions = np.unique(np.concatenate([s.since for s in rec.stacks]))
     first = positions[positions > 0.5 * rec.reading_interval_s]
     if first.size == 0:
@@ -502,9 +528,18 @@ def choose_discard(
         raise SettlingError(
             f"the stated settling time {minimum_s:g} s leaves less than {MIN_KEPT_FRACTION:.0%} of "
             f"each {rec.segment_duration_s:g} s segment")
-    since, vals, noise = _profile(rec)
+    return positions, first, latest
+
+
+def _peel(rec: StackedRecord, positions: np.ndarray, start: float, latest: float, noise: float,
+          max_components: int) -> list[TransientComponent]:
+    """Fit transient components from ever later windows (the method of residuals for sums of
+    exponentials; common practice, no source).
+
+    Each resolved fit hands on to a window that starts where its transient, eq. (1), has fallen
+    to ``noise``: t = start + τ ln(peak/noise). Stops at the first unresolved fit, at
+    ``max_components``, or when the next window would start after ``latest``."""
     components: list[TransientComponent] = []
-    start = float(first[0])
     while len(components) < max_components:
         c = _component(rec, start)
         if c is None:
@@ -522,52 +557,72 @@ def choose_discard(
         start = float(nxt[0])
     if not components:
         raise SettlingError("no segment is long enough to fit the settling transient")
-    # Every fit counts; an unresolved one through its fixed-τ hypotheses (its jackknife with τ
-    # free, over a τ the data do not fix, is not a smooth statistic).
-    used = components
-    tq = float(special.stdtrit(rec.blocks - 1, 0.975))
-    low = max(minimum_s, float(first[0]), used[-1].fit.window_start_s)
-    candidates = positions[(positions >= low) & (positions <= latest)]
-    if candidates.size == 0:
-        candidates = np.array([low])
-    def evaluate(d: float) -> tuple[float, float, float, float, float]:
-        weights, u = weights_and_u(d)
-        sw = _stack_weights(rec, weights)
-        # The resolved fit that allows the largest residual bias sets the correction; an
-        # unresolved fit widens its uncertainty to its allowance but does not move its estimate.
-        worst = None
-        for c in used:
-            if not c.resolved:
-                continue
-            bs = residual_biases(rec, [c.fit, *c.replicates], d, sw)
-            b, ub = float(bs[0]), _jackknife_u(bs[1:])
-            if worst is None or abs(b) + tq * ub > abs(worst[0]) + tq * worst[1]:
-                worst = (b, ub, c)
-        b, ub, c = worst if worst is not None else (0.0, 0.0, None)
-        for a in used:
-            if a.resolved:
-                continue
-            # Not resolved: τ is open, so every τ of the range is a hypothesis; the largest
-            # jackknife u over them is the allowance.
-            allowance = max(_jackknife_u(residual_biases(rec, list(reps), d, sw))
-                            for _, reps in a.alternatives)
-            if allowance > ub:
-                ub, c = allowance, a
-        return (d, b, ub, u, c, math.hypot(u, ub))
+    return components
 
-    # Every candidate when there are few; else every k-th, then all between the best one's
-    # neighbours (the total uncertainty varies slowly with d).
+
+@dataclass(frozen=True)
+class _DiscardTrial:
+    """The outcome at one candidate discard: the correction b̂(d) and its uncertainty, the rest
+    of the result's uncertainty u(d), the component that sets the correction's uncertainty
+    (None when no fit contributes) and the combined √(u(d)² + u(b̂(d))²) that is minimised."""
+    discard_s: float
+    bias_a: float
+    bias_u_a: float
+    rest_u_a: float
+    setter: TransientComponent | None
+    total_u_a: float
+
+
+def _try_discard(rec: StackedRecord, components: list[TransientComponent], d: float, tq: float,
+                 weights_and_u: Callable[[float], tuple[np.ndarray, float]]) -> _DiscardTrial:
+    """Correction and uncertainties at discard ``d``: residual bias by eq. (2) with a jackknife u.
+
+    The resolved fit that allows the largest |b̂| + t u(b̂) sets the correction; an unresolved
+    fit widens its uncertainty to its allowance but does not move its estimate."""
+    weights, u = weights_and_u(d)
+    sw = _stack_weights(rec, weights)
+    worst = None
+    for c in components:
+        if not c.resolved:
+            continue
+        bs = residual_biases(rec, [c.fit, *c.replicates], d, sw)
+        b, ub = float(bs[0]), _jackknife_u(bs[1:])
+        if worst is None or abs(b) + tq * ub > abs(worst[0]) + tq * worst[1]:
+            worst = (b, ub, c)
+    b, ub, c = worst if worst is not None else (0.0, 0.0, None)
+    for a in components:
+        if a.resolved:
+            continue
+        # Not resolved: τ is open, so every τ of the range is a hypothesis; the largest
+        # jackknife u over them is the allowance.
+        allowance = max(_jackknife_u(residual_biases(rec, list(reps), d, sw))
+                        for _, reps in a.alternatives)
+        if allowance > ub:
+            ub, c = allowance, a
+    return _DiscardTrial(d, b, ub, u, c, math.hypot(u, ub))
+
+
+def _scan_discards(candidates: np.ndarray, evaluate: Callable[[float], _DiscardTrial]
+                   ) -> _DiscardTrial:
+    """The candidate with the smallest combined uncertainty.
+
+    Every candidate when there are few; else every k-th, then all between the best one's
+    neighbours (the total uncertainty varies slowly with d)."""
     step = max(1, int(math.ceil(candidates.size / MAX_SCANNED)))
     tried = {int(k): evaluate(float(candidates[k])) for k in range(0, candidates.size, step)}
-    k_best = min(tried, key=lambda k: tried[k][-1])
+    k_best = min(tried, key=lambda k: tried[k].total_u_a)
     for k in range(max(0, k_best - step + 1), min(candidates.size, k_best + step)):
         if k not in tried:
             tried[k] = evaluate(float(candidates[k]))
-    best = min(tried.values(), key=lambda x: x[-1])
-    d, b, ub, u, setter, _ = best
-    result = SettlingAnalysis(tuple(components), d, minimum_s, b, ub, abs(b) + tq * ub,
-                              u, since, vals, noise, rec.blocks, ub > u)
-    slow = [c for c in used if c.resolved and c.at_limit]
+    return min(tried.values(), key=lambda x: x.total_u_a)
+
+
+def _refuse_unbounded(rec: StackedRecord, components: list[TransientComponent],
+                      best: _DiscardTrial, result: SettlingAnalysis) -> None:
+    """Raise SettlingError (carrying ``result``) when the transient cannot be bounded: a resolved
+    fit's τ at the top of its range, or an unresolved fit whose allowance exceeds the rest of
+    the uncertainty at the chosen discard."""
+    slow = [c for c in components if c.resolved and c.at_limit]
     if slow:
         fit = slow[0].fit
         raise SettlingError(
@@ -576,8 +631,9 @@ def choose_discard(
             f"largest the analysis accepts ({fit.tau_s:.3g} s for the "
             f"{rec.segment_duration_s:g} s segments), so it may be slower still and its tail in "
             "the kept readings cannot be bounded; record longer segments", result)
-    if ub > u and not setter.resolved:
-        c = setter
+    d, ub, u = best.discard_s, best.bias_u_a, best.rest_u_a
+    if ub > u and not best.setter.resolved:
+        c = best.setter
         fit = c.fit
         what = ("the transient is resolved" if c.resolved else
                 "the transient cannot be resolved from the noise")
@@ -589,4 +645,3 @@ def choose_discard(
             f"best discard ({d:g} s of each {rec.segment_duration_s:g} s segment) the uncertainty "
             f"of its residual bias ({ub * 1e15:.3g} fA) exceeds that of the rest of the result "
             f"({u * 1e15:.3g} fA); record longer segments or more cycles", result)
-    return result
