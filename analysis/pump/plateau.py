@@ -924,63 +924,89 @@ def analyse_plateau_map(
     skipped: list[str] = []
     for v2 in np.unique(gate2):
         sel = gate2 == v2
-        g, yy = gate[sel], y[sel]
         try:
-            shape = inspect_scan(g, yy)
-            if n not in shape.plateaus or shape.baseline + shape.steps < n + 1:
-                raise PlateauScanError(f"plateau {n} and the onset of step {n + 1} not both seen")
-            fit = fit_plateau(g, yy, DECAY_CASCADE, shape=shape)
-            k = fit.parameters.size
-            cov = fit.covariance[:k, :k]
-            if not np.all(np.isfinite(cov)):
-                raise PlateauScanError("fit covariance not finite")
-            sample = rng.multivariate_normal(fit.parameters, cov, size=draws, method="eigh")
-            sample = sample[np.sign(sample[:, 0]) == fit.direction]
-            wp_best = working_point(DECAY_CASCADE, fit.parameters, n, shape.baseline)
-            # Its median deviation is the slice's figure (computed once, inside working_point).
-            wp = working_point(DECAY_CASCADE, sample, n, shape.baseline, max_samples=max(draws, 1))
+            slices.append(_map_slice(gate[sel], y[sel], float(v2), n, rng, draws))
         except (PlateauScanError, ValueError, np.linalg.LinAlgError) as exc:
             skipped.append(f"gate2 = {v2:g} V: {exc}")
-            continue
-        j = n - shape.baseline
-        a = fit.parameters[0]
-        delta_next = float(a * (fit.parameters[1 + j] - fit.parameters[j]))
-        slices.append(MapSlice(float(v2), wp_best.gate_V, delta_next, wp.relative_deviation_median,
-                               wp.relative_deviation_interval, int(sel.sum())))
     if not slices:
         raise PlateauScanError("no slice of the map shows plateau "
                                f"{n} with the onset of the next step: " + "; ".join(skipped[:3]))
     ibest = int(np.argmin([abs(s.predicted_relative_deviation) for s in slices]))
     best = slices[ibest]
+    window = _flat_window(slices, ibest, tolerance)
+    shift = _working_gate_shift(slices, ibest)
+    statement = _map_statement(n, best, tolerance, window, shift)
+    return MapAnalysis(n, tuple(slices), best, tolerance, window, shift, tuple(skipped), statement)
 
+
+def _map_slice(g: np.ndarray, yy: np.ndarray, v2: float, n: int, rng: np.random.Generator,
+               draws: int) -> MapSlice:
+    """Fit the decay cascade (Kashcheyevs & Kaestner, PRL 104, 186805 (2010)) to one gate2
+    slice and summarise it as a MapSlice.
+
+    The working point's deviation comes from ``draws`` vectors of the Laplace approximation
+    N(θ̂, covariance), drawn from ``rng`` (shared across slices, so the order of slices fixes the
+    draws). Raises PlateauScanError when plateau ``n`` and the next step's onset are not both
+    seen or the covariance is not finite."""
+    shape = inspect_scan(g, yy)
+    if n not in shape.plateaus or shape.baseline + shape.steps < n + 1:
+        raise PlateauScanError(f"plateau {n} and the onset of step {n + 1} not both seen")
+    fit = fit_plateau(g, yy, DECAY_CASCADE, shape=shape)
+    k = fit.parameters.size
+    cov = fit.covariance[:k, :k]
+    if not np.all(np.isfinite(cov)):
+        raise PlateauScanError("fit covariance not finite")
+    sample = rng.multivariate_normal(fit.parameters, cov, size=draws, method="eigh")
+    sample = sample[np.sign(sample[:, 0]) == fit.direction]
+    wp_best = working_point(DECAY_CASCADE, fit.parameters, n, shape.baseline)
+    # Its median deviation is the slice's figure (computed once, inside working_point).
+    wp = working_point(DECAY_CASCADE, sample, n, shape.baseline, max_samples=max(draws, 1))
+    j = n - shape.baseline
+    a = fit.parameters[0]
+    delta_next = float(a * (fit.parameters[1 + j] - fit.parameters[j]))
+    return MapSlice(v2, wp_best.gate_V, delta_next, wp.relative_deviation_median,
+                    wp.relative_deviation_interval, int(g.size))
+
+
+def _flat_window(slices: list[MapSlice], ibest: int, tolerance: float
+                 ) -> tuple[float, float] | None:
+    """The contiguous gate2 range around the best slice over which the 97.5 % bound of
+    |deviation| stays within ``tolerance``; None when even the best slice exceeds it."""
     def within(s: MapSlice) -> bool:
         return max(abs(s.deviation_interval[0]), abs(s.deviation_interval[1])) <= tolerance
 
-    window = None
-    if within(best):
-        lo = hi = ibest
-        while lo - 1 >= 0 and within(slices[lo - 1]):
-            lo -= 1
-        while hi + 1 < len(slices) and within(slices[hi + 1]):
-            hi += 1
-        window = (slices[lo].gate2_V, slices[hi].gate2_V)
+    if not within(slices[ibest]):
+        return None
+    lo = hi = ibest
+    while lo - 1 >= 0 and within(slices[lo - 1]):
+        lo -= 1
+    while hi + 1 < len(slices) and within(slices[hi + 1]):
+        hi += 1
+    return (slices[lo].gate2_V, slices[hi].gate2_V)
+
+
+def _working_gate_shift(slices: list[MapSlice], ibest: int) -> float:
+    """Working gate voltage per volt on gate2: the least-squares slope over the best slice and
+    its neighbours (NaN when the map has one slice)."""
     nb = slices[max(0, ibest - 1): ibest + 2]
-    if len(nb) >= 2:
-        shift = float(np.polyfit([s.gate2_V for s in nb], [s.working_gate_V for s in nb], 1)[0])
-    else:
-        shift = math.nan
+    if len(nb) < 2:
+        return math.nan
+    return float(np.polyfit([s.gate2_V for s in nb], [s.working_gate_V for s in nb], 1)[0])
+
+
+def _map_statement(n: int, best: MapSlice, tolerance: float,
+                   window: tuple[float, float] | None, shift: float) -> str:
+    """The sentence the certificate prints about the map's working point and its robustness."""
     if window is None:
-        statement = (
+        return (
             f"The flattest plateau {n} is at gate2 = {best.gate2_V:g} V, gate = "
             f"{best.working_gate_V:.6g} V, predicted deviation {best.predicted_relative_deviation:.2g}; "
             f"its 95 % bound exceeds the tolerance {tolerance:g} even there."
         )
-    else:
-        statement = (
-            f"The flattest plateau {n} is at gate2 = {best.gate2_V:g} V, gate = "
-            f"{best.working_gate_V:.6g} V, predicted deviation {best.predicted_relative_deviation:.2g}; "
-            f"the predicted deviation stays within {tolerance:g} (95 % bound) for gate2 from "
-            f"{window[0]:g} V to {window[1]:g} V, and the working gate moves by "
-            f"{shift:.3g} V per volt on gate2."
-        )
-    return MapAnalysis(n, tuple(slices), best, tolerance, window, shift, tuple(skipped), statement)
+    return (
+        f"The flattest plateau {n} is at gate2 = {best.gate2_V:g} V, gate = "
+        f"{best.working_gate_V:.6g} V, predicted deviation {best.predicted_relative_deviation:.2g}; "
+        f"the predicted deviation stays within {tolerance:g} (95 % bound) for gate2 from "
+        f"{window[0]:g} V to {window[1]:g} V, and the working gate moves by "
+        f"{shift:.3g} V per volt on gate2."
+    )
