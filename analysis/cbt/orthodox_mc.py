@@ -64,60 +64,27 @@ def simulate_current(
     centred on and discards ``burn_in_events`` events before averaging. Reproducible: the same
     ``seed`` gives the same result bit for bit.
     """
-    if not (math.isfinite(x) and math.isfinite(u)) or u <= 0:
-        raise TunnellingModelError(f"need finite x and u > 0; got x = {x!r}, u = {u!r}")
-    if n_replicas < 2 or events_per_replica < 1 or burn_in_events < 0:
-        raise TunnellingModelError(
-            "need n_replicas >= 2, events_per_replica >= 1 and burn_in_events >= 0"
-        )
+    _check_run(x, u, n_replicas, events_per_replica, burn_in_events)
     rng = np.random.default_rng(seed)
     n = array.n_junctions
-    m = array.n_islands
     c = charging_parameter(u, n)
-    v = n * x
-    kinv = array.inverse_capacitance()
     e_junction = c * array.junction_charging()
     inv_r = 1.0 / np.asarray(array.resistance_ratios)
-    offsets = np.asarray(array.offset_charges)
-    profile = v * (0.5 - np.arange(1, n) / n)
-    start = np.rint(-(array.c0_ratio * profile / c) + offsets).astype(np.int64)
-    charges = np.tile(start, (n_replicas, 1))
-    # Node potentials (reduced, e φ/k_B T) with the leads at ±v/2; islands from K̃ (docs/physics.md §1.3).
-    psi = np.empty((n_replicas, n + 1))
-    psi[:, 0] = 0.5 * v
-    psi[:, n] = -0.5 * v
-    psi[:, 1:n] = c * (offsets - charges) @ kinv + v * array.lead_coupling()
-    # Padded K̃ so that a lead (node 0 or N) contributes a zero row to the potential update.
-    kpad = np.zeros((n + 1, m))
-    kpad[1:n] = kinv
-    replicas = np.arange(n_replicas)
+    chain = _ReplicaChains.start(array, c, n * x, n_replicas)
     elapsed = np.zeros(n_replicas)
     weighted = np.zeros(n_replicas)
     for step in range(burn_in_events + events_per_replica):
-        drive = psi[:, 1:] - psi[:, :-1]  # ψ_k − ψ_{k−1}, junctions k = 1..N
-        forward, _ = orthodox_rate_factor(drive + e_junction)
-        backward, _ = orthodox_rate_factor(-drive + e_junction)
-        forward *= inv_r
-        backward *= inv_r
+        forward, backward = _junction_rates(chain.psi, e_junction, inv_r)
         rates = np.concatenate((forward, backward), axis=1)
         total = rates.sum(axis=1)
+        # Gillespie: exponential dwell at the total rate, then the event in proportion to its rate.
         dwell = rng.exponential(size=n_replicas) / total
         if step >= burn_in_events:
             elapsed += dwell
             weighted += dwell * (forward - backward).mean(axis=1)
-        # Choose the event: forward through junction k moves an electron from node k to k − 1.
         pick = rng.random(n_replicas) * total
         event = np.minimum((np.cumsum(rates, axis=1) < pick[:, None]).sum(axis=1), 2 * n - 1)
-        junction = event % n + 1
-        is_forward = event < n
-        source = np.where(is_forward, junction, junction - 1)
-        target = np.where(is_forward, junction - 1, junction)
-        # An electron leaving node a raises its potential by c K̃[a]; arriving at b lowers it.
-        psi[:, 1:n] += c * (kpad[source] - kpad[target])
-        src_island = (source >= 1) & (source <= m)
-        tgt_island = (target >= 1) & (target <= m)
-        charges[replicas[src_island], source[src_island] - 1] -= 1
-        charges[replicas[tgt_island], target[tgt_island] - 1] += 1
+        chain.tunnel(event)
     per_replica = weighted / elapsed
     return MonteCarloCurrent(
         x=float(x),
@@ -129,6 +96,80 @@ def simulate_current(
         seed=seed,
         replica_currents=per_replica,
     )
+
+
+def _check_run(x: float, u: float, n_replicas: int, events_per_replica: int,
+               burn_in_events: int) -> None:
+    if not (math.isfinite(x) and math.isfinite(u)) or u <= 0:
+        raise TunnellingModelError(f"need finite x and u > 0; got x = {x!r}, u = {u!r}")
+    if n_replicas < 2 or events_per_replica < 1 or burn_in_events < 0:
+        raise TunnellingModelError(
+            "need n_replicas >= 2, events_per_replica >= 1 and burn_in_events >= 0"
+        )
+
+
+def _junction_rates(psi: np.ndarray, e_junction: np.ndarray, inv_r: np.ndarray
+                    ) -> tuple[np.ndarray, np.ndarray]:
+    """Forward and backward orthodox rates through junctions k = 1..N of every replica
+    (docs/physics.md §1.3): forward moves an electron from node k to k − 1, with free-energy
+    argument ψ_k − ψ_{k−1} + E_k, backward the reverse; each scaled by R̄/R_k."""
+    drive = psi[:, 1:] - psi[:, :-1]  # ψ_k − ψ_{k−1}, junctions k = 1..N
+    forward, _ = orthodox_rate_factor(drive + e_junction)
+    backward, _ = orthodox_rate_factor(-drive + e_junction)
+    forward *= inv_r
+    backward *= inv_r
+    return forward, backward
+
+
+@dataclass
+class _ReplicaChains:
+    """The island charges and node potentials of every replica, updated event by event.
+
+    ``psi`` holds the reduced node potentials e φ/k_B T with the leads (nodes 0 and N) at ±v/2
+    and the islands from K̃ (docs/physics.md §1.3); ``kpad`` is K̃ padded with zero rows for the
+    leads, so that an electron entering or leaving a lead changes no island potential."""
+
+    charges: np.ndarray
+    psi: np.ndarray
+    kpad: np.ndarray
+    c: float
+    n_islands: int
+
+    @classmethod
+    def start(cls, array: ArrayDescription, c: float, v: float, n_replicas: int
+              ) -> _ReplicaChains:
+        """Every replica in the configuration the master equation's charge window is centred on."""
+        n = array.n_junctions
+        m = array.n_islands
+        kinv = array.inverse_capacitance()
+        offsets = np.asarray(array.offset_charges)
+        profile = v * (0.5 - np.arange(1, n) / n)
+        start = np.rint(-(array.c0_ratio * profile / c) + offsets).astype(np.int64)
+        charges = np.tile(start, (n_replicas, 1))
+        psi = np.empty((n_replicas, n + 1))
+        psi[:, 0] = 0.5 * v
+        psi[:, n] = -0.5 * v
+        psi[:, 1:n] = c * (offsets - charges) @ kinv + v * array.lead_coupling()
+        kpad = np.zeros((n + 1, m))
+        kpad[1:n] = kinv
+        return cls(charges, psi, kpad, c, m)
+
+    def tunnel(self, event: np.ndarray) -> None:
+        """Apply one event per replica: ``event`` < N is forward through junction event + 1
+        (node k to k − 1), else backward through junction event − N + 1."""
+        n = self.psi.shape[1] - 1
+        m = self.n_islands
+        junction = event % n + 1
+        is_forward = event < n
+        source = np.where(is_forward, junction, junction - 1)
+        target = np.where(is_forward, junction - 1, junction)
+        # An electron leaving node a raises its potential by c K̃[a]; arriving at b lowers it.
+        self.psi[:, 1:n] += self.c * (self.kpad[source] - self.kpad[target])
+        replicas = np.arange(self.psi.shape[0])
+        src_island = (source >= 1) & (source <= m)
+        tgt_island = (target >= 1) & (target <= m)
+        self.charges[replicas[src_island], source[src_island] - 1] -= 1
+        self.charges[replicas[tgt_island], target[tgt_island] - 1] += 1
 
 
 def conductance_by_difference(
