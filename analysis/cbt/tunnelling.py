@@ -416,20 +416,91 @@ def _solve_on_window(
     window: ChargeWindow,
     warm_start: _WindowSolution | None = None,
 ) -> _WindowSolution:
-    n = array.n_junctions
+    """Stationary P and dP/dx on one charge window, and from them J and G/G_T.
+
+    Solves Q P = 0 and Q P' = −(dQ/dx) P (the analytic derivative of the orthodox master
+    equation, docs/physics.md §1.3; Melsen et al., PRB 55, 10638 (1997)) with one balance
+    equation replaced by a pinned weight, then averages the junction currents J = Σ_k Γ_net,k P
+    and conductances dJ/dx over the junctions (they agree when the solve is sound)."""
     m = array.n_islands
     n_states = len(states)
     index = _StateIndex(states)
+    gen = _generator(array, c, x, states, index)
+    pivot = int(index.find(np.asarray(window.centre, dtype=np.int64)[None, :])[0])
+    if pivot < 0:
+        pivot = 0
+    matrix, dgen = _pinned_system(gen, pivot, n_states)
+    lu = _factorise(matrix) if n_states <= _direct_solve_limit(m) else None
+    guess_p = guess_dp = None
+    if warm_start is not None and lu is None:
+        guess_p, guess_dp = _warm_guess(warm_start, states, pivot)
 
-    kinv = array.inverse_capacitance()
+    rhs = np.zeros(n_states)
+    rhs[pivot] = 1.0
+    prob, method = _linear_solve(matrix, rhs, guess_p, lu)
+    prob /= prob.sum()
+    rhs_d = -(dgen @ prob)
+    rhs_d[pivot] = 0.0
+    dprob, method_d = _linear_solve(matrix, rhs_d, guess_dp, lu)
+    dprob -= dprob.sum() * prob
+
+    currents = gen.junction_current @ prob
+    conductances = gen.junction_current @ dprob + gen.junction_current_derivative @ prob
+    spread = float(np.max(np.abs(conductances - conductances.mean())))
+    if spread > 1e-8:
+        logger.warning("junction conductances disagree by %.3g (ill-conditioned solve)", spread)
+    return _WindowSolution(
+        conductance=float(conductances.mean()),
+        current=float(currents.mean()),
+        mean_charge=prob @ states,
+        edge_probability=float(prob[gen.boundary].sum()),
+        states=states,
+        probability=prob,
+        probability_derivative=dprob,
+        method=method if method == method_d else f"{method}/{method_d}",
+    )
+
+
+@dataclass(frozen=True)
+class _Generator:
+    """The master equation's generator Q and its bias derivative dQ/dx on a window, as
+    coordinate lists (``rows``, ``cols``, ``rate``, ``rate_derivative``; the diagonal last),
+    with the net forward rate through each junction per state (``junction_current``, N × states)
+    and its derivative, and which states have a transition leaving the window (``boundary``)."""
+
+    rows: np.ndarray
+    cols: np.ndarray
+    rate: np.ndarray
+    rate_derivative: np.ndarray
+    junction_current: np.ndarray
+    junction_current_derivative: np.ndarray
+    boundary: np.ndarray
+
+
+def _node_potentials(array: ArrayDescription, c: float, x: float, states: np.ndarray
+                     ) -> tuple[np.ndarray, np.ndarray]:
+    """Reduced node potentials ψ = eφ/k_B T of every state (leads at ±v/2, v = N x; islands
+    c (q_0 − n) K̃ + v × lead coupling, docs/physics.md §1.3) and their derivative in x."""
+    n = array.n_junctions
     v = n * x
     coupling = array.lead_coupling()
     charges = np.asarray(array.offset_charges) - states  # island charge in units of e
-    psi = np.empty((n_states, n + 1))
+    psi = np.empty((len(states), n + 1))
     psi[:, 0] = 0.5 * v
     psi[:, n] = -0.5 * v
-    psi[:, 1:n] = c * charges @ kinv + v * coupling
+    psi[:, 1:n] = c * charges @ array.inverse_capacitance() + v * coupling
     dpsi_dx = np.concatenate(([0.5], coupling, [-0.5])) * n
+    return psi, dpsi_dx
+
+
+def _generator(array: ArrayDescription, c: float, x: float, states: np.ndarray,
+               index: _StateIndex) -> _Generator:
+    """Orthodox rates Γ = φ(ΔF)/R_k of every one-electron transition inside the window and their
+    derivatives in x (docs/physics.md §1.3; Melsen et al., PRB 55, 10638 (1997))."""
+    n = array.n_junctions
+    m = array.n_islands
+    n_states = len(states)
+    psi, dpsi_dx = _node_potentials(array, c, x, states)
     e_junction = c * array.junction_charging()
     inv_r = 1.0 / np.asarray(array.resistance_ratios)
 
@@ -471,66 +542,44 @@ def _solve_on_window(
     cols.append(src)
     data.append(-out_rate)
     ddata.append(-out_drate)
-    rows_a = np.concatenate(rows)
-    cols_a = np.concatenate(cols)
-    data_a = np.concatenate(data)
-    ddata_a = np.concatenate(ddata)
+    return _Generator(np.concatenate(rows), np.concatenate(cols), np.concatenate(data),
+                      np.concatenate(ddata), jnet, djnet, boundary)
 
-    # The balance equations are linearly dependent (columns of a generator sum to zero), so one
-    # of them, the centre state's, is replaced by fixing that state's weight: P_pivot = 1. Fixing
-    # one entry keeps the matrix as sparse as Q; a row of ones (Σ P = 1) would be dense and ruin
-    # the LU fill-in. Normalising afterwards gives P; for P' any solution of Q y = −Q'P is P' up
-    # to a multiple of P, and Σ P' = 0 fixes that multiple.
-    pivot = int(index.find(np.asarray(window.centre, dtype=np.int64)[None, :])[0])
-    if pivot < 0:
-        pivot = 0
-    keep = rows_a != pivot
-    a_rows = np.concatenate((rows_a[keep], [pivot]))
-    a_cols = np.concatenate((cols_a[keep], [pivot]))
-    a_data = np.concatenate((data_a[keep], [1.0]))
+
+def _pinned_system(gen: _Generator, pivot: int, n_states: int
+                   ) -> tuple[sp.csc_matrix, sp.csr_matrix]:
+    """Q with the pivot's balance equation replaced by P_pivot = 1, and dQ/dx.
+
+    The balance equations are linearly dependent (columns of a generator sum to zero), so one
+    of them, the centre state's, is replaced by fixing that state's weight. Fixing one entry
+    keeps the matrix as sparse as Q; a row of ones (Σ P = 1) would be dense and ruin the LU
+    fill-in. Normalising afterwards gives P; for P' any solution of Q y = −Q'P is P' up to a
+    multiple of P, and Σ P' = 0 fixes that multiple."""
+    keep = gen.rows != pivot
+    a_rows = np.concatenate((gen.rows[keep], [pivot]))
+    a_cols = np.concatenate((gen.cols[keep], [pivot]))
+    a_data = np.concatenate((gen.rate[keep], [1.0]))
     matrix = sp.csc_matrix((a_data, (a_rows, a_cols)), shape=(n_states, n_states))
-    dgen = sp.csr_matrix((ddata_a, (rows_a, cols_a)), shape=(n_states, n_states))
-    lu = _factorise(matrix) if n_states <= _direct_solve_limit(m) else None
+    dgen = sp.csr_matrix((gen.rate_derivative, (gen.rows, gen.cols)), shape=(n_states, n_states))
+    return matrix, dgen
 
-    # Warm start (a bias sweep): the previous point's P and P', carried over state by state and
-    # scaled to the pinned normalisation P_pivot = 1.
-    guess_p = guess_dp = None
-    if warm_start is not None and lu is None:
-        where = _StateIndex(warm_start.states).find(states)
-        carried = where >= 0
-        old_p = np.zeros(n_states)
-        old_dp = np.zeros(n_states)
-        old_p[carried] = warm_start.probability[where[carried]]
-        old_dp[carried] = warm_start.probability_derivative[where[carried]]
-        if old_p[pivot] > 0:
-            # The pinned systems' solutions are P/P_pivot and P' − (P'_pivot/P_pivot) P.
-            guess_p = old_p / old_p[pivot]
-            guess_dp = old_dp - (old_dp[pivot] / old_p[pivot]) * old_p
 
-    rhs = np.zeros(n_states)
-    rhs[pivot] = 1.0
-    prob, method = _linear_solve(matrix, rhs, guess_p, lu)
-    prob /= prob.sum()
-    rhs_d = -(dgen @ prob)
-    rhs_d[pivot] = 0.0
-    dprob, method_d = _linear_solve(matrix, rhs_d, guess_dp, lu)
-    dprob -= dprob.sum() * prob
-
-    currents = jnet @ prob
-    conductances = jnet @ dprob + djnet @ prob
-    spread = float(np.max(np.abs(conductances - conductances.mean())))
-    if spread > 1e-8:
-        logger.warning("junction conductances disagree by %.3g (ill-conditioned solve)", spread)
-    return _WindowSolution(
-        conductance=float(conductances.mean()),
-        current=float(currents.mean()),
-        mean_charge=prob @ states,
-        edge_probability=float(prob[boundary].sum()),
-        states=states,
-        probability=prob,
-        probability_derivative=dprob,
-        method=method if method == method_d else f"{method}/{method_d}",
-    )
+def _warm_guess(warm_start: _WindowSolution, states: np.ndarray, pivot: int
+                ) -> tuple[np.ndarray | None, np.ndarray | None]:
+    """Starting vectors for the iterative solve along a bias sweep: the previous point's P and
+    P', carried over state by state and scaled to the pinned normalisation P_pivot = 1 (None
+    when the pivot state carried no weight)."""
+    n_states = len(states)
+    where = _StateIndex(warm_start.states).find(states)
+    carried = where >= 0
+    old_p = np.zeros(n_states)
+    old_dp = np.zeros(n_states)
+    old_p[carried] = warm_start.probability[where[carried]]
+    old_dp[carried] = warm_start.probability_derivative[where[carried]]
+    if not old_p[pivot] > 0:
+        return None, None
+    # The pinned systems' solutions are P/P_pivot and P' − (P'_pivot/P_pivot) P.
+    return old_p / old_p[pivot], old_dp - (old_dp[pivot] / old_p[pivot]) * old_p
 
 
 def solve_master_equation(
