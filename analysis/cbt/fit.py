@@ -390,70 +390,18 @@ def least_squares_fit(shape: DipShape, data: SweepData, start: np.ndarray,
     scale 3σ (Huber-type M-estimation, Huber, *Robust Statistics*, Wiley 1981), so a few wild
     points cannot pull the optimum; the covariance is then still the ordinary one at that optimum.
     """
-    bounds = prior_bounds(shape, data)
-    lo = np.array([bounds[k][0] for k in NONLINEAR])
-    hi = np.array([bounds[k][1] for k in NONLINEAR])
-    lo[0] = max(lo[0], 1e-9 * max(abs(float(start[0])), 1e-12))
-    margin = 1e-7 * (hi - lo)
-    start = np.clip(np.asarray(start, dtype=float), lo + margin, hi - margin)
-    scale0 = np.array([start[0], max(start[1], 1e-3), start[0] * BOLTZMANN / ELEMENTARY_CHARGE])
-    # Residuals in units of the noise level, so that the optimiser's tolerances mean the same on any
-    # conductance scale (scipy's gradient test is absolute).
-    likelihood = ProfiledLikelihood(shape, data)
-    y_raw = likelihood.y
-    unit = difference_noise_scale(y_raw) or float(np.median(np.abs(y_raw))) * 1e-6 or 1.0
-    y = y_raw / unit
-    k = likelihood.amplitudes
-
-    def design(theta: np.ndarray) -> np.ndarray:
-        return np.stack(likelihood.columns(theta[None, :]), axis=-1)[0] / unit
-
-    def profile_resid(z: np.ndarray) -> np.ndarray:
-        a = design(np.clip(z * scale0, lo, hi))
-        coef = np.linalg.lstsq(a, y, rcond=None)[0]
-        return y - a @ coef
-
+    problem = _ScaledProblem.build(shape, data, start)
     if robust_scale is not None and robust_scale > 0:
-        a0 = design(start)
-        amp0 = np.linalg.lstsq(a0, y, rcond=None)[0]
-        amp_scale = np.full(k, abs(amp0[0]) if amp0[0] != 0 else 1.0)
-        if k == 2:
-            amp_scale[1] = amp_scale[0] / max(float(np.ptp(data.bias)), 1e-30)
-
-        def full_resid(z: np.ndarray) -> np.ndarray:
-            return y - design(np.clip(z[:3] * scale0, lo, hi)) @ (z[3:] * amp_scale)
-
-        z0 = np.concatenate([start / scale0, amp0 / amp_scale])
-        zl = np.concatenate([lo / scale0, np.full(k, -np.inf)])
-        zh = np.concatenate([hi / scale0, np.full(k, np.inf)])
-        sol = optimize.least_squares(full_resid, z0, bounds=(zl, zh), method="trf", x_scale="jac",
-                                     loss="soft_l1", f_scale=3.0 * robust_scale / unit)
-        z_opt = sol.x[:3]
-        active = sol.active_mask[:3]
+        z_opt, active, sol = problem.robust_optimum(robust_scale, float(np.ptp(data.bias)))
     else:
-        sol = optimize.least_squares(profile_resid, start / scale0, bounds=(lo / scale0, hi / scale0),
-                                     method="trf", x_scale="jac")
-        z_opt = sol.x
-        active = sol.active_mask
-    theta = np.clip(z_opt * scale0, lo, hi)
-    coef, rss, _, _ = likelihood.profile(theta[None, :])
-    m = likelihood.points
-    dof = m - 3 - k
+        z_opt, active, sol = problem.ordinary_optimum()
+    lo, hi = problem.lo, problem.hi
+    theta = np.clip(z_opt * problem.scale0, lo, hi)
+    coef, rss, _, _ = problem.likelihood.profile(theta[None, :])
+    m = problem.likelihood.points
+    dof = m - 3 - problem.likelihood.amplitudes
     s2 = float(rss[0]) / dof
-    # Jacobian of the profiled residual at the optimum (central differences, steps inside the box).
-    step = 1e-5 * np.maximum(np.abs(z_opt), 1e-3)
-    jac = np.empty((y.size, 3))
-    for i in range(3):
-        e = np.zeros(3)
-        e[i] = step[i]
-        jac[:, i] = (profile_resid(z_opt + e) - profile_resid(z_opt - e)) / (2 * step[i])
-    jac = jac * unit / scale0
-    try:
-        cov = np.linalg.inv(jac.T @ jac) * s2
-        se = np.sqrt(np.abs(np.diag(cov)))
-    except np.linalg.LinAlgError:
-        se = np.abs(theta) * 1e-2
-        cov = np.diag(se**2)
+    cov, se = problem.covariance(z_opt, theta, s2)
     near = np.minimum(theta - lo, hi - theta) <= np.maximum(1e-6 * (hi - lo), 1e-3 * se)
     at_bound = tuple(name for name, a, nb in zip(NONLINEAR, active, near, strict=True) if a != 0 or nb)
     return {
@@ -467,6 +415,103 @@ def least_squares_fit(shape: DipShape, data: SweepData, start: np.ndarray,
         "at_bound": at_bound,
         "bounds": (lo, hi),
     }
+
+
+@dataclass(frozen=True)
+class _ScaledProblem:
+    """The profiled least-squares problem of :func:`least_squares_fit` in the optimiser's units.
+
+    Parameters are scaled by ``scale0`` (T, u, and the thermal voltage k_B T/e for V₀) and the
+    residuals by ``unit``, a noise level from successive differences, so that the optimiser's
+    tolerances mean the same on any conductance scale (scipy's gradient test is absolute).
+    ``lo``/``hi`` are the prior box (:func:`prior_bounds`) and ``start`` the clipped start point.
+    """
+
+    likelihood: ProfiledLikelihood
+    lo: np.ndarray
+    hi: np.ndarray
+    start: np.ndarray
+    scale0: np.ndarray
+    unit: float
+    y: np.ndarray
+
+    @classmethod
+    def build(cls, shape: DipShape, data: SweepData, start: np.ndarray) -> _ScaledProblem:
+        bounds = prior_bounds(shape, data)
+        lo = np.array([bounds[k][0] for k in NONLINEAR])
+        hi = np.array([bounds[k][1] for k in NONLINEAR])
+        lo[0] = max(lo[0], 1e-9 * max(abs(float(start[0])), 1e-12))
+        margin = 1e-7 * (hi - lo)
+        start = np.clip(np.asarray(start, dtype=float), lo + margin, hi - margin)
+        scale0 = np.array([start[0], max(start[1], 1e-3), start[0] * BOLTZMANN / ELEMENTARY_CHARGE])
+        likelihood = ProfiledLikelihood(shape, data)
+        y_raw = likelihood.y
+        unit = difference_noise_scale(y_raw) or float(np.median(np.abs(y_raw))) * 1e-6 or 1.0
+        return cls(likelihood, lo, hi, start, scale0, unit, y_raw / unit)
+
+    def design(self, theta: np.ndarray) -> np.ndarray:
+        """Whitened design matrix (m, k) at one parameter set, in units of ``unit``."""
+        return np.stack(self.likelihood.columns(theta[None, :]), axis=-1)[0] / self.unit
+
+    def profile_resid(self, z: np.ndarray) -> np.ndarray:
+        """Residuals at scaled parameters ``z`` with the amplitudes solved by linear least squares."""
+        a = self.design(np.clip(z * self.scale0, self.lo, self.hi))
+        coef = np.linalg.lstsq(a, self.y, rcond=None)[0]
+        return self.y - a @ coef
+
+    def ordinary_optimum(self):
+        """Trust-region reflective least squares of the profiled residuals inside the box."""
+        sol = optimize.least_squares(self.profile_resid, self.start / self.scale0,
+                                     bounds=(self.lo / self.scale0, self.hi / self.scale0),
+                                     method="trf", x_scale="jac")
+        return sol.x, sol.active_mask, sol
+
+    def robust_optimum(self, robust_scale: float, bias_span: float):
+        """Soft-L1 least squares (scale 3 ``robust_scale``) with the amplitudes as explicit parameters.
+
+        Huber-type M-estimation (Huber, *Robust Statistics*, Wiley 1981) with scipy's soft-L1 loss;
+        the background amplitude is scaled by the swept ``bias_span``.
+        """
+        k = self.likelihood.amplitudes
+        scale0, lo, hi, y = self.scale0, self.lo, self.hi, self.y
+        a0 = self.design(self.start)
+        amp0 = np.linalg.lstsq(a0, y, rcond=None)[0]
+        amp_scale = np.full(k, abs(amp0[0]) if amp0[0] != 0 else 1.0)
+        if k == 2:
+            amp_scale[1] = amp_scale[0] / max(bias_span, 1e-30)
+
+        def full_resid(z: np.ndarray) -> np.ndarray:
+            return y - self.design(np.clip(z[:3] * scale0, lo, hi)) @ (z[3:] * amp_scale)
+
+        z0 = np.concatenate([self.start / scale0, amp0 / amp_scale])
+        zl = np.concatenate([lo / scale0, np.full(k, -np.inf)])
+        zh = np.concatenate([hi / scale0, np.full(k, np.inf)])
+        sol = optimize.least_squares(full_resid, z0, bounds=(zl, zh), method="trf", x_scale="jac",
+                                     loss="soft_l1", f_scale=3.0 * robust_scale / self.unit)
+        return sol.x[:3], sol.active_mask[:3], sol
+
+    def covariance(self, z_opt: np.ndarray, theta: np.ndarray, s2: float) -> tuple[np.ndarray, np.ndarray]:
+        """Covariance s² (JᵀJ)⁻¹ of (T, u, V₀) and standard errors at the optimum.
+
+        J is the Jacobian of the profiled residual by central differences (steps inside the box),
+        the usual Gauss–Newton approximation of the inverse Fisher matrix (Bates & Watts,
+        *Nonlinear Regression Analysis and Its Applications*, Wiley 1988, ch. 2; from memory). A
+        singular JᵀJ falls back to 1 % of each parameter.
+        """
+        step = 1e-5 * np.maximum(np.abs(z_opt), 1e-3)
+        jac = np.empty((self.y.size, 3))
+        for i in range(3):
+            e = np.zeros(3)
+            e[i] = step[i]
+            jac[:, i] = (self.profile_resid(z_opt + e) - self.profile_resid(z_opt - e)) / (2 * step[i])
+        jac = jac * self.unit / self.scale0
+        try:
+            cov = np.linalg.inv(jac.T @ jac) * s2
+            se = np.sqrt(np.abs(np.diag(cov)))
+        except np.linalg.LinAlgError:
+            se = np.abs(theta) * 1e-2
+            cov = np.diag(se**2)
+        return cov, se
 
 
 # --------------------------------------------------------------------------------------------
