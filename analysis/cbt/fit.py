@@ -656,6 +656,40 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
     ``auto_background``); 5. the Newey–West inflation of u(T) for what the noise model misses.
     Returns the data as the posterior should see them, the final least-squares fit and the findings.
     """
+    data, ls, screen = _screen_outliers(shape, data, ls)
+    data, ls, background_added, slope_t = _add_background_if_sloped(shape, data, ls, auto_background)
+    data, ls, noise, r1 = _model_noise(shape, data, ls)
+    tests, jac_w, e_w = _cause_tests(shape, data, ls)
+    inflation = float(hac_inflation(jac_w, e_w)[0])
+    r1_after = lag1_correlation(e_w)
+    findings = _findings(data, screen, background_added, slope_t, noise, r1, tests, inflation, r1_after,
+                         newey_west_lag(e_w.size))
+    diagnosis = ResidualDiagnosis(
+        outliers=screen.outliers, outlier_scale=screen.scale, outlier_threshold=screen.threshold,
+        lag1_before_whitening=r1, noise_correlation=data.noise_correlation, noise_model=noise.describe(),
+        lag1_after_whitening=r1_after,
+        structure_inflation=inflation, hac_lag=newey_west_lag(e_w.size), templates=tuple(tests),
+        background_added=background_added, findings=tuple(findings),
+    )
+    return data, ls, diagnosis
+
+
+@dataclass(frozen=True)
+class _OutlierScreen:
+    """What the outlier screen found: the new outliers (indices) and its robust scale and threshold."""
+
+    outliers: tuple[int, ...]
+    scale: float
+    threshold: float
+
+
+def _screen_outliers(shape: DipShape, data: SweepData, ls: dict) -> tuple[SweepData, dict, _OutlierScreen]:
+    """Steps 1–2 of :func:`screen_and_model_noise`: a soft-L1 fit, then isolated outliers excluded.
+
+    The robust scale is the successive-difference noise level of the whitened data; up to four
+    rounds flag points beyond the robust threshold (analysis.cbt.robust.flag_outliers), exclude
+    them and refit. More than :data:`MAX_OUTLIER_FRACTION` of the points is refused (PointError).
+    """
     sigma0 = difference_noise_scale(whiten(data, data.conductance))
     ls = least_squares_fit(shape, data, ls["theta"], robust_scale=sigma0)
     given = set(data.excluded)
@@ -679,8 +713,16 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
                 "wrong column", field="conductance_S", points=tuple(sorted(excluded)))
         data = replace(data, excluded=tuple(sorted(excluded)))
         ls = least_squares_fit(shape, data, ls["theta"])
-    outliers = tuple(sorted(excluded - given))
+    return data, ls, _OutlierScreen(tuple(sorted(excluded - given)), scale, threshold)
 
+
+def _add_background_if_sloped(shape: DipShape, data: SweepData, ls: dict,
+                              auto_background: bool) -> tuple[SweepData, dict, bool, float]:
+    """Step 4's slope test, done first and under white noise; a significant slope adds a background.
+
+    Returns the data (now white-noise, with a background if one was added), the refitted least
+    squares, whether the background was added and the slope's t statistic.
+    """
     # A slope is tested first, under white noise: a deterministic line would otherwise be taken
     # for low-frequency noise. Under genuinely correlated noise this test fires more easily; the
     # background it then adds costs a little precision and no bias.
@@ -696,6 +738,17 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
             data = replace(data, background=True)
             background_added, slope_t = True, slope_test[0].t_statistic
             ls = least_squares_fit(shape, data, theta)
+    return data, ls, background_added, slope_t
+
+
+def _model_noise(shape: DipShape, data: SweepData, ls: dict):
+    """Step 3: choose the noise model from the residuals and refit in it; refuse structure.
+
+    The model (white, AR(1) or 1/f + white) is chosen by Whittle's likelihood and AIC
+    (analysis.cbt.robust.choose_noise_model); a noise model as steep as :data:`STRUCTURE_RHO` or
+    :data:`STRUCTURE_ALPHA` raises :class:`ResidualStructureError`. Returns the data with the noise
+    model, the refitted least squares, the noise model and the residuals' lag-1 correlation.
+    """
     order = data.used_order()
     curve = _design(shape, data, ls["theta"][None, :])[0] @ ls["amplitudes"]
     resid = ((data.conductance - curve) * _weights(data))[order]
@@ -707,9 +760,13 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
     if noise.kind != "white":
         data = replace(data, noise_correlation=noise.rho, noise_factor=noise.factor)
         ls = least_squares_fit(shape, data, ls["theta"])
-    tests, jac_w, e_w = _cause_tests(shape, data, ls)
-    inflation = float(hac_inflation(jac_w, e_w)[0])
-    r1_after = lag1_correlation(e_w)
+    return data, ls, noise, r1
+
+
+def _findings(data: SweepData, screen: _OutlierScreen, background_added: bool, slope_t: float, noise,
+              r1: float, tests, inflation: float, r1_after: float, hac_lag: int) -> list[str]:
+    """The residual checks' findings in words, in the order of the procedure."""
+    outliers, threshold = screen.outliers, screen.threshold
     findings = []
     if outliers:
         findings.append(f"{len(outliers)} isolated outlier(s) beyond {threshold:.1f} robust standard deviations "
@@ -728,15 +785,8 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
     # rides on a non-white noise model: that is also when the budget carries it (uncertainty.py).
     if inflation > 1.0 + 1e-9 and (noise.kind != "white" or inflation > HAC_SIGNIFICANT):
         findings.append(f"residuals remain correlated after the noise model (lag-1 {r1_after:.2f}): u(T) is "
-                        f"inflated by {inflation:.2f} (Newey–West, lag {newey_west_lag(e_w.size)})")
-    diagnosis = ResidualDiagnosis(
-        outliers=outliers, outlier_scale=scale, outlier_threshold=threshold,
-        lag1_before_whitening=r1, noise_correlation=data.noise_correlation, noise_model=noise.describe(),
-        lag1_after_whitening=r1_after,
-        structure_inflation=inflation, hac_lag=newey_west_lag(e_w.size), templates=tuple(tests),
-        background_added=background_added, findings=tuple(findings),
-    )
-    return data, ls, diagnosis
+                        f"inflated by {inflation:.2f} (Newey–West, lag {hac_lag})")
+    return findings
 
 
 def _cause_tests(shape: DipShape, data: SweepData, ls: dict):
