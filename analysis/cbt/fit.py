@@ -864,73 +864,20 @@ def fit_sweep(
     covariance (analysis.sampling); results are reported in T.
     """
     settings = settings or FitSettings()
-    bad = isolated_bias_points(data.bias)
-    if bad:
-        i = bad[0]
-        raise PointError(
-            f"bias value {data.bias[i]:g} V lies far outside the rest of the sweep (the other values are "
-            f"spaced about {np.median(np.abs(np.diff(np.sort(data.bias)))):.3g} V apart): a typing slip in "
-            "the exponent or a wrong unit?", field="bias_V", points=tuple(bad))
-    ls = least_squares_fit(shape, data, initial_guess(data))
-    diagnosis = None
-    for attempt in range(2):
-        T0, u0, v00 = ls["theta"]
-        if not (T0 > 0 and u0 > 0 and math.isfinite(T0)):
-            raise SweepError("no Coulomb-blockade dip found: the least-squares fit gives no positive temperature and charging energy", field="conductance_S")
-        edge = edge_of_least_squares(shape, ls)
-        if edge is not None:
-            raise edge
-        if not robust or attempt:
-            break
-        data, ls, diagnosis = screen_and_model_noise(shape, data, ls)
+    _check_bias_values(data)
+    data, ls, diagnosis = _checked_least_squares(shape, data, robust)
+    T0, u0, v00 = ls["theta"]
     ec0 = u0 * T0
-    v_half = fwhm_volts(shape, data.setup, T0, u0)
-    reach = min(v00 - data.bias.min(), data.bias.max() - v00) / v_half
-    if reach < min_range_half_widths:
-        raise SweepError(
-            f"bias range reaches only ±{reach:.2f} V_1/2 around the dip (V_1/2 ≈ {v_half:.3g} V); "
-            f"at least ±{min_range_half_widths} V_1/2 is needed to fix the asymptotic conductance",
-            field="bias_V",
-        )
-    bounds = prior_bounds(shape, data)
-    log_prob = make_log_posterior(shape, data, log_temperature=True)
-    to_log = np.diag([1.0 / T0, 1.0, 1.0])
-    post = sample_posterior(
-        log_prob, np.array([math.log(T0), u0, v00]), seed, names=("ln_temperature",) + NONLINEAR[1:],
-        covariance=to_log @ ls["covariance"] @ to_log,
-        walkers=settings.walkers, block=settings.block, max_steps=settings.max_steps,
-        min_tau_multiple=settings.min_tau_multiple, tau_tolerance=settings.tau_tolerance,
-        progress=progress, moves=settings.moves,
-    )
-    s = post.samples.copy()
-    s[:, 0] = np.exp(s[:, 0])
-    post = replace(post, samples=s)
-    edge = edge_of_posterior(shape, s, bounds)
-    if edge is not None:
-        raise edge
-    # Amplitude summaries from at most 600 evenly spaced samples (plenty for a standard deviation).
-    sub = s[:: max(1, s.shape[0] // 600)]
-    coef, rss, _, ata = _profile(shape, data, sub)
-    n, k = data.used_order().size, coef.shape[1]
-    # Amplitudes: law of total variance over the conditional least-squares estimates.
-    sigma2 = rss / (n - k)
-    cond_var = sigma2 * np.linalg.inv(ata)[:, 0, 0]
-    gt_mean = float(coef[:, 0].mean())
-    gt_std = float(math.sqrt(coef[:, 0].var(ddof=1) + cond_var.mean()))
+    reach = _bias_reach(shape, data, T0, u0, v00, min_range_half_widths)
+    post = _sample_in_temperature(shape, data, ls, seed, settings, progress)
+    s = post.samples
+    gt_mean, gt_std = _asymptote_summary(shape, data, s)
     T_mean = float(s[:, 0].mean())
     T_std = float(s[:, 0].std(ddof=1))
     ec_samples = s[:, 0] * s[:, 1]
     ec_mean = float(ec_samples.mean())
     lo, hi = np.percentile(s[:, 0], [2.5, 97.5])
-
-    best = np.array([T_mean, float(s[:, 1].mean()), float(s[:, 2].mean())])
-    coef_b, _, _, _ = _profile(shape, data, best[None, :])
-    curve = _design(shape, data, best[None, :])[0] @ coef_b[0]
-    resid = data.conductance - curve
-    order = data.used_order()
-    rw = (resid * _weights(data))[order]
-    noise = float(math.sqrt(float(rw @ rw) / (n - 3 - k)))
-    r1 = lag1_correlation(rw) if n > 3 else 0.0
+    best, coef_b, curve, resid, noise, r1 = _curve_at_posterior_mean(shape, data, s)
     u = float(s[:, 1].mean())
     return SweepFit(
         model=shape.name,
@@ -969,6 +916,122 @@ def fit_sweep(
         fitted_data=data,
         diagnosis=diagnosis,
     )
+
+
+def _check_bias_values(data: SweepData) -> None:
+    """Refuse a bias value far outside the rest of the sweep (PointError naming it)."""
+    bad = isolated_bias_points(data.bias)
+    if bad:
+        i = bad[0]
+        raise PointError(
+            f"bias value {data.bias[i]:g} V lies far outside the rest of the sweep (the other values are "
+            f"spaced about {np.median(np.abs(np.diff(np.sort(data.bias)))):.3g} V apart): a typing slip in "
+            "the exponent or a wrong unit?", field="bias_V", points=tuple(bad))
+
+
+def _checked_least_squares(shape: DipShape, data: SweepData,
+                           robust: bool) -> tuple[SweepData, dict, ResidualDiagnosis | None]:
+    """Least squares from :func:`initial_guess`, checked for a dip and for the box's edges.
+
+    With ``robust`` the data are then screened and given a noise model
+    (:func:`screen_and_model_noise`) and the refitted optimum is checked again. Returns the data
+    as the posterior sees them, the final least-squares fit and the diagnosis (None if not robust).
+    """
+    ls = least_squares_fit(shape, data, initial_guess(data))
+    diagnosis = None
+    for attempt in range(2):
+        T0, u0, v00 = ls["theta"]
+        if not (T0 > 0 and u0 > 0 and math.isfinite(T0)):
+            raise SweepError("no Coulomb-blockade dip found: the least-squares fit gives no positive temperature and charging energy", field="conductance_S")
+        edge = edge_of_least_squares(shape, ls)
+        if edge is not None:
+            raise edge
+        if not robust or attempt:
+            break
+        data, ls, diagnosis = screen_and_model_noise(shape, data, ls)
+    return data, ls, diagnosis
+
+
+def _bias_reach(shape: DipShape, data: SweepData, T0: float, u0: float, v00: float,
+                min_range_half_widths: float) -> float:
+    """How far the sweep reaches on its shorter side, in half-widths V_1/2; SweepError if too little.
+
+    Beyond ``min_range_half_widths`` × V_1/2 the asymptote G_T is fixed by the data
+    (docs/physics.md 1.4).
+    """
+    v_half = fwhm_volts(shape, data.setup, T0, u0)
+    reach = min(v00 - data.bias.min(), data.bias.max() - v00) / v_half
+    if reach < min_range_half_widths:
+        raise SweepError(
+            f"bias range reaches only ±{reach:.2f} V_1/2 around the dip (V_1/2 ≈ {v_half:.3g} V); "
+            f"at least ±{min_range_half_widths} V_1/2 is needed to fix the asymptotic conductance",
+            field="bias_V",
+        )
+    return reach
+
+
+def _sample_in_temperature(shape: DipShape, data: SweepData, ls: dict, seed: int, settings: FitSettings,
+                           progress: ProgressCallback | None) -> PosteriorResult:
+    """The posterior of (T, u, V₀), sampled in (ln T, u, V₀) from the least-squares optimum.
+
+    The least-squares covariance is carried to ln T by the Jacobian diag(1/T, 1, 1); the samples
+    are returned in T. A posterior that touches a bound of the prior box raises ModelEdgeError.
+    """
+    T0, u0, v00 = ls["theta"]
+    bounds = prior_bounds(shape, data)
+    log_prob = make_log_posterior(shape, data, log_temperature=True)
+    to_log = np.diag([1.0 / T0, 1.0, 1.0])
+    post = sample_posterior(
+        log_prob, np.array([math.log(T0), u0, v00]), seed, names=("ln_temperature",) + NONLINEAR[1:],
+        covariance=to_log @ ls["covariance"] @ to_log,
+        walkers=settings.walkers, block=settings.block, max_steps=settings.max_steps,
+        min_tau_multiple=settings.min_tau_multiple, tau_tolerance=settings.tau_tolerance,
+        progress=progress, moves=settings.moves,
+    )
+    s = post.samples.copy()
+    s[:, 0] = np.exp(s[:, 0])
+    post = replace(post, samples=s)
+    edge = edge_of_posterior(shape, s, bounds)
+    if edge is not None:
+        raise edge
+    return post
+
+
+def _asymptote_summary(shape: DipShape, data: SweepData, s: np.ndarray) -> tuple[float, float]:
+    """Mean and standard deviation of G_T over the posterior samples ``s`` (T, u, V₀).
+
+    The amplitudes were integrated out (module doc); their spread is the law of total variance over
+    the conditional least-squares estimates, Var = Var(E[G_T | θ]) + E[Var(G_T | θ)], with
+    Var(G_T | θ) = σ² (AᵀA)⁻¹₀₀ the linear least-squares variance (common practice, no source),
+    from at most 600 evenly spaced samples (plenty for a standard deviation).
+    """
+    sub = s[:: max(1, s.shape[0] // 600)]
+    coef, rss, _, ata = _profile(shape, data, sub)
+    n, k = data.used_order().size, coef.shape[1]
+    sigma2 = rss / (n - k)
+    cond_var = sigma2 * np.linalg.inv(ata)[:, 0, 0]
+    gt_mean = float(coef[:, 0].mean())
+    gt_std = float(math.sqrt(coef[:, 0].var(ddof=1) + cond_var.mean()))
+    return gt_mean, gt_std
+
+
+def _curve_at_posterior_mean(shape: DipShape, data: SweepData, s: np.ndarray):
+    """The model at the posterior mean of (T, u, V₀) with its least-squares amplitudes.
+
+    Returns that parameter set, the amplitudes, the curve and residuals (data order), the noise
+    standard deviation of the weighted residuals (n − 3 − k degrees of freedom) and their lag-1
+    correlation in bias order.
+    """
+    best = np.array([float(s[:, 0].mean()), float(s[:, 1].mean()), float(s[:, 2].mean())])
+    coef_b, _, _, _ = _profile(shape, data, best[None, :])
+    curve = _design(shape, data, best[None, :])[0] @ coef_b[0]
+    resid = data.conductance - curve
+    order = data.used_order()
+    n, k = order.size, coef_b.shape[1]
+    rw = (resid * _weights(data))[order]
+    noise = float(math.sqrt(float(rw @ rw) / (n - 3 - k)))
+    r1 = lag1_correlation(rw) if n > 3 else 0.0
+    return best, coef_b, curve, resid, noise, r1
 
 
 def heating_fraction(setup: SweepSetup, temperature: float, fwhm: float) -> float:
