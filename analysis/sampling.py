@@ -232,22 +232,66 @@ def sample_posterior(
     if seed is None:
         raise ValueError("an explicit seed is required for a reproducible posterior")
     initial = np.asarray(initial, dtype=float)
+    nwalk = walkers or max(16, 4 * initial.size)
+    names = names or tuple(f"p{i}" for i in range(initial.size))
+    sampler, p0, move_words = _start_sampler(
+        log_prob, initial, seed, nwalk, scale=scale, covariance=covariance, ball_spread=ball_spread,
+        vectorized=vectorized, moves=moves or ("de-snooker" if differential_evolution else "stretch"))
+    chain = _run_until_converged(sampler, p0, block=block, max_steps=max_steps,
+                                 min_tau_multiple=min_tau_multiple, tau_tolerance=tau_tolerance,
+                                 progress=progress)
+    result = _posterior_from_chain(sampler, chain, names=tuple(names), walkers=nwalk, seed=seed,
+                                   moves=move_words)
+    if progress is not None:
+        progress(1.0, "sampling done")
+    return result
+
+
+def _start_sampler(
+    log_prob: Callable[[np.ndarray], np.ndarray], initial: np.ndarray, seed: int, walkers: int, *,
+    scale: np.ndarray | None, covariance: np.ndarray | None, ball_spread: float | None,
+    vectorized: bool, moves: str,
+) -> tuple[emcee.EnsembleSampler, np.ndarray, str]:
+    """The walkers' starting ball and an emcee sampler whose random state derives from ``seed``.
+
+    The one generator seeded by ``seed`` first places the ball (:func:`initial_ball`), then seeds
+    the legacy RandomState emcee draws from, so one seed fixes the whole chain. Returns the
+    sampler, the starting positions and the move set's description for the certificate.
+    """
     ndim = initial.size
-    nwalk = walkers or max(16, 4 * ndim)
-    names = names or tuple(f"p{i}" for i in range(ndim))
     rng = np.random.default_rng(seed)
     sc = scale if scale is not None else np.abs(initial) * 1e-3 + 1e-12
     spread = ball_spread if ball_spread is not None else (1.0 if covariance is not None else 0.1)
-    p0 = initial_ball(initial, sc, nwalk, rng, log_prob if vectorized else _vectorise(log_prob),
+    p0 = initial_ball(initial, sc, walkers, rng, log_prob if vectorized else _vectorise(log_prob),
                       spread=spread, covariance=covariance)
 
     # emcee draws from a legacy RandomState; seed it from our generator so one seed fixes all.
-    move_name = moves or ("de-snooker" if differential_evolution else "stretch")
-    move_list, move_words = _moves(move_name, initial, covariance)
-    sampler = emcee.EnsembleSampler(nwalk, ndim, log_prob, vectorize=vectorized, moves=move_list)
+    move_list, move_words = _moves(moves, initial, covariance)
+    sampler = emcee.EnsembleSampler(walkers, ndim, log_prob, vectorize=vectorized, moves=move_list)
     sampler._random = np.random.RandomState(int(rng.integers(0, 2**31 - 1)))
+    return sampler, p0, move_words
 
-    state = p0
+
+@dataclass(frozen=True)
+class _Chain:
+    """Where a run stopped: steps taken, last autocorrelation times, and whether the rule held."""
+
+    steps: int
+    tau: np.ndarray
+    converged: bool
+
+
+def _run_until_converged(
+    sampler: emcee.EnsembleSampler, state: np.ndarray, *, block: int, max_steps: int,
+    min_tau_multiple: float, tau_tolerance: float, progress: ProgressCallback | None,
+) -> _Chain:
+    """Advance the chain block by block until the convergence rule (module docstring) holds.
+
+    τ is emcee's integrated autocorrelation time with Sokal's automatic window (emcee.autocorr;
+    Sokal, in *Functional Integration*, Plenum 1997); the rule needs the chain at least
+    ``min_tau_multiple`` × max τ long and every τ within ``tau_tolerance`` of its previous value.
+    """
+    ndim = sampler.ndim
     old_tau = np.full(ndim, np.inf)
     converged = False
     tau = np.full(ndim, np.nan)
@@ -268,30 +312,39 @@ def sample_posterior(
         if long_enough and settled:
             converged = True
             break
+    return _Chain(steps=steps, tau=tau, converged=converged)
+
+
+def _posterior_from_chain(sampler: emcee.EnsembleSampler, chain: _Chain, *, names: tuple[str, ...],
+                          walkers: int, seed: int, moves: str) -> PosteriorResult:
+    """Discard a burn-in of 3 τ (at most half the chain), thin by τ/2 and summarise the samples.
+
+    The effective sample size is walkers × kept steps / τ (emcee documentation, common practice).
+    A chain that did not converge is still returned, flagged, and logged as a warning.
+    """
+    steps, tau = chain.steps, chain.tau
     tau_max = float(np.max(tau))
     burn = int(math.ceil(3 * tau_max)) if math.isfinite(tau_max) else steps // 2
     burn = min(burn, steps // 2)
     thin = max(1, int(tau_max / 2)) if math.isfinite(tau_max) else 1
     flat = sampler.get_chain(discard=burn, thin=thin, flat=True)
     lp = sampler.get_log_prob(discard=burn, thin=thin, flat=True)
-    ess = nwalk * (steps - burn) / tau_max if math.isfinite(tau_max) and tau_max > 0 else 0.0
-    if not converged:
+    ess = walkers * (steps - burn) / tau_max if math.isfinite(tau_max) and tau_max > 0 else 0.0
+    if not chain.converged:
         log.warning("chain not converged after %d steps (tau %s)", steps, tau)
-    if progress is not None:
-        progress(1.0, "sampling done")
     return PosteriorResult(
-        names=tuple(names),
+        names=names,
         samples=flat,
         log_prob=lp,
         autocorrelation_time=tuple(float(t) for t in tau),
         acceptance_fraction=float(np.mean(sampler.acceptance_fraction)),
         effective_sample_size=float(ess),
         steps=steps,
-        walkers=nwalk,
+        walkers=walkers,
         burn_in=burn,
-        converged=converged,
+        converged=chain.converged,
         seed=seed,
-        moves=move_words,
+        moves=moves,
     )
 
 

@@ -390,70 +390,18 @@ def least_squares_fit(shape: DipShape, data: SweepData, start: np.ndarray,
     scale 3σ (Huber-type M-estimation, Huber, *Robust Statistics*, Wiley 1981), so a few wild
     points cannot pull the optimum; the covariance is then still the ordinary one at that optimum.
     """
-    bounds = prior_bounds(shape, data)
-    lo = np.array([bounds[k][0] for k in NONLINEAR])
-    hi = np.array([bounds[k][1] for k in NONLINEAR])
-    lo[0] = max(lo[0], 1e-9 * max(abs(float(start[0])), 1e-12))
-    margin = 1e-7 * (hi - lo)
-    start = np.clip(np.asarray(start, dtype=float), lo + margin, hi - margin)
-    scale0 = np.array([start[0], max(start[1], 1e-3), start[0] * BOLTZMANN / ELEMENTARY_CHARGE])
-    # Residuals in units of the noise level, so that the optimiser's tolerances mean the same on any
-    # conductance scale (scipy's gradient test is absolute).
-    likelihood = ProfiledLikelihood(shape, data)
-    y_raw = likelihood.y
-    unit = difference_noise_scale(y_raw) or float(np.median(np.abs(y_raw))) * 1e-6 or 1.0
-    y = y_raw / unit
-    k = likelihood.amplitudes
-
-    def design(theta: np.ndarray) -> np.ndarray:
-        return np.stack(likelihood.columns(theta[None, :]), axis=-1)[0] / unit
-
-    def profile_resid(z: np.ndarray) -> np.ndarray:
-        a = design(np.clip(z * scale0, lo, hi))
-        coef = np.linalg.lstsq(a, y, rcond=None)[0]
-        return y - a @ coef
-
+    problem = _ScaledProblem.build(shape, data, start)
     if robust_scale is not None and robust_scale > 0:
-        a0 = design(start)
-        amp0 = np.linalg.lstsq(a0, y, rcond=None)[0]
-        amp_scale = np.full(k, abs(amp0[0]) if amp0[0] != 0 else 1.0)
-        if k == 2:
-            amp_scale[1] = amp_scale[0] / max(float(np.ptp(data.bias)), 1e-30)
-
-        def full_resid(z: np.ndarray) -> np.ndarray:
-            return y - design(np.clip(z[:3] * scale0, lo, hi)) @ (z[3:] * amp_scale)
-
-        z0 = np.concatenate([start / scale0, amp0 / amp_scale])
-        zl = np.concatenate([lo / scale0, np.full(k, -np.inf)])
-        zh = np.concatenate([hi / scale0, np.full(k, np.inf)])
-        sol = optimize.least_squares(full_resid, z0, bounds=(zl, zh), method="trf", x_scale="jac",
-                                     loss="soft_l1", f_scale=3.0 * robust_scale / unit)
-        z_opt = sol.x[:3]
-        active = sol.active_mask[:3]
+        z_opt, active, sol = problem.robust_optimum(robust_scale, float(np.ptp(data.bias)))
     else:
-        sol = optimize.least_squares(profile_resid, start / scale0, bounds=(lo / scale0, hi / scale0),
-                                     method="trf", x_scale="jac")
-        z_opt = sol.x
-        active = sol.active_mask
-    theta = np.clip(z_opt * scale0, lo, hi)
-    coef, rss, _, _ = likelihood.profile(theta[None, :])
-    m = likelihood.points
-    dof = m - 3 - k
+        z_opt, active, sol = problem.ordinary_optimum()
+    lo, hi = problem.lo, problem.hi
+    theta = np.clip(z_opt * problem.scale0, lo, hi)
+    coef, rss, _, _ = problem.likelihood.profile(theta[None, :])
+    m = problem.likelihood.points
+    dof = m - 3 - problem.likelihood.amplitudes
     s2 = float(rss[0]) / dof
-    # Jacobian of the profiled residual at the optimum (central differences, steps inside the box).
-    step = 1e-5 * np.maximum(np.abs(z_opt), 1e-3)
-    jac = np.empty((y.size, 3))
-    for i in range(3):
-        e = np.zeros(3)
-        e[i] = step[i]
-        jac[:, i] = (profile_resid(z_opt + e) - profile_resid(z_opt - e)) / (2 * step[i])
-    jac = jac * unit / scale0
-    try:
-        cov = np.linalg.inv(jac.T @ jac) * s2
-        se = np.sqrt(np.abs(np.diag(cov)))
-    except np.linalg.LinAlgError:
-        se = np.abs(theta) * 1e-2
-        cov = np.diag(se**2)
+    cov, se = problem.covariance(z_opt, theta, s2)
     near = np.minimum(theta - lo, hi - theta) <= np.maximum(1e-6 * (hi - lo), 1e-3 * se)
     at_bound = tuple(name for name, a, nb in zip(NONLINEAR, active, near, strict=True) if a != 0 or nb)
     return {
@@ -467,6 +415,103 @@ def least_squares_fit(shape: DipShape, data: SweepData, start: np.ndarray,
         "at_bound": at_bound,
         "bounds": (lo, hi),
     }
+
+
+@dataclass(frozen=True)
+class _ScaledProblem:
+    """The profiled least-squares problem of :func:`least_squares_fit` in the optimiser's units.
+
+    Parameters are scaled by ``scale0`` (T, u, and the thermal voltage k_B T/e for V₀) and the
+    residuals by ``unit``, a noise level from successive differences, so that the optimiser's
+    tolerances mean the same on any conductance scale (scipy's gradient test is absolute).
+    ``lo``/``hi`` are the prior box (:func:`prior_bounds`) and ``start`` the clipped start point.
+    """
+
+    likelihood: ProfiledLikelihood
+    lo: np.ndarray
+    hi: np.ndarray
+    start: np.ndarray
+    scale0: np.ndarray
+    unit: float
+    y: np.ndarray
+
+    @classmethod
+    def build(cls, shape: DipShape, data: SweepData, start: np.ndarray) -> _ScaledProblem:
+        bounds = prior_bounds(shape, data)
+        lo = np.array([bounds[k][0] for k in NONLINEAR])
+        hi = np.array([bounds[k][1] for k in NONLINEAR])
+        lo[0] = max(lo[0], 1e-9 * max(abs(float(start[0])), 1e-12))
+        margin = 1e-7 * (hi - lo)
+        start = np.clip(np.asarray(start, dtype=float), lo + margin, hi - margin)
+        scale0 = np.array([start[0], max(start[1], 1e-3), start[0] * BOLTZMANN / ELEMENTARY_CHARGE])
+        likelihood = ProfiledLikelihood(shape, data)
+        y_raw = likelihood.y
+        unit = difference_noise_scale(y_raw) or float(np.median(np.abs(y_raw))) * 1e-6 or 1.0
+        return cls(likelihood, lo, hi, start, scale0, unit, y_raw / unit)
+
+    def design(self, theta: np.ndarray) -> np.ndarray:
+        """Whitened design matrix (m, k) at one parameter set, in units of ``unit``."""
+        return np.stack(self.likelihood.columns(theta[None, :]), axis=-1)[0] / self.unit
+
+    def profile_resid(self, z: np.ndarray) -> np.ndarray:
+        """Residuals at scaled parameters ``z`` with the amplitudes solved by linear least squares."""
+        a = self.design(np.clip(z * self.scale0, self.lo, self.hi))
+        coef = np.linalg.lstsq(a, self.y, rcond=None)[0]
+        return self.y - a @ coef
+
+    def ordinary_optimum(self):
+        """Trust-region reflective least squares of the profiled residuals inside the box."""
+        sol = optimize.least_squares(self.profile_resid, self.start / self.scale0,
+                                     bounds=(self.lo / self.scale0, self.hi / self.scale0),
+                                     method="trf", x_scale="jac")
+        return sol.x, sol.active_mask, sol
+
+    def robust_optimum(self, robust_scale: float, bias_span: float):
+        """Soft-L1 least squares (scale 3 ``robust_scale``) with the amplitudes as explicit parameters.
+
+        Huber-type M-estimation (Huber, *Robust Statistics*, Wiley 1981) with scipy's soft-L1 loss;
+        the background amplitude is scaled by the swept ``bias_span``.
+        """
+        k = self.likelihood.amplitudes
+        scale0, lo, hi, y = self.scale0, self.lo, self.hi, self.y
+        a0 = self.design(self.start)
+        amp0 = np.linalg.lstsq(a0, y, rcond=None)[0]
+        amp_scale = np.full(k, abs(amp0[0]) if amp0[0] != 0 else 1.0)
+        if k == 2:
+            amp_scale[1] = amp_scale[0] / max(bias_span, 1e-30)
+
+        def full_resid(z: np.ndarray) -> np.ndarray:
+            return y - self.design(np.clip(z[:3] * scale0, lo, hi)) @ (z[3:] * amp_scale)
+
+        z0 = np.concatenate([self.start / scale0, amp0 / amp_scale])
+        zl = np.concatenate([lo / scale0, np.full(k, -np.inf)])
+        zh = np.concatenate([hi / scale0, np.full(k, np.inf)])
+        sol = optimize.least_squares(full_resid, z0, bounds=(zl, zh), method="trf", x_scale="jac",
+                                     loss="soft_l1", f_scale=3.0 * robust_scale / self.unit)
+        return sol.x[:3], sol.active_mask[:3], sol
+
+    def covariance(self, z_opt: np.ndarray, theta: np.ndarray, s2: float) -> tuple[np.ndarray, np.ndarray]:
+        """Covariance s² (JᵀJ)⁻¹ of (T, u, V₀) and standard errors at the optimum.
+
+        J is the Jacobian of the profiled residual by central differences (steps inside the box),
+        the usual Gauss–Newton approximation of the inverse Fisher matrix (Bates & Watts,
+        *Nonlinear Regression Analysis and Its Applications*, Wiley 1988, ch. 2; from memory). A
+        singular JᵀJ falls back to 1 % of each parameter.
+        """
+        step = 1e-5 * np.maximum(np.abs(z_opt), 1e-3)
+        jac = np.empty((self.y.size, 3))
+        for i in range(3):
+            e = np.zeros(3)
+            e[i] = step[i]
+            jac[:, i] = (self.profile_resid(z_opt + e) - self.profile_resid(z_opt - e)) / (2 * step[i])
+        jac = jac * self.unit / self.scale0
+        try:
+            cov = np.linalg.inv(jac.T @ jac) * s2
+            se = np.sqrt(np.abs(np.diag(cov)))
+        except np.linalg.LinAlgError:
+            se = np.abs(theta) * 1e-2
+            cov = np.diag(se**2)
+        return cov, se
 
 
 # --------------------------------------------------------------------------------------------
@@ -611,6 +656,40 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
     ``auto_background``); 5. the Newey–West inflation of u(T) for what the noise model misses.
     Returns the data as the posterior should see them, the final least-squares fit and the findings.
     """
+    data, ls, screen = _screen_outliers(shape, data, ls)
+    data, ls, background_added, slope_t = _add_background_if_sloped(shape, data, ls, auto_background)
+    data, ls, noise, r1 = _model_noise(shape, data, ls)
+    tests, jac_w, e_w = _cause_tests(shape, data, ls)
+    inflation = float(hac_inflation(jac_w, e_w)[0])
+    r1_after = lag1_correlation(e_w)
+    findings = _findings(data, screen, background_added, slope_t, noise, r1, tests, inflation, r1_after,
+                         newey_west_lag(e_w.size))
+    diagnosis = ResidualDiagnosis(
+        outliers=screen.outliers, outlier_scale=screen.scale, outlier_threshold=screen.threshold,
+        lag1_before_whitening=r1, noise_correlation=data.noise_correlation, noise_model=noise.describe(),
+        lag1_after_whitening=r1_after,
+        structure_inflation=inflation, hac_lag=newey_west_lag(e_w.size), templates=tuple(tests),
+        background_added=background_added, findings=tuple(findings),
+    )
+    return data, ls, diagnosis
+
+
+@dataclass(frozen=True)
+class _OutlierScreen:
+    """What the outlier screen found: the new outliers (indices) and its robust scale and threshold."""
+
+    outliers: tuple[int, ...]
+    scale: float
+    threshold: float
+
+
+def _screen_outliers(shape: DipShape, data: SweepData, ls: dict) -> tuple[SweepData, dict, _OutlierScreen]:
+    """Steps 1–2 of :func:`screen_and_model_noise`: a soft-L1 fit, then isolated outliers excluded.
+
+    The robust scale is the successive-difference noise level of the whitened data; up to four
+    rounds flag points beyond the robust threshold (analysis.cbt.robust.flag_outliers), exclude
+    them and refit. More than :data:`MAX_OUTLIER_FRACTION` of the points is refused (PointError).
+    """
     sigma0 = difference_noise_scale(whiten(data, data.conductance))
     ls = least_squares_fit(shape, data, ls["theta"], robust_scale=sigma0)
     given = set(data.excluded)
@@ -634,8 +713,16 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
                 "wrong column", field="conductance_S", points=tuple(sorted(excluded)))
         data = replace(data, excluded=tuple(sorted(excluded)))
         ls = least_squares_fit(shape, data, ls["theta"])
-    outliers = tuple(sorted(excluded - given))
+    return data, ls, _OutlierScreen(tuple(sorted(excluded - given)), scale, threshold)
 
+
+def _add_background_if_sloped(shape: DipShape, data: SweepData, ls: dict,
+                              auto_background: bool) -> tuple[SweepData, dict, bool, float]:
+    """Step 4's slope test, done first and under white noise; a significant slope adds a background.
+
+    Returns the data (now white-noise, with a background if one was added), the refitted least
+    squares, whether the background was added and the slope's t statistic.
+    """
     # A slope is tested first, under white noise: a deterministic line would otherwise be taken
     # for low-frequency noise. Under genuinely correlated noise this test fires more easily; the
     # background it then adds costs a little precision and no bias.
@@ -651,6 +738,17 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
             data = replace(data, background=True)
             background_added, slope_t = True, slope_test[0].t_statistic
             ls = least_squares_fit(shape, data, theta)
+    return data, ls, background_added, slope_t
+
+
+def _model_noise(shape: DipShape, data: SweepData, ls: dict):
+    """Step 3: choose the noise model from the residuals and refit in it; refuse structure.
+
+    The model (white, AR(1) or 1/f + white) is chosen by Whittle's likelihood and AIC
+    (analysis.cbt.robust.choose_noise_model); a noise model as steep as :data:`STRUCTURE_RHO` or
+    :data:`STRUCTURE_ALPHA` raises :class:`ResidualStructureError`. Returns the data with the noise
+    model, the refitted least squares, the noise model and the residuals' lag-1 correlation.
+    """
     order = data.used_order()
     curve = _design(shape, data, ls["theta"][None, :])[0] @ ls["amplitudes"]
     resid = ((data.conductance - curve) * _weights(data))[order]
@@ -662,9 +760,13 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
     if noise.kind != "white":
         data = replace(data, noise_correlation=noise.rho, noise_factor=noise.factor)
         ls = least_squares_fit(shape, data, ls["theta"])
-    tests, jac_w, e_w = _cause_tests(shape, data, ls)
-    inflation = float(hac_inflation(jac_w, e_w)[0])
-    r1_after = lag1_correlation(e_w)
+    return data, ls, noise, r1
+
+
+def _findings(data: SweepData, screen: _OutlierScreen, background_added: bool, slope_t: float, noise,
+              r1: float, tests, inflation: float, r1_after: float, hac_lag: int) -> list[str]:
+    """The residual checks' findings in words, in the order of the procedure."""
+    outliers, threshold = screen.outliers, screen.threshold
     findings = []
     if outliers:
         findings.append(f"{len(outliers)} isolated outlier(s) beyond {threshold:.1f} robust standard deviations "
@@ -683,15 +785,8 @@ def screen_and_model_noise(shape: DipShape, data: SweepData, ls: dict,
     # rides on a non-white noise model: that is also when the budget carries it (uncertainty.py).
     if inflation > 1.0 + 1e-9 and (noise.kind != "white" or inflation > HAC_SIGNIFICANT):
         findings.append(f"residuals remain correlated after the noise model (lag-1 {r1_after:.2f}): u(T) is "
-                        f"inflated by {inflation:.2f} (Newey–West, lag {newey_west_lag(e_w.size)})")
-    diagnosis = ResidualDiagnosis(
-        outliers=outliers, outlier_scale=scale, outlier_threshold=threshold,
-        lag1_before_whitening=r1, noise_correlation=data.noise_correlation, noise_model=noise.describe(),
-        lag1_after_whitening=r1_after,
-        structure_inflation=inflation, hac_lag=newey_west_lag(e_w.size), templates=tuple(tests),
-        background_added=background_added, findings=tuple(findings),
-    )
-    return data, ls, diagnosis
+                        f"inflated by {inflation:.2f} (Newey–West, lag {hac_lag})")
+    return findings
 
 
 def _cause_tests(shape: DipShape, data: SweepData, ls: dict):
@@ -769,73 +864,20 @@ def fit_sweep(
     covariance (analysis.sampling); results are reported in T.
     """
     settings = settings or FitSettings()
-    bad = isolated_bias_points(data.bias)
-    if bad:
-        i = bad[0]
-        raise PointError(
-            f"bias value {data.bias[i]:g} V lies far outside the rest of the sweep (the other values are "
-            f"spaced about {np.median(np.abs(np.diff(np.sort(data.bias)))):.3g} V apart): a typing slip in "
-            "the exponent or a wrong unit?", field="bias_V", points=tuple(bad))
-    ls = least_squares_fit(shape, data, initial_guess(data))
-    diagnosis = None
-    for attempt in range(2):
-        T0, u0, v00 = ls["theta"]
-        if not (T0 > 0 and u0 > 0 and math.isfinite(T0)):
-            raise SweepError("no Coulomb-blockade dip found: the least-squares fit gives no positive temperature and charging energy", field="conductance_S")
-        edge = edge_of_least_squares(shape, ls)
-        if edge is not None:
-            raise edge
-        if not robust or attempt:
-            break
-        data, ls, diagnosis = screen_and_model_noise(shape, data, ls)
+    _check_bias_values(data)
+    data, ls, diagnosis = _checked_least_squares(shape, data, robust)
+    T0, u0, v00 = ls["theta"]
     ec0 = u0 * T0
-    v_half = fwhm_volts(shape, data.setup, T0, u0)
-    reach = min(v00 - data.bias.min(), data.bias.max() - v00) / v_half
-    if reach < min_range_half_widths:
-        raise SweepError(
-            f"bias range reaches only ±{reach:.2f} V_1/2 around the dip (V_1/2 ≈ {v_half:.3g} V); "
-            f"at least ±{min_range_half_widths} V_1/2 is needed to fix the asymptotic conductance",
-            field="bias_V",
-        )
-    bounds = prior_bounds(shape, data)
-    log_prob = make_log_posterior(shape, data, log_temperature=True)
-    to_log = np.diag([1.0 / T0, 1.0, 1.0])
-    post = sample_posterior(
-        log_prob, np.array([math.log(T0), u0, v00]), seed, names=("ln_temperature",) + NONLINEAR[1:],
-        covariance=to_log @ ls["covariance"] @ to_log,
-        walkers=settings.walkers, block=settings.block, max_steps=settings.max_steps,
-        min_tau_multiple=settings.min_tau_multiple, tau_tolerance=settings.tau_tolerance,
-        progress=progress, moves=settings.moves,
-    )
-    s = post.samples.copy()
-    s[:, 0] = np.exp(s[:, 0])
-    post = replace(post, samples=s)
-    edge = edge_of_posterior(shape, s, bounds)
-    if edge is not None:
-        raise edge
-    # Amplitude summaries from at most 600 evenly spaced samples (plenty for a standard deviation).
-    sub = s[:: max(1, s.shape[0] // 600)]
-    coef, rss, _, ata = _profile(shape, data, sub)
-    n, k = data.used_order().size, coef.shape[1]
-    # Amplitudes: law of total variance over the conditional least-squares estimates.
-    sigma2 = rss / (n - k)
-    cond_var = sigma2 * np.linalg.inv(ata)[:, 0, 0]
-    gt_mean = float(coef[:, 0].mean())
-    gt_std = float(math.sqrt(coef[:, 0].var(ddof=1) + cond_var.mean()))
+    reach = _bias_reach(shape, data, T0, u0, v00, min_range_half_widths)
+    post = _sample_in_temperature(shape, data, ls, seed, settings, progress)
+    s = post.samples
+    gt_mean, gt_std = _asymptote_summary(shape, data, s)
     T_mean = float(s[:, 0].mean())
     T_std = float(s[:, 0].std(ddof=1))
     ec_samples = s[:, 0] * s[:, 1]
     ec_mean = float(ec_samples.mean())
     lo, hi = np.percentile(s[:, 0], [2.5, 97.5])
-
-    best = np.array([T_mean, float(s[:, 1].mean()), float(s[:, 2].mean())])
-    coef_b, _, _, _ = _profile(shape, data, best[None, :])
-    curve = _design(shape, data, best[None, :])[0] @ coef_b[0]
-    resid = data.conductance - curve
-    order = data.used_order()
-    rw = (resid * _weights(data))[order]
-    noise = float(math.sqrt(float(rw @ rw) / (n - 3 - k)))
-    r1 = lag1_correlation(rw) if n > 3 else 0.0
+    best, coef_b, curve, resid, noise, r1 = _curve_at_posterior_mean(shape, data, s)
     u = float(s[:, 1].mean())
     return SweepFit(
         model=shape.name,
@@ -874,6 +916,122 @@ def fit_sweep(
         fitted_data=data,
         diagnosis=diagnosis,
     )
+
+
+def _check_bias_values(data: SweepData) -> None:
+    """Refuse a bias value far outside the rest of the sweep (PointError naming it)."""
+    bad = isolated_bias_points(data.bias)
+    if bad:
+        i = bad[0]
+        raise PointError(
+            f"bias value {data.bias[i]:g} V lies far outside the rest of the sweep (the other values are "
+            f"spaced about {np.median(np.abs(np.diff(np.sort(data.bias)))):.3g} V apart): a typing slip in "
+            "the exponent or a wrong unit?", field="bias_V", points=tuple(bad))
+
+
+def _checked_least_squares(shape: DipShape, data: SweepData,
+                           robust: bool) -> tuple[SweepData, dict, ResidualDiagnosis | None]:
+    """Least squares from :func:`initial_guess`, checked for a dip and for the box's edges.
+
+    With ``robust`` the data are then screened and given a noise model
+    (:func:`screen_and_model_noise`) and the refitted optimum is checked again. Returns the data
+    as the posterior sees them, the final least-squares fit and the diagnosis (None if not robust).
+    """
+    ls = least_squares_fit(shape, data, initial_guess(data))
+    diagnosis = None
+    for attempt in range(2):
+        T0, u0, v00 = ls["theta"]
+        if not (T0 > 0 and u0 > 0 and math.isfinite(T0)):
+            raise SweepError("no Coulomb-blockade dip found: the least-squares fit gives no positive temperature and charging energy", field="conductance_S")
+        edge = edge_of_least_squares(shape, ls)
+        if edge is not None:
+            raise edge
+        if not robust or attempt:
+            break
+        data, ls, diagnosis = screen_and_model_noise(shape, data, ls)
+    return data, ls, diagnosis
+
+
+def _bias_reach(shape: DipShape, data: SweepData, T0: float, u0: float, v00: float,
+                min_range_half_widths: float) -> float:
+    """How far the sweep reaches on its shorter side, in half-widths V_1/2; SweepError if too little.
+
+    Beyond ``min_range_half_widths`` × V_1/2 the asymptote G_T is fixed by the data
+    (docs/physics.md 1.4).
+    """
+    v_half = fwhm_volts(shape, data.setup, T0, u0)
+    reach = min(v00 - data.bias.min(), data.bias.max() - v00) / v_half
+    if reach < min_range_half_widths:
+        raise SweepError(
+            f"bias range reaches only ±{reach:.2f} V_1/2 around the dip (V_1/2 ≈ {v_half:.3g} V); "
+            f"at least ±{min_range_half_widths} V_1/2 is needed to fix the asymptotic conductance",
+            field="bias_V",
+        )
+    return reach
+
+
+def _sample_in_temperature(shape: DipShape, data: SweepData, ls: dict, seed: int, settings: FitSettings,
+                           progress: ProgressCallback | None) -> PosteriorResult:
+    """The posterior of (T, u, V₀), sampled in (ln T, u, V₀) from the least-squares optimum.
+
+    The least-squares covariance is carried to ln T by the Jacobian diag(1/T, 1, 1); the samples
+    are returned in T. A posterior that touches a bound of the prior box raises ModelEdgeError.
+    """
+    T0, u0, v00 = ls["theta"]
+    bounds = prior_bounds(shape, data)
+    log_prob = make_log_posterior(shape, data, log_temperature=True)
+    to_log = np.diag([1.0 / T0, 1.0, 1.0])
+    post = sample_posterior(
+        log_prob, np.array([math.log(T0), u0, v00]), seed, names=("ln_temperature",) + NONLINEAR[1:],
+        covariance=to_log @ ls["covariance"] @ to_log,
+        walkers=settings.walkers, block=settings.block, max_steps=settings.max_steps,
+        min_tau_multiple=settings.min_tau_multiple, tau_tolerance=settings.tau_tolerance,
+        progress=progress, moves=settings.moves,
+    )
+    s = post.samples.copy()
+    s[:, 0] = np.exp(s[:, 0])
+    post = replace(post, samples=s)
+    edge = edge_of_posterior(shape, s, bounds)
+    if edge is not None:
+        raise edge
+    return post
+
+
+def _asymptote_summary(shape: DipShape, data: SweepData, s: np.ndarray) -> tuple[float, float]:
+    """Mean and standard deviation of G_T over the posterior samples ``s`` (T, u, V₀).
+
+    The amplitudes were integrated out (module doc); their spread is the law of total variance over
+    the conditional least-squares estimates, Var = Var(E[G_T | θ]) + E[Var(G_T | θ)], with
+    Var(G_T | θ) = σ² (AᵀA)⁻¹₀₀ the linear least-squares variance (common practice, no source),
+    from at most 600 evenly spaced samples (plenty for a standard deviation).
+    """
+    sub = s[:: max(1, s.shape[0] // 600)]
+    coef, rss, _, ata = _profile(shape, data, sub)
+    n, k = data.used_order().size, coef.shape[1]
+    sigma2 = rss / (n - k)
+    cond_var = sigma2 * np.linalg.inv(ata)[:, 0, 0]
+    gt_mean = float(coef[:, 0].mean())
+    gt_std = float(math.sqrt(coef[:, 0].var(ddof=1) + cond_var.mean()))
+    return gt_mean, gt_std
+
+
+def _curve_at_posterior_mean(shape: DipShape, data: SweepData, s: np.ndarray):
+    """The model at the posterior mean of (T, u, V₀) with its least-squares amplitudes.
+
+    Returns that parameter set, the amplitudes, the curve and residuals (data order), the noise
+    standard deviation of the weighted residuals (n − 3 − k degrees of freedom) and their lag-1
+    correlation in bias order.
+    """
+    best = np.array([float(s[:, 0].mean()), float(s[:, 1].mean()), float(s[:, 2].mean())])
+    coef_b, _, _, _ = _profile(shape, data, best[None, :])
+    curve = _design(shape, data, best[None, :])[0] @ coef_b[0]
+    resid = data.conductance - curve
+    order = data.used_order()
+    n, k = order.size, coef_b.shape[1]
+    rw = (resid * _weights(data))[order]
+    noise = float(math.sqrt(float(rw @ rw) / (n - 3 - k)))
+    r1 = lag1_correlation(rw) if n > 3 else 0.0
+    return best, coef_b, curve, resid, noise, r1
 
 
 def heating_fraction(setup: SweepSetup, temperature: float, fwhm: float) -> float:
