@@ -49,12 +49,18 @@ Correction and choice of the discard (the correction variant of "fit the asympto
 the shared transient"). At a discard d — never less than the operator's stated settling time, nor
 than the start of the last fit's window — each resolved fit predicts b̂(d) with a jackknife
 uncertainty; the resolved fit allowing the largest |b̂| + t_{0.975,G−1} u sets the correction.
-An unresolved fit predicts nothing (τ is not fixed): its allowance is the largest fixed-τ
-jackknife u(b̂_τ(d)) over its τ range, and when that exceeds the correction's own uncertainty it
-becomes the uncertainty of the budget row, the estimate staying the resolved fits' b̂ (the late
-window saw no significant transient, which is evidence about the size of the tail, not that it is
-zero; taking it as zero under-corrected a tail the earlier fits had measured). d is the
-candidate that minimises the combined u(d)² + u(b̂(d))².
+An unresolved fit corrects nothing (τ is not fixed): its allowance is the larger of the largest
+fixed-τ jackknife u(b̂_τ(d)) over its τ range and the excess of its own best fit's prediction
+b̂_w(d) over the correction b̂(d) in the correction's direction — a tail the late window sees but
+the correction leaves uncorrected, which belongs in the uncertainty (Phillips, Eberhardt & Parry,
+J. Res. NIST 102, 577 (1997); from memory). Only an excess counts: a sum of decaying exponentials
+of one sign is log-convex and its slowest component rules the tail, so a single exponential
+fitted to it extrapolates a tail that decays too fast (a correction within t times the late
+fit's own resolution has no direction, and any larger |b̂_w| counts). When the allowance exceeds
+the correction's own uncertainty it becomes the uncertainty of the budget row, the estimate
+staying the resolved fits' b̂ (the late window saw no significant transient, which is evidence
+about the size of the tail, not that it is zero; taking it as zero under-corrected a tail the
+earlier fits had measured). d is the candidate that minimises the combined u(d)² + u(b̂(d))².
 
 Refusals: a resolved fit whose τ reaches the top of its range (a quarter of the segment, at most
 half the window): the transient may be slower still and the segments cannot outlast it; or an
@@ -482,8 +488,10 @@ def choose_discard(
     The mean difference is corrected by b̂(d).
 
     A fit that is not resolved leaves τ open and corrects nothing: each τ of the searched range
-    (at fixed τ the fit is linear) is a hypothesis, and the largest jackknife u(b̂_τ) over them is
-    its allowance, which replaces the correction's uncertainty when it is larger.
+    (at fixed τ the fit is linear) is a hypothesis; the larger of the largest jackknife u(b̂_τ)
+    over them and the excess of the fit's own prediction b̂_w(d) over the correction b̂(d), in
+    the correction's direction (the part left uncorrected), is its allowance, which replaces the
+    correction's uncertainty when it is larger.
 
     Refused (SettlingError) when a resolved fit's τ reaches the top of the searched range (the
     transient may be slower still), or when, at the chosen discard, the transient's uncertainty exceeds the
@@ -594,9 +602,23 @@ def _try_discard(rec: StackedRecord, components: list[TransientComponent], d: fl
         if a.resolved:
             continue
         # Not resolved: τ is open, so every τ of the range is a hypothesis; the largest
-        # jackknife u over them is the allowance.
-        allowance = max(_jackknife_u(residual_biases(rec, list(reps), d, sw))
-                        for _, reps in a.alternatives)
+        # jackknife u over them is the allowance. The correction stays the resolved fits' b̂;
+        # where the late window's own best fit predicts more tail than that (b̂_w beyond b̂ in
+        # the same direction), the excess is a bias left uncorrected and the allowance must
+        # cover it (an uncorrected bias belongs in the uncertainty: Phillips, Eberhardt &
+        # Parry, J. Res. NIST 102, 577 (1997); from memory). Only an excess counts: a sum of
+        # decaying exponentials of one sign is log-convex and its slowest component rules the
+        # tail, so one exponential fitted to it extrapolates a tail that decays too fast
+        # (derived); a late window that sees less shows the noise the spread already covers.
+        # The squared excess holds the noise of b̂_w, so it is compared with the spread, not
+        # added to it.
+        spread = max(_jackknife_u(residual_biases(rec, list(reps), d, sw))
+                     for _, reps in a.alternatives)
+        own = float(residual_biases(rec, [a.fit], d, sw)[0])
+        # (A correction within the late window's own resolution has no direction there.)
+        same_side = own * b > 0 or abs(b) <= tq * max(ub, spread)
+        excess = max(0.0, abs(own) - abs(b)) if same_side else 0.0
+        allowance = max(spread, excess)
         if allowance > ub:
             ub, c = allowance, a
     return _DiscardTrial(d, b, ub, u, c, math.hypot(u, ub))
