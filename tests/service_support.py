@@ -12,6 +12,7 @@ import urllib.error
 import urllib.request
 import uuid
 import zipfile
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -100,6 +101,16 @@ def make_lab(tmp_path: Path, **config: Any) -> Lab:
         create_user(storage, name, roles, password=PASSWORD, display_name=name.title())
         lab.tokens[name] = create_token(storage, name, "tests")
     return lab
+
+
+def running_lab(folder: Path, **config: Any) -> Iterator[Lab]:
+    """A lab with one embedded analysis worker, for a fixture to ``yield from``; stops the worker
+    and closes the database afterwards."""
+    lab = make_lab(folder, **config)
+    lab.services.start_workers(1)
+    yield lab
+    lab.services.stop_workers()
+    lab.services.storage.dispose()
 
 
 class LiveServer:

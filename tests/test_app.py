@@ -23,7 +23,7 @@ from service.web.openapi import openapi_document
 from tests.service_support import (
     EXAMPLE,
     LiveServer,
-    make_lab,
+    running_lab,
     small_run_files,
     zip_of,
 )
@@ -31,11 +31,7 @@ from tests.service_support import (
 
 @pytest.fixture(scope="module")
 def lab(tmp_path_factory):
-    lab = make_lab(tmp_path_factory.mktemp("service"))
-    lab.services.start_workers(1)
-    yield lab
-    lab.services.stop_workers()
-    lab.services.storage.dispose()
+    yield from running_lab(tmp_path_factory.mktemp("service"))
 
 
 @pytest.fixture(scope="module")

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import pytest
 
-from tests.service_support import make_lab, small_run_files
+from tests.service_support import running_lab, small_run_files
 
 RUN_TOML, SWEEP = (data for _, data in small_run_files())
 NAME = "sweep_03_60mK.csv"
@@ -46,11 +46,7 @@ def one_bias_wrong_exponent() -> bytes:
 
 @pytest.fixture(scope="module")
 def lab(tmp_path_factory):
-    lab = make_lab(tmp_path_factory.mktemp("awkward-runs"))
-    lab.services.start_workers(1)
-    yield lab
-    lab.services.stop_workers()
-    lab.services.storage.dispose()
+    yield from running_lab(tmp_path_factory.mktemp("awkward-runs"))
 
 
 @pytest.mark.slow
